@@ -1,0 +1,324 @@
+"""The one configuration object shared by readers, model, trainer, forecaster and scorer.
+
+A :class:`Config` is a tree of dataclasses with the sections ``data``, ``model``, ``solver``,
+``train``, ``forecast`` and ``score``. It is read from TOML, overridden from the command line with
+``--set section.key=value``, validated with messages that name the key, the bad value and what is
+allowed, and written back as TOML that reads back identical.
+
+Examples
+--------
+>>> cfg = Config()
+>>> cfg = apply_overrides(cfg, ["model.latent_dim=8", "train.budget=2m"])
+>>> cfg.model.latent_dim
+8
+>>> from_toml_text(to_toml_text(cfg)) == cfg
+True
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+import re
+from dataclasses import dataclass, field, fields
+from pathlib import Path
+from typing import Any
+
+try:  # Python 3.11+
+    import tomllib
+except ModuleNotFoundError:  # pragma: no cover - Python 3.10
+    import tomli as tomllib  # type: ignore[no-redef]
+
+from .errors import KinecastError
+
+
+def _opt(default: Any, help: str, choices: tuple | None = None, lo: float | None = None,
+         hi: float | None = None, length: tuple[int, ...] | None = None):
+    """A config field with its help text and the values it allows."""
+    meta = {"help": help, "choices": choices, "lo": lo, "hi": hi, "length": length}
+    if isinstance(default, list):
+        return field(default_factory=lambda: list(default), metadata=meta)
+    return field(default=default, metadata=meta)
+
+
+@dataclass
+class DataConfig:
+    """How recordings are read and preprocessed (once, on read)."""
+
+    size: int = _opt(64, "model frame size in pixels (square)", lo=8, hi=512)
+    color: str = _opt("grey", "channels fed to the model", choices=("grey", "rgb"))
+    roi: list = _opt([], "crop before resizing: [x, y, width, height] in source pixels; [] = whole frame",
+                     length=(0, 4))
+    fps: float = _opt(0.0, "frame rate when no timestamps CSV or video rate is known; 0 = use the source's own",
+                      lo=0.0)
+    gap_factor: float = _opt(1.5, "an interval above this × the median interval marks dropped frames", lo=1.01)
+    min_frames: int = _opt(3, "fewest frames a recording may have", lo=2)
+    cache: bool = _opt(True, "cache frames at model resolution so a second read is cheap")
+    cache_dir: str = _opt("", "cache folder; '' = ~/.cache/kinecast")
+
+
+@dataclass
+class ModelConfig:
+    """Sizes and options of the latent ODE model."""
+
+    variant: str = _opt("second_order", "dynamics family",
+                        choices=("second_order", "first_order", "deterministic"))
+    latent_dim: int = _opt(8, "size of the latent position s (and of the velocity v)", lo=1, hi=256)
+    enc_channels: int = _opt(32, "base channel count of the conv encoders", lo=4, hi=512)
+    dec_channels: int = _opt(32, "base channel count of the conv decoder", lo=4, hi=512)
+    hidden: int = _opt(64, "hidden width of the acceleration field", lo=4, hi=2048)
+    hidden_layers: int = _opt(2, "hidden layers of the acceleration field", lo=1, hi=8)
+    velocity_frames: int = _opt(3, "frames stacked by the velocity encoder", lo=2, hi=16)
+    prior_std: float = _opt(1.0, "std of the Gaussian prior on the field's weights", lo=1e-6)
+    init_logstd: float = _opt(-5.0, "initial log-std of the field's weight posterior", lo=-20.0, hi=2.0)
+    likelihood: str = _opt("bernoulli", "pixel likelihood", choices=("bernoulli", "gaussian"))
+    background: bool = _opt(True, "decoder adds to a static background image (fixed camera)")
+    agreement_weight: float = _opt(0.0, "weight of the encoder/trajectory agreement term", lo=0.0)
+
+
+@dataclass
+class SolverConfig:
+    """How the latent ODE is integrated."""
+
+    method: str = _opt("rk4", "ODE solver", choices=("rk4", "dopri5", "euler", "midpoint"))
+    substeps: int = _opt(2, "fixed-step sub-steps per frame interval", lo=1, hi=64)
+    rtol: float = _opt(1e-5, "relative tolerance (adaptive solvers)", lo=0.0)
+    atol: float = _opt(1e-6, "absolute tolerance (adaptive solvers)", lo=0.0)
+    adjoint: bool = _opt(False, "adjoint gradients (less memory for long windows, slower)")
+    units_per_frame: float = _opt(0.1, "model time units per median frame interval", lo=1e-6)
+    time_scale: float = _opt(0.0, "model time units per second; 0 = set from the data at fit time", lo=0.0)
+
+
+@dataclass
+class TrainConfig:
+    """The CPU-sized training recipe."""
+
+    seed: int = _opt(0, "random seed", lo=0)
+    batch: int = _opt(8, "windows per step", lo=1, hi=4096)
+    steps: int = _opt(0, "step budget; 0 = none (use the wall-clock budget)", lo=0)
+    budget: str = _opt("5m", "wall-clock budget like 90s, 5m, 1h30m; '0' = none")
+    lr: float = _opt(3e-3, "peak learning rate", lo=0.0)
+    lr_min_ratio: float = _opt(0.05, "final learning rate as a fraction of the peak", lo=0.0, hi=1.0)
+    warmup_steps: int = _opt(50, "linear learning-rate warm-up steps", lo=0)
+    kl_warmup: float = _opt(0.2, "share of the budget over which the KL weight rises from 0 to 1",
+                            lo=0.0, hi=1.0)
+    grad_clip: float = _opt(1.0, "gradient norm clip; 0 = off", lo=0.0)
+    window_start: int = _opt(8, "first curriculum window length in frames", lo=2)
+    window_max: int = _opt(0, "longest window; 0 = the longest that fits", lo=0)
+    window_growth: float = _opt(1.5, "window × this when validation stalls", lo=1.0)
+    val_every: int = _opt(50, "steps between validations", lo=1)
+    val_fraction: float = _opt(0.25, "tail share of a single recording held out for validation",
+                               lo=0.0, hi=0.9)
+    patience: int = _opt(6, "validations without improvement before growing the window / stopping", lo=1)
+    checkpoint_every: int = _opt(100, "steps between checkpoints", lo=1)
+    threads: int = _opt(0, "torch threads; 0 = the core count", lo=0)
+    device: str = _opt("auto", "compute device", choices=("auto", "cpu", "cuda"))
+    max_faults: int = _opt(5, "non-finite losses tolerated (each rolls back) before stopping", lo=0)
+
+
+@dataclass
+class ForecastConfig:
+    """Rollout and rendering."""
+
+    frames: int = _opt(30, "frames to forecast", lo=1)
+    samples: int = _opt(1, "futures drawn (encoder noise and weight draws); 1 = mean weights", lo=1, hi=1000)
+    fps: float = _opt(0.0, "output frame rate; 0 = the recording's", lo=0.0)
+    upscale: int = _opt(4, "pixel upscaling of rendered clips", lo=1, hi=16)
+    contact_every: int = _opt(5, "every n-th frame on the contact sheet", lo=1)
+
+
+@dataclass
+class ScoreConfig:
+    """Per-frame metrics against held-out frames."""
+
+    holdout: str = _opt("last:30", "held-out frames: last:N or trial:NAME")
+    context: int = _opt(3, "conditioning frames before the held-out stretch", lo=2)
+    ssim_threshold: float = _opt(0.8, "valid horizon ends where SSIM drops below this", lo=0.0, hi=1.0)
+    band: float = _opt(0.9, "central probability band for the calibration check", lo=0.0, hi=1.0)
+    ssim_window: int = _opt(7, "SSIM Gaussian-free square window (odd)", lo=3, hi=31)
+
+
+@dataclass
+class Config:
+    """The whole configuration; one section per stage of the data path."""
+
+    data: DataConfig = field(default_factory=DataConfig)
+    model: ModelConfig = field(default_factory=ModelConfig)
+    solver: SolverConfig = field(default_factory=SolverConfig)
+    train: TrainConfig = field(default_factory=TrainConfig)
+    forecast: ForecastConfig = field(default_factory=ForecastConfig)
+    score: ScoreConfig = field(default_factory=ScoreConfig)
+
+
+SECTIONS = tuple(f.name for f in fields(Config))
+_BUDGET = re.compile(r"^(?:(\d+(?:\.\d+)?)h)?(?:(\d+(?:\.\d+)?)m)?(?:(\d+(?:\.\d+)?)s?)?$")
+
+
+def parse_budget(text: str, key: str = "train.budget") -> float:
+    """Seconds in a budget like ``90s``, ``5m``, ``1h30m`` or ``120``; ``0`` means no budget.
+
+    >>> parse_budget("1h30m")
+    5400.0
+    """
+    s = str(text).strip().lower()
+    m = _BUDGET.match(s)
+    if not s or not m or not any(m.groups()):
+        raise KinecastError(key, f"bad value {text!r}: allowed a duration like 90s, 5m, 1h30m or 0")
+    h, mi, se = (float(g) if g else 0.0 for g in m.groups())
+    return h * 3600 + mi * 60 + se
+
+
+def _check(section: str, f: dataclasses.Field, value: Any) -> Any:
+    """Coerce ``value`` to the field's type and check its range; raise naming key and allowed values."""
+    key = f"{section}.{f.name}"
+    meta = f.metadata
+    kind = type(f.default) if f.default is not dataclasses.MISSING else list
+
+    def bad(allowed: str):
+        return KinecastError(key, f"bad value {value!r}: allowed {allowed}")
+
+    if kind is bool:
+        if not isinstance(value, bool):
+            raise bad("true or false")
+    elif kind is int:
+        if isinstance(value, bool) or not isinstance(value, int):
+            raise bad("a whole number")
+    elif kind is float:
+        if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
+            raise bad("a finite number")
+        value = float(value)
+    elif kind is str:
+        if not isinstance(value, str):
+            raise bad("a string")
+    elif kind is list:
+        if not isinstance(value, list) or not all(
+                isinstance(v, (int, float)) and not isinstance(v, bool) for v in value):
+            raise bad("a list of numbers")
+        if meta.get("length") and len(value) not in meta["length"]:
+            raise bad(f"a list of {' or '.join(map(str, meta['length']))} numbers")
+        value = list(value)
+    if meta.get("choices") and value not in meta["choices"]:
+        raise bad("one of " + ", ".join(map(str, meta["choices"])))
+    lo, hi = meta.get("lo"), meta.get("hi")
+    if kind in (int, float) and ((lo is not None and value < lo) or (hi is not None and value > hi)):
+        rng = f"from {lo} to {hi}" if hi is not None else f"at least {lo}"
+        raise bad(f"a number {rng}")
+    if key == "train.budget":
+        parse_budget(value, key)
+    if key == "score.holdout" and not re.match(r"^(last:\d+|trial:.+)$", value):
+        raise bad("last:N or trial:NAME")
+    return value
+
+
+def from_dict(tree: dict, base: Config | None = None, source: str = "config") -> Config:
+    """Build a validated :class:`Config` from nested dicts, starting from ``base`` (default values)."""
+    cfg = _copy(base) if base else Config()
+    if not isinstance(tree, dict):
+        raise KinecastError(source, "expected a table of sections")
+    for section, values in tree.items():
+        if section not in SECTIONS:
+            raise KinecastError(source, f"unknown section [{section}]: allowed {', '.join(SECTIONS)}")
+        if not isinstance(values, dict):
+            raise KinecastError(f"{source}: {section}", "expected a table of keys")
+        sub = getattr(cfg, section)
+        known = {f.name: f for f in fields(sub)}
+        for key, value in values.items():
+            if key not in known:
+                raise KinecastError(f"{section}.{key}",
+                                    f"unknown key in {source}: allowed {', '.join(known)}")
+            setattr(sub, key, _check(section, known[key], value))
+    return cfg
+
+
+def _copy(cfg: Config) -> Config:
+    return Config(**{s: dataclasses.replace(getattr(cfg, s)) for s in SECTIONS})
+
+
+def to_dict(cfg: Config) -> dict:
+    """Nested plain dicts of the config (lists copied)."""
+    return dataclasses.asdict(cfg)
+
+
+def load(path: str | Path, base: Config | None = None) -> Config:
+    """Read a TOML config file; missing keys keep the values of ``base`` (default: defaults)."""
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise KinecastError(path, "config file not found") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise KinecastError(path, f"cannot read config ({exc})") from None
+    return from_toml_text(text, base, source=str(path))
+
+
+def from_toml_text(text: str, base: Config | None = None, source: str = "config") -> Config:
+    """Parse TOML text into a validated :class:`Config`."""
+    try:
+        tree = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise KinecastError(source, f"not valid TOML ({exc})") from None
+    return from_dict(tree, base, source)
+
+
+def _toml_value(v: Any) -> str:
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, (int, float)):
+        return repr(v)
+    if isinstance(v, str):
+        return '"' + v.replace("\\", "\\\\").replace('"', '\\"') + '"'
+    if isinstance(v, list):
+        return "[" + ", ".join(_toml_value(x) for x in v) + "]"
+    raise TypeError(f"cannot write {type(v).__name__} to TOML")
+
+
+def to_toml_text(cfg: Config) -> str:
+    """The config as TOML text, one table per section, every key written."""
+    lines = ["# kinecast configuration (every key; see `kinecast config --keys`)"]
+    for section in SECTIONS:
+        lines += ["", f"[{section}]"]
+        for f in fields(getattr(cfg, section)):
+            lines.append(f"{f.name} = {_toml_value(getattr(getattr(cfg, section), f.name))}")
+    return "\n".join(lines) + "\n"
+
+
+def save(cfg: Config, path: str | Path, overwrite: bool = True) -> Path:
+    """Write the config as TOML atomically."""
+    from .fileio import write_text
+
+    return write_text(path, to_toml_text(cfg), overwrite)
+
+
+def _parse_override_value(raw: str) -> Any:
+    """A ``--set`` value: TOML syntax where it parses (numbers, booleans, lists), else a bare string."""
+    try:
+        return tomllib.loads(f"v = {raw}")["v"]
+    except tomllib.TOMLDecodeError:
+        return raw
+
+
+def apply_overrides(cfg: Config, overrides: list[str] | tuple[str, ...]) -> Config:
+    """Apply ``section.key=value`` overrides; each is validated like a TOML key."""
+    tree: dict[str, dict[str, Any]] = {}
+    for item in overrides or ():
+        key, sep, raw = item.partition("=")
+        section, dot, name = key.strip().partition(".")
+        if not sep or not dot or not name:
+            raise KinecastError(f"--set {item}", "expected section.key=value")
+        tree.setdefault(section, {})[name] = _parse_override_value(raw.strip())
+    return from_dict(tree, cfg, source="--set")
+
+
+def help_keys() -> str:
+    """One line per key: name, default, allowed values and help."""
+    out = []
+    base = Config()
+    for section in SECTIONS:
+        for f in fields(getattr(base, section)):
+            meta = f.metadata
+            allowed = ""
+            if meta.get("choices"):
+                allowed = f" ({'|'.join(meta['choices'])})"
+            out.append(f"{section}.{f.name} = {_toml_value(getattr(getattr(base, section), f.name))}"
+                       f"{allowed}  # {meta['help']}")
+    return "\n".join(out)

@@ -1,0 +1,62 @@
+"""Atomic file writes: every file goes to a temporary name in the same folder, then is renamed.
+
+A kill at any moment leaves either the old file or the new one, never a half-written file.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import os
+import tempfile
+from pathlib import Path
+from typing import Callable, Iterator
+
+from .errors import KinecastError
+
+
+@contextlib.contextmanager
+def atomic_path(target: str | Path, overwrite: bool = True) -> Iterator[Path]:
+    """Yield a temporary path beside ``target``; rename it onto ``target`` on success.
+
+    The temporary keeps the target's suffix so writers that pick a format by extension still work.
+    On any exception the temporary is removed and ``target`` is untouched.
+    """
+    target = Path(target)
+    if not overwrite and target.exists():
+        raise KinecastError(target, "already exists (pass --overwrite to replace it)")
+    folder = target.parent if str(target.parent) else Path(".")
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+        fd, tmp = tempfile.mkstemp(prefix=f".{target.stem}.", suffix=f".tmp{target.suffix}", dir=folder)
+    except OSError as exc:
+        raise KinecastError(folder, f"cannot write here ({exc.strerror or exc})") from None
+    os.close(fd)
+    tmp_path = Path(tmp)
+    try:
+        yield tmp_path
+        with open(tmp_path, "rb+") as fh:
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp_path, target)
+    finally:
+        if tmp_path.exists():
+            tmp_path.unlink()
+
+
+def write_bytes(target: str | Path, data: bytes, overwrite: bool = True) -> Path:
+    """Write ``data`` to ``target`` atomically."""
+    with atomic_path(target, overwrite) as tmp:
+        tmp.write_bytes(data)
+    return Path(target)
+
+
+def write_text(target: str | Path, text: str, overwrite: bool = True) -> Path:
+    """Write ``text`` (UTF-8) to ``target`` atomically."""
+    return write_bytes(target, text.encode("utf-8"), overwrite)
+
+
+def write_with(target: str | Path, writer: Callable[[Path], None], overwrite: bool = True) -> Path:
+    """Call ``writer(tmp_path)`` and rename the result onto ``target`` atomically."""
+    with atomic_path(target, overwrite) as tmp:
+        writer(tmp)
+    return Path(target)

@@ -1,0 +1,73 @@
+"""The one type every reader returns."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+
+@dataclass
+class Recording:
+    """A preprocessed recording at model resolution.
+
+    Attributes
+    ----------
+    frames : ndarray, float32, shape (T, C, H, W)
+        Intensities in [0, 1]. Slots of dropped frames hold zeros and are flagged in ``missing``.
+    times : ndarray, float64, shape (T,)
+        Time of each slot in seconds, strictly increasing. Irregular intervals are kept; slots
+        inserted for dropped frames are spaced evenly inside their gap.
+    missing : ndarray, bool, shape (T,)
+        True where the camera dropped the frame (no image data in that slot).
+    source : str
+        Where the frames came from (path and kind), for messages and reports.
+    info : dict
+        Facts about the source: ``kind`` (folder, tiff, video), ``bit_depth``, ``source_size``
+        (width, height), ``source_channels``, ``names`` (file name or frame index per slot, '' for
+        missing slots), ``time_source`` (csv, fps, video, default).
+    """
+
+    frames: np.ndarray
+    times: np.ndarray
+    missing: np.ndarray
+    source: str
+    info: dict = field(default_factory=dict)
+
+    def __post_init__(self):
+        self.frames = np.asarray(self.frames, dtype=np.float32)
+        self.times = np.asarray(self.times, dtype=np.float64)
+        self.missing = np.asarray(self.missing, dtype=bool)
+        n = len(self.frames)
+        if self.frames.ndim != 4 or len(self.times) != n or len(self.missing) != n:
+            raise ValueError("Recording needs frames (T,C,H,W) and times/missing of length T")
+
+    @property
+    def n_frames(self) -> int:
+        return int(self.frames.shape[0])
+
+    @property
+    def channels(self) -> int:
+        return int(self.frames.shape[1])
+
+    @property
+    def size(self) -> tuple[int, int]:
+        """(height, width) at model resolution."""
+        return int(self.frames.shape[2]), int(self.frames.shape[3])
+
+    @property
+    def duration(self) -> float:
+        return float(self.times[-1] - self.times[0]) if self.n_frames > 1 else 0.0
+
+    @property
+    def median_interval(self) -> float:
+        """Median interval between consecutive slots in seconds."""
+        return float(np.median(np.diff(self.times))) if self.n_frames > 1 else 0.0
+
+    def slice(self, start: int, stop: int) -> "Recording":
+        """Slots ``start:stop`` as a new Recording sharing the source description."""
+        info = dict(self.info)
+        if "names" in info:
+            info["names"] = list(info["names"])[start:stop]
+        return Recording(self.frames[start:stop], self.times[start:stop], self.missing[start:stop],
+                         f"{self.source}[{start}:{stop}]", info)
