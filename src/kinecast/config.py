@@ -305,7 +305,11 @@ def apply_overrides(cfg: Config, overrides: list[str] | tuple[str, ...]) -> Conf
         section, dot, name = key.strip().partition(".")
         if not sep or not dot or not name:
             raise KinecastError(f"--set {item}", "expected section.key=value")
-        tree.setdefault(section, {})[name] = _parse_override_value(raw.strip())
+        value = _parse_override_value(raw.strip())
+        sub = getattr(Config(), section, None)
+        if isinstance(getattr(sub, name, None), str) and not isinstance(value, str):
+            value = raw.strip()  # a string key given a bare number, e.g. train.budget=0
+        tree.setdefault(section, {})[name] = value
     return from_dict(tree, cfg, source="--set")
 
 

@@ -1,0 +1,1 @@
+"""Forecast, fill and resample from a trained run; render clips a person can watch."""

@@ -1,0 +1,177 @@
+"""Forecast, fill and resample with a trained model: the Python functions behind the verbs.
+
+Every function works on a :class:`~kinecast.frames.Recording` and returns numpy arrays; the command
+line only adds reading, rendering and writing. Times are always in seconds; conversion to model time
+uses the run's ``solver.time_scale``.
+
+Predictions are statistical extrapolations, not measurements.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import torch
+
+from ..config import Config
+from ..errors import KinecastError
+from ..frames import Recording
+from ..model import to_model_time
+
+
+@dataclass
+class Forecast:
+    """Predicted frames at requested times.
+
+    Attributes
+    ----------
+    times : (N,) seconds
+    mean : (N, C, H, W) mean of the sampled frames (the mean-weights rollout when samples == 1)
+    spread : (N, C, H, W) per-pixel standard deviation across samples (zeros when samples == 1)
+    samples : (S, N, C, H, W)
+    latents : (S, N, D) latent state (position then velocity) per sample and time
+    context_start : int, slot of the first conditioning frame in the recording
+    """
+
+    times: np.ndarray
+    mean: np.ndarray
+    spread: np.ndarray
+    samples: np.ndarray
+    latents: np.ndarray
+    context_start: int
+
+
+def check_compatible(rec: Recording, cfg: Config, model) -> None:
+    """Refuse a recording whose size or channels differ from the run's."""
+    want_c = 1 if cfg.data.color == "grey" else 3
+    if rec.size != (cfg.data.size, cfg.data.size) or rec.channels != want_c:
+        raise KinecastError(rec.source, f"frames are {rec.channels}×{rec.size[0]}×{rec.size[1]} after reading, "
+                                        f"the run expects {want_c}×{cfg.data.size}×{cfg.data.size}")
+
+
+def context_start_for(rec: Recording, k: int, start: int | None) -> int:
+    """First conditioning slot so that the ``k`` frames before ``start`` are all present.
+
+    ``start`` is the slot where the forecast begins (default: just past the end of the recording).
+    """
+    start = rec.n_frames if start is None else start
+    if rec.n_frames < k:
+        raise KinecastError(rec.source, f"has {rec.n_frames} frames; the model needs at least {k} to start from")
+    if not 0 < start <= rec.n_frames:
+        raise KinecastError(rec.source, f"start frame {start} is outside 1..{rec.n_frames}")
+    for s in range(start - k, -1, -1):
+        if not rec.missing[s:s + k].any():
+            return s
+    raise KinecastError(rec.source, f"no {k} consecutive present frames before frame {start}")
+
+
+def slot_at_time(rec: Recording, when: float) -> int:
+    """The first slot at or after ``when`` seconds."""
+    idx = int(np.searchsorted(rec.times, when - 1e-9))
+    if idx == 0 or idx > rec.n_frames:
+        raise KinecastError(rec.source, f"time {when} s is outside {rec.times[0]:.3f}..{rec.times[-1]:.3f} s")
+    return idx
+
+
+def predict_from(model, cfg: Config, rec: Recording, ctx_start: int, times: np.ndarray,
+                 samples: int = 1, device: str | torch.device = "cpu") -> Forecast:
+    """Condition on ``k`` frames from ``ctx_start`` and predict frames at ``times`` (seconds, monotonic away from the context).
+
+    With ``samples == 1`` the mean weights and the encoders' means are used (one deterministic
+    forecast). With more, each sample draws the initial state and the field's weights.
+    """
+    k = cfg.model.velocity_frames
+    ctx = torch.from_numpy(rec.frames[ctx_start:ctx_start + k][None]).to(device)
+    t = to_model_time(np.asarray(times, dtype=np.float64) - rec.times[ctx_start], cfg).to(device)
+    stochastic = samples > 1
+    with torch.no_grad():
+        frames, latents = model.rollout(ctx, t, samples=samples, mean_weights=not stochastic,
+                                        sample_init=stochastic)
+    s = frames[:, 0].float().cpu().numpy()
+    return Forecast(np.asarray(times, dtype=np.float64), s.mean(axis=0),
+                    s.std(axis=0) if stochastic else np.zeros_like(s[0]), s,
+                    latents[:, 0].float().cpu().numpy(), ctx_start)
+
+
+def forecast(model, cfg: Config, rec: Recording, n_frames: int, start: int | None = None,
+             fps: float = 0.0, samples: int = 1, device="cpu") -> Forecast:
+    """Forecast ``n_frames`` from the ``k`` present frames before slot ``start``.
+
+    Output times continue from the last conditioning frame at the recording's median interval, or
+    at ``fps`` frames per second when given.
+    """
+    k = cfg.model.velocity_frames
+    cs = context_start_for(rec, k, start)
+    t_last = rec.times[cs + k - 1]
+    dt = 1.0 / fps if fps > 0 else rec.median_interval
+    times = t_last + dt * np.arange(1, n_frames + 1)
+    return predict_from(model, cfg, rec, cs, times, samples, device)
+
+
+def resample(model, cfg: Config, rec: Recording, times: np.ndarray, device="cpu") -> Forecast:
+    """Frames at arbitrary ``times`` inside or beyond the recording (e.g. 4× slow motion).
+
+    Conditions on the first ``k`` present frames and integrates to every requested time.
+    """
+    cs = context_start_for(rec, cfg.model.velocity_frames, rec.n_frames)
+    first = next(s for s in range(cs + 1) if not rec.missing[s:s + cfg.model.velocity_frames].any())
+    return predict_from(model, cfg, rec, first, np.asarray(times, dtype=np.float64), 1, device)
+
+
+def gaps(missing: np.ndarray) -> list[tuple[int, int]]:
+    """Runs of missing slots as (first, stop) pairs."""
+    out, i = [], 0
+    while i < len(missing):
+        if missing[i]:
+            j = i
+            while j < len(missing) and missing[j]:
+                j += 1
+            out.append((i, j))
+            i = j
+        else:
+            i += 1
+    return out
+
+
+def fill(model, cfg: Config, rec: Recording, device="cpu") -> tuple[np.ndarray, np.ndarray]:
+    """Fill the slots marked missing: integrate forward from before each gap and backward from after it.
+
+    The two predictions are blended linearly in time (the forward one dominates near the gap's
+    start). Where only one side has ``k`` present frames, that side alone is used.
+
+    Returns
+    -------
+    frames : (T, C, H, W) the recording with its missing slots filled
+    filled : (T,) bool, True where a slot was filled
+    """
+    k = cfg.model.velocity_frames
+    out = rec.frames.copy()
+    filled = np.zeros(rec.n_frames, dtype=bool)
+    for a, b in gaps(rec.missing):
+        times = rec.times[a:b]
+        preds, weights = [], []
+        before = [s for s in range(a - k, -1, -1) if not rec.missing[s:s + k].any()]
+        after = [s for s in range(b, rec.n_frames - k + 1) if not rec.missing[s:s + k].any()]
+        if before:
+            preds.append(predict_from(model, cfg, rec, before[0], times, 1, device).mean)
+            weights.append(rec.times[b] - times if b < rec.n_frames else np.ones_like(times))
+        if after:
+            preds.append(_predict_backward(model, cfg, rec, after[0], times, device))
+            weights.append(times - rec.times[a - 1] if a > 0 else np.ones_like(times))
+        if not preds:
+            raise KinecastError(rec.source, f"cannot fill frames {a}..{b - 1}: no {k} present frames on either side")
+        w = np.stack(weights)
+        w = w / w.sum(axis=0, keepdims=True)
+        out[a:b] = sum(wi[:, None, None, None] * p for wi, p in zip(w, preds))
+        filled[a:b] = True
+    return out, filled
+
+
+def _predict_backward(model, cfg, rec, ctx_start, times, device):
+    """Integrate backward in time from the k frames at ``ctx_start`` to earlier ``times``."""
+    order = np.argsort(-times)  # decreasing times from the context
+    pred = predict_from(model, cfg, rec, ctx_start, times[order], 1, device).mean
+    out = np.empty_like(pred)
+    out[order] = pred
+    return out

@@ -1,0 +1,374 @@
+"""Plots of training and scoring: loss terms, metric curves, latent phase portraits, frame rows.
+
+Figures are drawn with matplotlib's Agg canvas (no screen, no pyplot state). Each ``*_figure``
+function builds a :class:`matplotlib.figure.Figure`; the function of the same name without the suffix
+writes it atomically (PNG, SVG or PDF by extension) and returns the path. An existing file is
+refused unless ``overwrite`` is passed.
+
+Forecast scores describe statistical extrapolations, not measurements.
+"""
+
+from __future__ import annotations
+
+import csv
+import math
+from pathlib import Path
+from typing import Mapping, NamedTuple, Sequence
+
+import numpy as np
+from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.figure import Figure
+
+from .errors import KinecastError
+from .fileio import write_with
+from .forecast.render import time_format
+
+PLOT_SUFFIXES = (".png", ".svg", ".pdf")
+DPI = 110
+PANEL_INCHES = (4.2, 3.0)   # width, height of one panel
+FRAME_INCHES = 1.2          # side of one frame in the quick-look rows
+MAX_QUICK_COLUMNS = 16      # more frames than this in one row stop being a quick look
+NOTE = "forecasts are statistical extrapolations, not measurements"
+# training-log columns, grouped into panels (title, columns); 'step' (or 'time_s') is the x axis
+LOG_PANELS = (
+    ("objective", ("loss", "nll")),
+    ("KL divergences and agreement", ("kl_s0", "kl_v0", "kl_w", "agreement")),
+    ("frame error (MSE)", ("mse", "val_mse")),
+    ("learning rate", ("lr",)),
+    ("KL weight β", ("beta",)),
+    ("window (frames)", ("window",)),
+)
+METRIC_ORDER = ("mse", "mae", "psnr", "ssim", "pos_err_px")
+METRIC_LABELS = {"mse": "MSE", "mae": "MAE", "psnr": "PSNR (dB)", "ssim": "SSIM",
+                 "pos_err_px": "position error (px)"}
+
+
+class PCA(NamedTuple):
+    """Principal components of a point cloud."""
+
+    scores: np.ndarray      # (N, k) coordinates along the components
+    components: np.ndarray  # (k, D) unit directions, largest variance first
+    explained: np.ndarray   # (k,) share of the total variance along each component
+    mean: np.ndarray        # (D,) the centre that was removed
+
+
+def principal_components(latents: np.ndarray, k: int = 2) -> PCA:
+    """The first ``k`` principal components by SVD of the centred data.
+
+    Parameters
+    ----------
+    latents : ndarray, shape (N, D)
+    k : int
+        Components wanted; at most min(N, D) are returned.
+
+    Returns
+    -------
+    PCA
+        Signs are fixed so that the largest-magnitude loading of each component is positive. When
+        all points coincide the explained shares are zero.
+
+    References
+    ----------
+    I. T. Jolliffe, *Principal Component Analysis*, 2nd ed., Springer, 2002 (the components are the
+    eigenvectors of the sample covariance, obtained here from the SVD of the centred data).
+    """
+    x = np.asarray(latents, dtype=np.float64)
+    if x.ndim != 2 or len(x) < 2:
+        raise ValueError(f"latents must be (N, D) with N >= 2, got shape {x.shape}")
+    mean = x.mean(axis=0)
+    _, s, vt = np.linalg.svd(x - mean, full_matrices=False)
+    k = min(k, vt.shape[0])
+    vt = vt[:k] * np.sign(vt[:k][np.arange(k), np.abs(vt[:k]).argmax(axis=1)])[:, None]
+    total = float(np.sum(s**2))
+    explained = s[:k] ** 2 / total if total > 0 else np.zeros(k)
+    return PCA((x - mean) @ vt.T, vt, explained, mean)
+
+
+def _new_figure(n_panels: int, columns: int = 3) -> tuple[Figure, list]:
+    cols = min(columns, n_panels)
+    rows = math.ceil(n_panels / cols)
+    fig = Figure(figsize=(PANEL_INCHES[0] * cols, PANEL_INCHES[1] * rows), layout="constrained")
+    FigureCanvasAgg(fig)
+    axes = fig.subplots(rows, cols, squeeze=False).ravel()
+    for ax in axes[n_panels:]:
+        ax.remove()
+    return fig, list(axes[:n_panels])
+
+
+def _check_out(out: str | Path, overwrite: bool) -> Path:
+    path = Path(out)
+    if path.suffix.lower() not in PLOT_SUFFIXES:
+        raise KinecastError(path, f"unknown plot extension '{path.suffix}': allowed "
+                                  f"{', '.join(PLOT_SUFFIXES)}")
+    if path.is_dir():
+        raise KinecastError(path, "is a folder, cannot write a plot in its place")
+    if path.exists() and not overwrite:
+        raise KinecastError(path, "already exists (pass --overwrite to replace it)")
+    return path
+
+
+def _save(fig: Figure, path: Path, overwrite: bool) -> Path:
+    return write_with(path, lambda tmp: fig.savefig(tmp, format=path.suffix[1:].lower(), dpi=DPI),
+                      overwrite)
+
+
+def read_training_log(path: str | Path) -> dict[str, np.ndarray]:
+    """Numeric columns of a training log CSV; empty cells become NaN."""
+    path = Path(path)
+    try:
+        with open(path, newline="", encoding="utf-8") as fh:
+            rows = list(csv.reader(fh))
+    except FileNotFoundError:
+        raise KinecastError(path, "training log not found") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise KinecastError(path, f"cannot read training log ({exc})") from None
+    if not rows or not any(h.strip() for h in rows[0]):
+        raise KinecastError(path, "training log is empty (expected a header line)")
+    header = [h.strip() for h in rows[0]]
+    data = {h: [] for h in header}
+    for line, row in enumerate(rows[1:], start=2):
+        if len(row) != len(header):
+            raise KinecastError(path, f"line {line}: {len(row)} cells but the header has {len(header)}")
+        for name, cell in zip(header, row):
+            try:
+                data[name].append(float(cell) if cell.strip() else math.nan)
+            except ValueError:
+                raise KinecastError(path, f"line {line}: column '{name}' has a non-number "
+                                          f"{cell!r}") from None
+    return {k: np.asarray(v, dtype=np.float64) for k, v in data.items()}
+
+
+def _log_columns(log) -> tuple[str, dict[str, np.ndarray]]:
+    """(name for messages, numeric columns) of a CSV path, a column mapping or a list of row dicts."""
+    if isinstance(log, (str, Path)):
+        return str(log), read_training_log(log)
+
+    def num(v) -> float:
+        try:
+            return math.nan if v is None or v == "" else float(v)
+        except (TypeError, ValueError):
+            raise KinecastError("training log", f"non-number {v!r}") from None
+
+    if isinstance(log, Mapping):
+        return "training log", {k: np.array([num(x) for x in np.ravel(v)]) for k, v in log.items()}
+    rows = list(log)
+    keys = dict.fromkeys(k for r in rows for k in r)
+    return "training log", {k: np.array([num(r.get(k)) for r in rows]) for k in keys}
+
+
+def loss_curve_figure(log: str | Path | Mapping[str, np.ndarray] | Sequence[Mapping]) -> Figure:
+    """Training terms and the validation score against step (see :func:`loss_curve`)."""
+    source, cols = _log_columns(log)
+    if not cols:
+        raise KinecastError(source, "training log has no rows")
+    if len({len(v) for v in cols.values()}) > 1:
+        raise KinecastError(source, "columns have different lengths")
+    panels = [(t, [c for c in names if c in cols and np.isfinite(cols[c]).any()])
+              for t, names in LOG_PANELS]
+    panels = [(t, names) for t, names in panels if names]
+    if not panels:
+        known = ", ".join(c for _, names in LOG_PANELS for c in names)
+        raise KinecastError(source, f"no plottable columns: expected some of {known}")
+    xname = "step" if "step" in cols else ("time_s" if "time_s" in cols else None)
+    n = len(next(iter(cols.values())))
+    x = cols[xname] if xname else np.arange(n, dtype=np.float64)
+    fig, axes = _new_figure(len(panels))
+    for ax, (title, names) in zip(axes, panels):
+        finite = np.concatenate([cols[c][np.isfinite(cols[c])] for c in names])
+        for c in names:
+            ok = np.isfinite(cols[c])
+            sparse = ok.sum() < 0.5 * n  # e.g. validation rows only
+            ax.plot(x[ok], cols[c][ok], marker="o" if sparse else None, ms=3, label=c)
+        if finite.size and (finite > 0).all():
+            ax.set_yscale("log")
+        ax.set_title(title, fontsize=10)
+        ax.set_xlabel({"step": "step", "time_s": "time (s)"}.get(xname, "log row"))
+        ax.legend(fontsize=8)
+        ax.grid(alpha=0.3)
+    return fig
+
+
+def loss_curve(log_csv_or_dict: str | Path | Mapping[str, np.ndarray] | Sequence[Mapping],
+               out: str | Path, overwrite: bool = False) -> Path:
+    """Plot the training log: each term against step, log scale where a panel is all positive.
+
+    Parameters
+    ----------
+    log_csv_or_dict : path or mapping
+        The training log CSV (any subset of step, time_s, loss, nll, kl_s0, kl_v0, kl_w, agreement,
+        mse, lr, beta, window, val_mse; empty cells allowed), a mapping column -> values, or a list
+        of row mappings (keys may differ between rows; a missing key is an empty cell).
+    out : str or Path
+        ``.png``, ``.svg`` or ``.pdf``.
+    overwrite : bool
+        Replace an existing file.
+
+    Returns
+    -------
+    Path
+    """
+    path = _check_out(out, overwrite)
+    return _save(loss_curve_figure(log_csv_or_dict), path, overwrite)
+
+
+def metric_curves_figure(per_method: Mapping[str, Mapping[str, np.ndarray]], times: np.ndarray,
+                         threshold: float | None = None) -> Figure:
+    """One panel per metric against the forecast horizon (see :func:`metric_curves`)."""
+    times = np.asarray(times, dtype=np.float64)
+    present = {m for scores in per_method.values() for m in scores}
+    metrics = [m for m in METRIC_ORDER if m in present] + sorted(present - set(METRIC_ORDER))
+    if not metrics:
+        raise ValueError("metric_curves needs at least one metric")
+    fig, axes = _new_figure(len(metrics))
+    for ax, metric in zip(axes, metrics):
+        for method, scores in per_method.items():
+            if metric not in scores:
+                continue
+            y = np.asarray(scores[metric], dtype=np.float64)
+            if y.shape != times.shape:
+                raise ValueError(f"{method}/{metric}: {y.shape} values for {times.shape} times")
+            ax.plot(times, np.where(np.isfinite(y), y, np.nan), label=method)  # PSNR of a perfect frame is inf
+        if metric == "ssim" and threshold is not None:
+            ax.axhline(threshold, ls="--", color="0.35", lw=1, label=f"threshold {threshold:g}")
+        ax.set_xlabel("forecast horizon (s)")
+        ax.set_ylabel(METRIC_LABELS.get(metric, metric))
+        ax.grid(alpha=0.3)
+        ax.legend(fontsize=8)
+    fig.suptitle(NOTE, fontsize=8, color="0.3")
+    return fig
+
+
+def metric_curves(per_method: Mapping[str, Mapping[str, np.ndarray]], times: np.ndarray,
+                  out: str | Path, threshold: float | None = None, overwrite: bool = False) -> Path:
+    """Plot per-frame scores against the forecast horizon: one panel per metric, one line per method.
+
+    Parameters
+    ----------
+    per_method : mapping
+        ``{method: {metric: (T,) array}}``; metrics like mse, mae, psnr, ssim, pos_err_px, whichever
+        are present. Non-finite values (the infinite PSNR of a perfect frame) leave gaps.
+    times : ndarray, shape (T,)
+        Forecast horizon of each frame in seconds.
+    out : str or Path
+        ``.png``, ``.svg`` or ``.pdf``.
+    threshold : float, optional
+        The SSIM level that ends the valid horizon, drawn dashed on the SSIM panel.
+    overwrite : bool
+        Replace an existing file.
+
+    Returns
+    -------
+    Path
+    """
+    path = _check_out(out, overwrite)
+    return _save(metric_curves_figure(per_method, times, threshold), path, overwrite)
+
+
+def phase_portrait_figure(latents: np.ndarray, times: np.ndarray) -> Figure:
+    """The latent trajectory on its first two principal components (see :func:`phase_portrait`)."""
+    latents, times = np.asarray(latents, dtype=np.float64), np.asarray(times, dtype=np.float64)
+    if not np.isfinite(latents).all():
+        raise KinecastError("latents", "contain NaN or infinite values (did the model diverge?)")
+    if len(times) != len(latents):
+        raise ValueError(f"{len(latents)} latent points but {len(times)} times")
+    pca = principal_components(latents, k=2)
+    fig, (ax,) = _new_figure(1)
+    label = "PC{} ({:.1f}% of variance)"
+    if pca.scores.shape[1] >= 2:
+        x, y = pca.scores[:, 0], pca.scores[:, 1]
+        ax.set_xlabel(label.format(1, 100 * pca.explained[0]))
+        ax.set_ylabel(label.format(2, 100 * pca.explained[1]))
+    else:  # a one-dimensional latent: show it against time
+        x, y = times, pca.scores[:, 0]
+        ax.set_xlabel("time (s)")
+        ax.set_ylabel(label.format(1, 100 * pca.explained[0]))
+    ax.plot(x, y, color="0.75", lw=0.8, zorder=1)
+    dots = ax.scatter(x, y, c=times, cmap="viridis", s=12, zorder=2)
+    fig.colorbar(dots, ax=ax, label="time (s)")
+    ax.set_title("latent trajectory", fontsize=10)
+    ax.grid(alpha=0.3)
+    return fig
+
+
+def phase_portrait(latents: np.ndarray, times: np.ndarray, out: str | Path,
+                   overwrite: bool = False) -> Path:
+    """Plot a latent trajectory ``(N, D)`` on its first two principal components, coloured by time.
+
+    The axis labels give each component's share of the variance. A one-dimensional latent is drawn
+    against time instead.
+
+    Returns
+    -------
+    Path
+    """
+    path = _check_out(out, overwrite)
+    return _save(phase_portrait_figure(latents, times), path, overwrite)
+
+
+def _show(ax, frame: np.ndarray, cmap: str) -> None:
+    """An image (RGB as is, grey in 'gray') or, for any other map, the channel mean on [0, 1]."""
+    if frame.shape[0] == 3 and cmap == "gray":
+        ax.imshow(np.clip(frame.transpose(1, 2, 0), 0, 1), interpolation="nearest")
+    else:
+        ax.imshow(frame.mean(axis=0), cmap=cmap, vmin=0.0, vmax=1.0, interpolation="nearest")
+    ax.set_xticks([])
+    ax.set_yticks([])
+
+
+def truth_vs_prediction_figure(truth: np.ndarray | None, pred: np.ndarray, times: np.ndarray,
+                               every: int) -> Figure:
+    """Rows of frames (see :func:`truth_vs_prediction`)."""
+    pred, times = np.asarray(pred, dtype=np.float32), np.asarray(times, dtype=np.float64)
+    if pred.ndim != 4 or len(times) != len(pred):
+        raise ValueError(f"pred must be (T, C, H, W) with T = len(times), got {pred.shape}")
+    if truth is not None and np.shape(truth) != pred.shape:
+        raise ValueError(f"truth {np.shape(truth)} and pred {pred.shape} differ in shape")
+    if int(every) != every or every < 1:
+        raise ValueError(f"every must be a whole number >= 1, got {every!r}")
+    picks = np.arange(0, len(pred), int(every))
+    if len(picks) > MAX_QUICK_COLUMNS:
+        raise KinecastError(f"every={every}", f"{len(picks)} columns is too many for a quick look: use "
+                                              f"every >= {math.ceil(len(pred) / MAX_QUICK_COLUMNS)}")
+    rows = [("prediction", pred, "gray")]
+    if truth is not None:
+        truth = np.asarray(truth, dtype=np.float32)
+        rows = [("truth", truth, "gray"), rows[0], ("abs. error\n(0 to 1)", np.abs(truth - pred), "magma")]
+    fig = Figure(figsize=(FRAME_INCHES * len(picks), FRAME_INCHES * len(rows) + 0.4), layout="constrained")
+    FigureCanvasAgg(fig)
+    axes = fig.subplots(len(rows), len(picks), squeeze=False)
+    fmt = time_format(times)
+    for r, (name, frames, cmap) in enumerate(rows):
+        for c, i in enumerate(picks):
+            _show(axes[r, c], frames[i], cmap)
+            if r == 0:
+                axes[r, c].set_title(fmt.format(times[i]), fontsize=8)
+        axes[r, 0].set_ylabel(name, fontsize=8)
+    fig.suptitle(NOTE, fontsize=7, color="0.3")
+    return fig
+
+
+def truth_vs_prediction(truth: np.ndarray | None, pred: np.ndarray, times: np.ndarray,
+                        out: str | Path, every: int, overwrite: bool = False) -> Path:
+    """Rows of every ``every``-th frame: truth, prediction and absolute error (0..1, 'magma').
+
+    Parameters
+    ----------
+    truth : ndarray or None
+        ``(T, C, H, W)`` in [0, 1]; None draws the prediction row only.
+    pred : ndarray
+        ``(T, C, H, W)`` in [0, 1].
+    times : ndarray, shape (T,)
+        Seconds, written above each column.
+    out : str or Path
+        ``.png``, ``.svg`` or ``.pdf``.
+    every : int
+        Column stride; at most 16 columns.
+    overwrite : bool
+        Replace an existing file.
+
+    Returns
+    -------
+    Path
+    """
+    path = _check_out(out, overwrite)
+    return _save(truth_vs_prediction_figure(truth, pred, times, every), path, overwrite)

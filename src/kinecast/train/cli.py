@@ -1,0 +1,55 @@
+"""``kinecast fit``: train on one or more recordings and write a run folder."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from .. import config as cfgmod
+from ..errors import KinecastError
+
+
+def configure(parser) -> None:
+    parser.add_argument("paths", nargs="*", metavar="PATH",
+                        help="recordings: frame folders, TIFF stacks, videos, or a folder of trial folders")
+    parser.add_argument("--out", metavar="RUN", help="run folder to write")
+    parser.add_argument("--resume", metavar="RUN", help="continue the run in this folder")
+    parser.add_argument("--overwrite", action="store_true", help="replace an existing run folder")
+    parser.add_argument("--budget", metavar="DURATION", help="wall-clock budget, e.g. 90s, 5m, 1h (train.budget)")
+    parser.add_argument("--steps", type=int, metavar="N", help="step budget (train.steps)")
+    parser.add_argument("--device", choices=("auto", "cpu", "cuda"), help="compute device (train.device)")
+    parser.add_argument("--seed", type=int, help="random seed (train.seed)")
+    parser.add_argument("--quiet", action="store_true", help="no progress bar")
+
+
+def run(args, cfg) -> int:
+    from .loop import fit
+
+    if args.resume:
+        if args.out and Path(args.out) != Path(args.resume):
+            raise KinecastError("--out", "give either --out RUN or --resume RUN, not both")
+        if args.config:
+            raise KinecastError("--config", "a resumed run keeps its own config.toml; use --set to change keys")
+        from .checkpoint import CONFIG, check_run_folder
+
+        check_run_folder(Path(args.resume), need_resume=True)
+        cfg = cfgmod.apply_overrides(cfgmod.load(Path(args.resume) / CONFIG), args.overrides)
+        out = args.resume
+    else:
+        if not args.out:
+            raise KinecastError("kinecast fit", "give --out RUN (or --resume RUN)")
+        if not args.paths:
+            raise KinecastError("kinecast fit", "no recordings given")
+        out = args.out
+    sugar = [f"train.{key}={value}" for key, value in
+             (("budget", f'"{args.budget}"' if args.budget else None), ("steps", args.steps),
+              ("device", f'"{args.device}"' if args.device else None), ("seed", args.seed))
+             if value is not None]
+    if args.steps is not None and args.budget is None:
+        sugar.append('train.budget="0"')
+    cfg = cfgmod.apply_overrides(cfg, sugar)
+    summary = fit(args.paths, out, cfg, resume=bool(args.resume), overwrite=args.overwrite,
+                  show_progress=not args.quiet)
+    if summary:
+        print(f"run written to {out}: {summary['steps']} steps in {summary['elapsed_s']:.0f} s, "
+              f"best validation MSE {summary['best_val_mse']:.4g} ({summary['stop_reason']})")
+    return 0

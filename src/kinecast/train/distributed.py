@@ -1,0 +1,92 @@
+"""Data-parallel training with torch.distributed, when launched by ``torchrun``.
+
+``torchrun --nproc_per_node=N -m kinecast fit ...`` sets WORLD_SIZE/RANK; each process draws its own
+windows, DistributedDataParallel averages the gradients, and only rank 0 validates and writes files.
+Decisions taken on rank 0 (stop, window length) are broadcast every step so all ranks stay in step.
+Gloo on the CPU, NCCL on a GPU.
+"""
+
+from __future__ import annotations
+
+import os
+from dataclasses import dataclass
+
+import torch
+import torch.distributed as dist
+
+
+@dataclass
+class Context:
+    rank: int = 0
+    world: int = 1
+    device: torch.device = torch.device("cpu")
+
+    @property
+    def main(self) -> bool:
+        return self.rank == 0
+
+    @property
+    def active(self) -> bool:
+        return self.world > 1
+
+
+def pick_device(pref: str) -> torch.device:
+    """``auto`` → CUDA when present, else CPU."""
+    if pref == "cuda" or (pref == "auto" and torch.cuda.is_available()):
+        if not torch.cuda.is_available():
+            from ..errors import KinecastError
+
+            raise KinecastError("--device cuda", "no CUDA device is available on this machine")
+        return torch.device("cuda")
+    return torch.device("cpu")
+
+
+def setup(device_pref: str) -> Context:
+    world = int(os.environ.get("WORLD_SIZE", "1"))
+    device = pick_device(device_pref)
+    if world <= 1:
+        return Context(device=device)
+    rank = int(os.environ["RANK"])
+    if device.type == "cuda":
+        local = int(os.environ.get("LOCAL_RANK", "0"))
+        torch.cuda.set_device(local)
+        device = torch.device("cuda", local)
+    if not dist.is_initialized():
+        dist.init_process_group("nccl" if device.type == "cuda" else "gloo")
+    return Context(rank=rank, world=world, device=device)
+
+
+def sync_decision(ctx: Context, stop: bool, window: int) -> tuple[bool, int]:
+    """Rank 0's (stop, window) for every rank."""
+    if not ctx.active:
+        return stop, window
+    t = torch.tensor([int(stop), window], dtype=torch.int64, device=ctx.device)
+    dist.broadcast(t, src=0)
+    return bool(t[0].item()), int(t[1].item())
+
+
+def any_rank(ctx: Context, flag: bool) -> bool:
+    """True when ``flag`` is set on any rank (e.g. a non-finite loss)."""
+    if not ctx.active:
+        return flag
+    t = torch.tensor([int(flag)], dtype=torch.int64, device=ctx.device)
+    dist.all_reduce(t, op=dist.ReduceOp.MAX)
+    return bool(t.item())
+
+
+def replica_spread(ctx: Context, model: torch.nn.Module) -> float:
+    """Largest difference of any parameter between ranks (0.0 when the replicas agree exactly)."""
+    with torch.no_grad():
+        vec = torch.cat([p.detach().reshape(-1) for p in model.parameters()])
+    if not ctx.active:
+        return 0.0
+    hi, lo = vec.clone(), vec.clone()
+    dist.all_reduce(hi, op=dist.ReduceOp.MAX)
+    dist.all_reduce(lo, op=dist.ReduceOp.MIN)
+    return float((hi - lo).max())
+
+
+def teardown(ctx: Context) -> None:
+    if ctx.active and dist.is_initialized():
+        dist.barrier()
+        dist.destroy_process_group()

@@ -1,0 +1,264 @@
+"""The training loop: one function, readable top to bottom.
+
+``fit(paths, out, cfg)`` reads the recordings, splits off validation, estimates the static
+background, builds the model and optimises the ELBO on random windows whose length grows when
+validation stalls. Validation is the forecast error over a fixed long horizon (condition on the
+first frames, roll out with mean weights), so the best checkpoint is the best extrapolator.
+"""
+
+from __future__ import annotations
+
+import copy
+import math
+import os
+import time
+from pathlib import Path
+
+import numpy as np
+import torch
+from tqdm import tqdm
+
+from .. import config as cfgmod
+from ..errors import KinecastError
+from ..model import build_model, to_model_time
+from . import checkpoint as ck
+from . import distributed as D
+from .data import WindowSampler, expand_paths, load_recordings, median_background, split_train_val
+from .schedule import Curriculum, kl_weight, learning_rate, progress
+
+VAL_WINDOWS = 8  # validation windows (evenly spaced over the held-out frames)
+LOG_EVERY = 10  # steps between log rows
+
+
+class TrainingStopped(KinecastError):
+    """Training could not continue (repeated numerical faults)."""
+
+
+def _prepare_folder(run: Path, paths: list[Path], resume: bool, overwrite: bool) -> None:
+    for p in paths:
+        src = p.resolve()
+        if run.resolve() == src or src in run.resolve().parents:
+            raise KinecastError(run, f"output folder is inside the input {p}; choose a folder elsewhere")
+    if resume:
+        ck.check_run_folder(run, need_resume=True)
+    elif run.exists() and any(run.iterdir()) and not overwrite:
+        raise KinecastError(run, "already exists (pass --resume to continue it or --overwrite to replace it)")
+
+
+def validate(model, sampler: WindowSampler | None, window: int, cfg) -> float:
+    """Mean forecast MSE over held-out windows of ``window`` frames (present frames only)."""
+    if sampler is None:
+        return math.nan
+    batch = sampler.fixed(window, VAL_WINDOWS)
+    if batch is None:
+        return math.nan
+    k = cfg.model.velocity_frames
+    dev = next(model.parameters()).device
+    with torch.no_grad():
+        frames = batch.frames.to(dev)
+        t = to_model_time(batch.times, cfg).to(dev)
+        pred, _ = model.rollout(frames[:, :k], t, samples=1, mean_weights=True)
+        err = ((pred[0] - frames) ** 2).mean(dim=(2, 3, 4))[:, k:]
+        mask = batch.mask[:, k:].to(dev).float()
+    return float((err * mask).sum() / mask.sum().clamp(min=1))
+
+
+def fit(paths, out, cfg: cfgmod.Config | None = None, *, resume: bool = False, overwrite: bool = False,
+        fault_hook=None, show_progress: bool = True) -> dict:
+    """Train a latent ODE model on recordings and write a run folder.
+
+    Parameters
+    ----------
+    paths : list of path
+        Recordings (frame folders, TIFF stacks, videos), or folders of trial folders.
+    out : path
+        The run folder to write.
+    cfg : Config, optional
+        The one config; ``train`` sets the recipe, ``solver.time_scale`` = 0 is resolved from the data.
+        With ``resume``, default: the run's own config.toml (pass a changed copy to extend
+        ``train.steps`` or ``train.budget``, which count from the run's start).
+    resume : bool
+        Continue the run in ``out`` (step count, optimiser, schedule and random state); ``paths``
+        may be empty to reuse the run's recordings.
+    overwrite : bool
+        Replace an existing run folder.
+    fault_hook : callable, optional
+        ``fault_hook(step) -> bool``; True injects a non-finite loss at that step (tests).
+
+    Returns
+    -------
+    dict
+        The summary also written to ``summary.json``.
+    """
+    run = Path(out)
+    if resume:
+        ck.check_run_folder(run, need_resume=True)
+        paths = paths or ck.load_tensors(run / ck.RESUME)[1]["paths"]
+        cfg = cfg or cfgmod.load(run / ck.CONFIG)
+    cfg = cfgmod.from_dict(cfgmod.to_dict(cfg or cfgmod.Config()))  # a private, validated copy
+    paths = expand_paths(paths)
+    ctx = D.setup(cfg.train.device)
+    if ctx.main:
+        _prepare_folder(run, paths, resume, overwrite)
+    torch.set_num_threads(cfg.train.threads or os.cpu_count() or 1)
+    torch.manual_seed(cfg.train.seed + ctx.rank)
+
+    # --- data -----------------------------------------------------------------------------
+    recs = load_recordings(paths, cfg)
+    k = cfg.model.velocity_frames
+    if cfg.solver.time_scale == 0:
+        median_dt = float(np.median(np.concatenate([np.diff(r.times) for r in recs])))
+        cfg.solver.time_scale = cfg.solver.units_per_frame / median_dt
+    train_recs, val_recs = split_train_val(recs, cfg, min_len=max(cfg.train.window_start, k + 1))
+    sampler = WindowSampler(train_recs, k, cfg.train.seed + ctx.rank)
+    longest = sampler.longest_window()
+    if cfg.train.window_max:
+        longest = min(longest, cfg.train.window_max)
+    if longest < k + 1:
+        raise KinecastError(paths[0], f"too short: {longest} frames, the model needs at least {k + 1}")
+    val_sampler = WindowSampler(val_recs or train_recs, k, 0)
+    val_window = min(val_sampler.longest_window(), max(longest, 3 * cfg.train.window_start))
+    total_frames = sum(r.n_frames for r in train_recs)
+
+    # --- model ----------------------------------------------------------------------------
+    channels = ck.channels_of(cfg)
+    model = build_model(cfg, channels)
+    background = median_background(train_recs) if cfg.model.background else None
+    if background is not None:
+        model.set_background(torch.from_numpy(background))
+    model.to(ctx.device)
+    opt = torch.optim.Adam(model.parameters(), lr=cfg.train.lr)
+    cur = Curriculum(min(cfg.train.window_start, longest), longest, cfg.train.window_growth,
+                     cfg.train.patience)
+    step, elapsed_before, faults, lr_scale, rows = 0, 0.0, 0, 1.0, []
+    if resume:
+        tensors, meta = ck.load_tensors(run / ck.RESUME)
+        model.load_state_dict({k_: v for k_, v in tensors.items() if not k_.startswith(("opt.", "rng."))})
+        ck.restore_optimizer(opt, tensors, meta["optimizer"])
+        torch.set_rng_state(tensors["rng.torch"])
+        sampler.rng.bit_generator.state = meta["sampler_rng"]
+        cur = Curriculum(**meta["curriculum"])
+        step, elapsed_before = meta["step"], meta["elapsed"]
+        faults, lr_scale = meta["faults"], meta["lr_scale"]
+        rows = [r for r in ck.read_log(run) if r.get("step", 0) <= step]
+    net = torch.nn.parallel.DistributedDataParallel(model) if ctx.active else model
+
+    if ctx.main:
+        run.mkdir(parents=True, exist_ok=True)
+        cfgmod.save(cfg, run / ck.CONFIG)
+        if background is not None:
+            import imageio.v3 as iio
+
+            img = (np.clip(background.transpose(1, 2, 0), 0, 1) * 255).round().astype(np.uint8)
+            ck.write_with(run / ck.BACKGROUND, lambda tmp: iio.imwrite(tmp, img.squeeze()))
+
+    def save_resume():
+        tensors = dict(model.state_dict())
+        opt_t, opt_meta = ck.optimizer_tensors(opt)
+        tensors.update(opt_t)
+        tensors["rng.torch"] = torch.get_rng_state()
+        meta = {"step": step, "elapsed": elapsed_before + (time.time() - t0), "faults": faults,
+                "lr_scale": lr_scale, "curriculum": cur.state(), "optimizer": opt_meta,
+                "sampler_rng": sampler.rng.bit_generator.state, "paths": [str(p) for p in paths],
+                "budget": cfg.train.budget, "steps": cfg.train.steps}
+        ck.save_tensors(run / ck.RESUME, tensors, meta)
+        ck.write_log(run, rows)
+
+    # --- loop -----------------------------------------------------------------------------
+    budget_s = cfgmod.parse_budget(cfg.train.budget)
+    steps_total = cfg.train.steps
+    if not steps_total and not budget_s:
+        raise KinecastError("fit", "no budget: give --steps N or --budget DURATION")
+    good = (copy.deepcopy(model.state_dict()), copy.deepcopy(opt.state_dict()))
+    t0 = time.time()
+    bar = tqdm(total=steps_total or int(budget_s), disable=not (show_progress and ctx.main),
+               unit="step" if steps_total else "s", dynamic_ncols=True, initial=step if steps_total else 0)
+    val = math.nan
+    stop_reason = "budget"
+    while True:
+        elapsed = elapsed_before + time.time() - t0
+        prog = progress(step, elapsed, steps_total, budget_s)
+        stop = (steps_total and step >= steps_total) or (budget_s and elapsed >= budget_s) or cur.done
+        stop, cur.window = D.sync_decision(ctx, bool(stop), cur.window)
+        if stop:
+            stop_reason = "early stop: validation stalled at the longest window" if cur.done else "budget"
+            break
+        lr = learning_rate(cfg.train, step, prog, lr_scale)
+        beta = kl_weight(cfg.train, prog)
+        for g in opt.param_groups:
+            g["lr"] = lr
+        batch = sampler.draw(cfg.train.batch, cur.window)
+        t = to_model_time(batch.times, cfg).to(ctx.device)
+        terms = net(batch.frames.to(ctx.device), t, n_total_frames=total_frames, beta=beta,
+                    mask=batch.mask.to(ctx.device))
+        loss = terms["loss"]
+        if fault_hook is not None and fault_hook(step):
+            loss = loss * float("nan")
+        opt.zero_grad(set_to_none=True)
+        bad = not torch.isfinite(loss)
+        if not bad:
+            loss.backward()
+            gnorm = torch.nn.utils.clip_grad_norm_(model.parameters(), cfg.train.grad_clip or math.inf)
+            bad = not torch.isfinite(gnorm)
+        if D.any_rank(ctx, bad):
+            faults += 1
+            if faults > cfg.train.max_faults:
+                stop_reason = f"stopped after {faults} non-finite losses"
+                break
+            model.load_state_dict(good[0])
+            opt.load_state_dict(good[1])
+            lr_scale *= 0.5
+            tqdm.write(f"kinecast: non-finite loss at step {step}: rolled back, learning rate × {lr_scale:g}")
+            continue
+        opt.step()
+        step += 1
+        if steps_total:
+            bar.update(1)
+        else:
+            bar.n = min(int(elapsed), int(budget_s))
+        if step % LOG_EVERY == 0 or step == 1:
+            row = {"step": step, "time_s": round(elapsed, 3), "lr": lr, "beta": beta, "window": cur.window}
+            row.update({k_: float(v.detach()) for k_, v in terms.items() if torch.is_tensor(v) and v.dim() == 0})
+            rows.append(row)
+        if step % cfg.train.val_every == 0:
+            if ctx.main:
+                model.eval()
+                val = validate(model, val_sampler, val_window, cfg)
+                model.train()
+                rows.append({"step": step, "time_s": round(elapsed, 3), "val_mse": val, "window": cur.window})
+                if cur.update(val):
+                    ck.save_tensors(run / ck.WEIGHTS, model.state_dict(), {"step": step, "val_mse": val})
+            good = (copy.deepcopy(model.state_dict()), copy.deepcopy(opt.state_dict()))
+        if ctx.main and step % cfg.train.checkpoint_every == 0:
+            save_resume()
+        left = (steps_total - step) if steps_total else max(0.0, budget_s - elapsed)
+        bar.set_postfix_str(f"loss {loss.item():.4g} nll {terms['nll'].item():.4g} "
+                            f"kl {(terms['kl_s0'] + terms['kl_v0']).item():.3g} val {val:.3g} "
+                            f"win {cur.window} left {left:.0f}{'' if steps_total else 's'}", refresh=False)
+    bar.close()
+
+    spread = D.replica_spread(ctx, model)
+    summary = {}
+    if ctx.main:
+        if not (run / ck.WEIGHTS).exists() or not math.isfinite(cur.best):
+            val = validate(model.eval(), val_sampler, val_window, cfg)
+            ck.save_tensors(run / ck.WEIGHTS, model.state_dict(), {"step": step, "val_mse": val})
+            cur.best = val if math.isfinite(val) else cur.best
+        save_resume()
+        from ..plots import loss_curve
+
+        loss_curve(rows, run / ck.LOSS_PLOT, overwrite=True)
+        summary = {"steps": step, "elapsed_s": round(elapsed_before + time.time() - t0, 2),
+                   "stop_reason": stop_reason, "best_val_mse": cur.best, "val_window": val_window,
+                   "final_window": cur.window, "longest_window": longest, "faults": faults,
+                   "recordings": [str(p) for p in paths], "train_recordings": len(train_recs),
+                   "val_recordings": len(val_recs), "time_scale": cfg.solver.time_scale,
+                   "world_size": ctx.world, "replica_spread": spread, "device": str(ctx.device),
+                   "threads": torch.get_num_threads(),
+                   "caution": "Forecasts are statistical extrapolations, not measurements; "
+                              "not for safety-critical control."}
+        ck.write_summary(run, summary)
+    D.teardown(ctx)
+    if stop_reason.startswith("stopped after"):
+        raise TrainingStopped(run, f"training {stop_reason}; the best checkpoint is kept in {run / ck.WEIGHTS}")
+    return summary

@@ -1,0 +1,77 @@
+"""Schedules: learning rate, KL weight and the window curriculum.
+
+All three follow ``progress`` in [0, 1]: the larger of steps done / step budget and seconds spent /
+wall-clock budget, so a run shaped by either budget gets the whole schedule.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+from ..config import TrainConfig
+
+
+def progress(step: int, elapsed: float, steps: int, budget_s: float) -> float:
+    parts = []
+    if steps:
+        parts.append(step / steps)
+    if budget_s:
+        parts.append(elapsed / budget_s)
+    return min(1.0, max(parts)) if parts else 0.0
+
+
+def learning_rate(cfg: TrainConfig, step: int, prog: float, scale: float = 1.0) -> float:
+    """Linear warm-up over ``warmup_steps``, then cosine decay to ``lr_min_ratio`` × peak.
+
+    ``scale`` < 1 after numerical faults (each fault halves it).
+    """
+    peak = cfg.lr * scale
+    if step < cfg.warmup_steps:
+        return peak * (step + 1) / cfg.warmup_steps
+    floor = cfg.lr_min_ratio
+    return peak * (floor + (1 - floor) * 0.5 * (1 + math.cos(math.pi * prog)))
+
+
+def kl_weight(cfg: TrainConfig, prog: float) -> float:
+    """β rises linearly from 0 to 1 over the first ``kl_warmup`` share of the budget."""
+    if cfg.kl_warmup <= 0:
+        return 1.0
+    return min(1.0, prog / cfg.kl_warmup)
+
+
+@dataclass
+class Curriculum:
+    """Grow the window when validation stalls; stop when it stalls at the longest window.
+
+    Validation always scores the same long forecast horizon, so scores stay comparable as the
+    training window grows and the best one marks the checkpoint to keep.
+
+    Attributes are plain numbers so the state is saved with a checkpoint and restored on resume.
+    """
+
+    window: int
+    longest: int
+    growth: float
+    patience: int
+    best: float = math.inf
+    stalls: int = 0
+    done: bool = False
+
+    def update(self, val: float) -> bool:
+        """Record a validation score; return True when it is the best so far."""
+        improved = val < self.best * (1 - 1e-3)
+        if improved:
+            self.best, self.stalls = val, 0
+            return True
+        self.stalls += 1
+        if self.stalls >= self.patience:
+            self.stalls = 0
+            if self.window >= self.longest:
+                self.done = True
+            else:
+                self.window = min(self.longest, max(self.window + 1, int(round(self.window * self.growth))))
+        return False
+
+    def state(self) -> dict:
+        return {k: getattr(self, k) for k in ("window", "longest", "growth", "patience", "best", "stalls", "done")}

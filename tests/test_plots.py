@@ -1,0 +1,173 @@
+"""Plots: PCA against outside references, and figures that are written, readable and complete.
+
+Outside references used here:
+- PCA: the principal components are the eigenvectors of the sample covariance, ordered by
+  eigenvalue, and the explained share is eigenvalue / trace (Jolliffe, *Principal Component
+  Analysis*, 2nd ed., 2002; from memory). Reference implementation: ``numpy.linalg.eigh`` of
+  ``numpy.cov``.
+- Closed form: for points (a·cos θ, b·sin θ) at N >= 3 evenly spaced angles over a full turn,
+  mean(cos²) = mean(sin²) = 1/2 and mean(cos·sin) = 0 (discrete orthogonality of the Fourier basis),
+  so the variances along the ellipse axes are a²/2 and b²/2 and PC1 explains a² / (a² + b²).
+- PNG (ISO/IEC 15948) read back with imageio; matplotlib's Agg writer stores RGBA (4 channels).
+"""
+
+from __future__ import annotations
+
+import imageio.v3 as iio
+import numpy as np
+import pytest
+
+from kinecast import plots as P
+from kinecast.errors import KinecastError
+
+
+def test_principal_components_match_eigh_of_the_covariance():
+    rng = np.random.default_rng(0)
+    mix = rng.normal(size=(6, 6)) * np.array([3.0, 2.0, 1.0, 0.5, 0.2, 0.1])[:, None]
+    x = rng.normal(size=(300, 6)) @ mix + rng.normal(size=6)
+    pca = P.principal_components(x, k=3)
+
+    evals, evecs = np.linalg.eigh(np.cov(x, rowvar=False))  # ascending
+    evals, evecs = evals[::-1], evecs[:, ::-1]
+    np.testing.assert_allclose(pca.explained, evals[:3] / evals.sum(), rtol=1e-10)
+    for i in range(3):
+        assert abs(pca.components[i] @ evecs[:, i]) == pytest.approx(1.0, abs=1e-9)  # same axis, either sign
+        sign = np.sign(pca.components[i] @ evecs[:, i])
+        np.testing.assert_allclose(pca.scores[:, i], sign * (x - x.mean(0)) @ evecs[:, i], atol=1e-9)
+    np.testing.assert_allclose(pca.mean, x.mean(0))
+
+
+def test_principal_components_of_an_ellipse_closed_form():
+    a, b, phi, n = 3.0, 1.0, 0.6, 64
+    th = 2 * np.pi * np.arange(n) / n
+    rot = np.array([[np.cos(phi), -np.sin(phi)], [np.sin(phi), np.cos(phi)]])
+    pts = np.zeros((n, 4))
+    pts[:, :2] = np.c_[a * np.cos(th), b * np.sin(th)] @ rot.T + [5.0, -2.0]
+    pca = P.principal_components(pts)
+    assert pca.explained[0] == pytest.approx(a**2 / (a**2 + b**2), rel=1e-12)
+    assert pca.explained[1] == pytest.approx(b**2 / (a**2 + b**2), rel=1e-12)
+    assert abs(pca.components[0] @ [np.cos(phi), np.sin(phi), 0, 0]) == pytest.approx(1.0, abs=1e-12)
+    assert pca.components[0][np.abs(pca.components[0]).argmax()] > 0  # documented sign convention
+
+
+def test_principal_components_edge_cases():
+    assert P.principal_components(np.ones((5, 3))).explained.tolist() == [0.0, 0.0]
+    assert P.principal_components(np.arange(6.0)[:, None], k=2).scores.shape == (6, 1)
+    with pytest.raises(ValueError):
+        P.principal_components(np.zeros((1, 3)))
+
+
+def read_png(path):
+    img = iio.imread(path)
+    assert path.stat().st_size > 0
+    assert img.ndim == 3 and img.shape[2] == 4  # matplotlib's Agg PNG is RGBA
+    assert img[..., :3].std() > 0  # something is drawn
+    return img
+
+
+def test_phase_portrait_labels_give_explained_variance(tmp_path):
+    th = np.linspace(0, 4 * np.pi, 120)
+    lat = np.c_[2 * np.cos(th), np.sin(th), np.zeros_like(th)]
+    fig = P.phase_portrait_figure(lat, th)
+    ax = fig.axes[0]
+    share = P.principal_components(lat).explained
+    assert f"{100 * share[0]:.1f}%" in ax.get_xlabel() and f"{100 * share[1]:.1f}%" in ax.get_ylabel()
+    read_png(P.phase_portrait(lat, th, tmp_path / "phase.png"))
+    one_d = P.phase_portrait_figure(np.cos(th)[:, None], th)  # 1-D latent: drawn against time
+    assert one_d.axes[0].get_xlabel() == "time (s)"
+    with pytest.raises(KinecastError, match="NaN"):
+        P.phase_portrait_figure(np.full((4, 2), np.nan), np.arange(4.0))
+
+
+def write_log(path, rows, header="step,time_s,loss,nll,kl_w,lr,beta,val_mse"):
+    path.write_text(header + "\n" + "\n".join(rows) + "\n")
+    return path
+
+
+def test_loss_curve_from_csv_subset_and_scales(tmp_path):
+    rows = [f"{s},{0.1 * s:.1f},{2 + np.exp(-s / 10):.4f},{-50 + s:.1f},{5 / (1 + s):.4f},0.003,"
+            f"{min(1, s / 10):.2f},{'0.01' if s % 10 == 0 else ''}" for s in range(40)]
+    log = write_log(tmp_path / "train_log.csv", rows)
+    fig = P.loss_curve_figure(log)
+    titles = [ax.get_title() for ax in fig.axes]
+    assert titles == ["objective", "KL divergences and agreement", "frame error (MSE)", "learning rate",
+                      "KL weight β"]
+    scales = dict(zip(titles, (ax.get_yscale() for ax in fig.axes)))
+    assert scales["objective"] == "linear"  # nll is negative here: no log scale
+    assert scales["KL divergences and agreement"] == "log"
+    assert scales["KL weight β"] == "linear"  # beta starts at 0
+    val = fig.axes[2].get_lines()[0]
+    assert len(val.get_xdata()) == 4  # validation rows only (steps 0, 10, 20, 30)
+    read_png(P.loss_curve(log, tmp_path / "loss.png"))
+    read_png(P.loss_curve({"loss": [3.0, 2.0, 1.5]}, tmp_path / "loss_dict.png"))  # no step column
+
+
+def test_loss_curve_from_row_records():
+    rows = [{"step": s, "loss": 1.0 / s, "lr": 1e-3} for s in range(1, 31)]
+    rows += [{"step": s, "val_mse": 0.1 / s, "window": 8} for s in (10, 20, 30)]  # sparse rows
+    fig = P.loss_curve_figure(rows)
+    titles = [ax.get_title() for ax in fig.axes]
+    assert titles == ["objective", "frame error (MSE)", "learning rate", "window (frames)"]
+    np.testing.assert_array_equal(fig.axes[1].get_lines()[0].get_xdata(), [10, 20, 30])
+    with pytest.raises(KinecastError, match="non-number"):
+        P.loss_curve_figure([{"step": 1, "loss": "high"}])
+
+
+def test_loss_curve_bad_logs_name_file_and_problem(tmp_path):
+    with pytest.raises(KinecastError, match="not found"):
+        P.loss_curve(tmp_path / "missing.csv", tmp_path / "a.png")
+    bad = write_log(tmp_path / "bad.csv", ["0,0,1,1,1,0.1,0,", "1,0.1,oops,1,1,0.1,0,"])
+    with pytest.raises(KinecastError) as err:
+        P.loss_curve(bad, tmp_path / "a.png")
+    assert str(bad) in str(err.value) and "line 3" in str(err.value) and "'loss'" in str(err.value)
+    other = write_log(tmp_path / "other.csv", ["1,2"], header="alpha,gamma")
+    with pytest.raises(KinecastError, match="no plottable columns"):
+        P.loss_curve(other, tmp_path / "a.png")
+    assert not (tmp_path / "a.png").exists()
+
+
+def test_metric_curves_panels_lines_and_threshold(tmp_path):
+    t = np.arange(1, 21) / 10.0
+    per_method = {
+        "model": {"mse": t / 10, "psnr": np.r_[np.inf, 30 - t[1:]], "ssim": 1 - t / 4, "pos_err_px": t * 2},
+        "persistence": {"mse": t / 5, "ssim": 1 - t / 2},
+    }
+    fig = P.metric_curves_figure(per_method, t, threshold=0.8)
+    labels = [ax.get_ylabel() for ax in fig.axes if ax.get_visible()]
+    assert labels == ["MSE", "PSNR (dB)", "SSIM", "position error (px)"]
+    ssim_ax = fig.axes[2]
+    dashed = [ln for ln in ssim_ax.get_lines() if ln.get_linestyle() == "--"]
+    assert len(dashed) == 1 and set(dashed[0].get_ydata()) == {0.8}
+    assert len(ssim_ax.get_lines()) == 3  # two methods + the threshold
+    assert len(fig.axes[0].get_lines()) == 2 and len(fig.axes[1].get_lines()) == 1
+    assert np.isnan(fig.axes[1].get_lines()[0].get_ydata()[0])  # infinite PSNR leaves a gap
+    read_png(P.metric_curves(per_method, t, tmp_path / "metrics.png", threshold=0.8))
+    with pytest.raises(ValueError):
+        P.metric_curves_figure({"m": {"mse": t[:5]}}, t)
+
+
+def test_truth_vs_prediction_rows(tmp_path):
+    rng = np.random.default_rng(1)
+    truth = rng.random((20, 1, 8, 8)).astype(np.float32)
+    pred = np.clip(truth + 0.1, 0, 1)
+    times = np.arange(20) / 25.0
+    fig = P.truth_vs_prediction_figure(truth, pred, times, every=5)
+    assert len(fig.axes) == 3 * 4  # truth, prediction, error rows × frames 0, 5, 10, 15
+    assert fig.axes[1].get_title() == "t = 0.20 s"
+    assert len(P.truth_vs_prediction_figure(None, pred, times, every=5).axes) == 4
+    read_png(P.truth_vs_prediction(truth, pred, times, tmp_path / "rows.png", every=5))
+    with pytest.raises(KinecastError, match="too many"):
+        P.truth_vs_prediction(truth, pred, times, tmp_path / "wide.png", every=1)
+
+
+def test_plots_refuse_to_overwrite_and_unknown_suffix(tmp_path):
+    target = tmp_path / "loss.png"
+    target.write_bytes(b"mine")
+    with pytest.raises(KinecastError, match="already exists"):
+        P.loss_curve({"loss": [1.0, 0.5]}, target)
+    assert target.read_bytes() == b"mine"
+    with pytest.raises(KinecastError, match="unknown plot extension '.bmp'"):
+        P.loss_curve({"loss": [1.0, 0.5]}, tmp_path / "loss.bmp")
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["loss.png"]
+    read_png(P.loss_curve({"loss": [1.0, 0.5]}, target, overwrite=True))
+    assert P.loss_curve({"loss": [1.0, 0.5]}, tmp_path / "loss.svg").read_text().lstrip().startswith("<?xml")

@@ -1,0 +1,136 @@
+"""Trainer: run folder contents, determinism, resume, curriculum, faults, bad input.
+
+These tests check the trainer's own promises (reproducibility with a fixed seed is common practice
+for PyTorch: torch.manual_seed + same thread count gives bit-identical CPU results, per the PyTorch
+"Reproducibility" notes). Learning quality is measured in bench/, not here.
+"""
+
+import json
+import math
+
+import pytest
+import torch
+
+from kinecast import config as C
+from kinecast.cli import main
+from kinecast.errors import KinecastError
+from kinecast.rigs import write_rig
+from kinecast.train import fit, load_run
+from kinecast.train import checkpoint as ck
+from kinecast.train.schedule import Curriculum, kl_weight, learning_rate
+
+
+def small_cfg(**train):
+    cfg = C.apply_overrides(C.Config(), [
+        "data.size=32", "model.latent_dim=4", "model.enc_channels=8", "model.dec_channels=8",
+        "model.hidden=16", "train.batch=4", "train.val_every=5", "train.checkpoint_every=5",
+        "train.window_start=6", "train.threads=1", "train.budget=0", "train.warmup_steps=2",
+    ] + [f"train.{k}={v}" for k, v in train.items()])
+    cfg.data.cache = False
+    return cfg
+
+
+@pytest.fixture(scope="module")
+def rig(tmp_path_factory):
+    out = tmp_path_factory.mktemp("rig") / "pendulum"
+    write_rig("pendulum", out, trials=3, frames=24, seed=1, size=32, fps=20.0)
+    return out
+
+
+def weights(run):
+    return ck.load_tensors(run / ck.WEIGHTS)[0]
+
+
+def test_run_folder_has_every_promised_file(rig, tmp_path):
+    run = tmp_path / "run"
+    summary = fit([rig], run, small_cfg(steps=12), show_progress=False)
+    for name in (ck.CONFIG, ck.WEIGHTS, ck.RESUME, ck.LOG, ck.SUMMARY, ck.BACKGROUND, ck.LOSS_PLOT):
+        assert (run / name).is_file(), name
+    assert summary["steps"] == 12 and summary["train_recordings"] == 2 and summary["val_recordings"] == 1
+    cfg = C.load(run / ck.CONFIG)
+    # time scale resolved from the data: units_per_frame / median interval (1/20 s)
+    assert cfg.solver.time_scale == pytest.approx(0.1 * 20.0)
+    assert json.loads((run / ck.SUMMARY).read_text())["steps"] == 12
+    model, cfg2 = load_run(run)
+    assert cfg2 == cfg and not model.training
+    log = ck.read_log(run)
+    assert any("val_mse" in r for r in log) and any("nll" in r for r in log)
+    assert not list(run.glob(".*tmp*")), "temporary files left behind"
+
+
+def test_same_seed_same_weights_and_other_seed_differs(rig, tmp_path):
+    a = fit([rig], tmp_path / "a", small_cfg(steps=6), show_progress=False)
+    b = fit([rig], tmp_path / "b", small_cfg(steps=6), show_progress=False)
+    c = fit([rig], tmp_path / "c", small_cfg(steps=6, seed=7), show_progress=False)
+    wa, wb, wc = (weights(tmp_path / n) for n in "abc")
+    assert a["steps"] == b["steps"] == 6
+    assert all(torch.equal(wa[k], wb[k]) for k in wa)
+    assert any(not torch.equal(wa[k], wc[k]) for k in wa)
+
+
+def test_resume_continues_and_matches_an_uninterrupted_run(rig, tmp_path):
+    fit([rig], tmp_path / "full", small_cfg(steps=10), show_progress=False)
+
+    def interrupt(step):  # stands in for a kill after the checkpoint at step 5
+        if step == 7:
+            raise KeyboardInterrupt
+        return False
+
+    with pytest.raises(KeyboardInterrupt):
+        fit([rig], tmp_path / "part", small_cfg(steps=10), show_progress=False, fault_hook=interrupt)
+    assert ck.load_tensors(tmp_path / "part" / ck.RESUME)[1]["step"] == 5
+    summary = fit([], tmp_path / "part", small_cfg(steps=10), resume=True, show_progress=False)
+    assert summary["steps"] == 10
+    full = ck.load_tensors(tmp_path / "full" / ck.RESUME)[0]
+    part = ck.load_tensors(tmp_path / "part" / ck.RESUME)[0]
+    # step count, optimiser, schedule and random state all continue: same tensors as one long run
+    for key in full:
+        assert torch.allclose(full[key].float(), part[key].float(), atol=1e-6), key
+
+
+def test_injected_fault_rolls_back_and_repeated_faults_stop(rig, tmp_path):
+    fired = []
+
+    def once(step):  # one non-finite loss at step 3
+        if step == 3 and not fired:
+            fired.append(step)
+            return True
+        return False
+
+    summary = fit([rig], tmp_path / "f1", small_cfg(steps=8), show_progress=False, fault_hook=once)
+    assert summary["faults"] == 1 and summary["steps"] == 8
+    with pytest.raises(KinecastError, match="non-finite"):
+        fit([rig], tmp_path / "f2", small_cfg(steps=8, max_faults=2), show_progress=False,
+            fault_hook=lambda step: step >= 2)
+    assert (tmp_path / "f2" / ck.WEIGHTS).is_file()  # the best checkpoint is kept
+
+
+def test_schedules():
+    cfg = C.TrainConfig(lr=1.0, warmup_steps=10, lr_min_ratio=0.1, kl_warmup=0.2)
+    assert learning_rate(cfg, 0, 0.0) == pytest.approx(0.1)
+    assert learning_rate(cfg, 100, 0.0) == pytest.approx(1.0)
+    assert learning_rate(cfg, 100, 1.0) == pytest.approx(0.1)
+    assert kl_weight(cfg, 0.1) == pytest.approx(0.5) and kl_weight(cfg, 0.5) == 1.0
+    cur = Curriculum(window=8, longest=20, growth=1.5, patience=2)
+    assert cur.update(1.0)
+    cur.update(1.0), cur.update(1.0)
+    assert cur.window == 12 and not cur.done
+    for _ in range(10):
+        cur.update(2.0)
+    assert cur.window == 20 and cur.done
+
+
+def test_bad_input_exit_2_and_nothing_overwritten(rig, tmp_path, capsys):
+    run = tmp_path / "exists"
+    run.mkdir()
+    (run / "keep.txt").write_text("mine")
+    assert main(["fit", str(rig), "--out", str(run), "--steps", "2"]) == 2
+    assert (run / "keep.txt").read_text() == "mine" and len(list(run.iterdir())) == 1
+    assert main(["fit", "--resume", str(run)]) == 2  # not a run folder
+    assert main(["fit", str(rig), "--out", str(tmp_path / "x"), "--budget", "soon"]) == 2
+    assert main(["fit", "--out", str(tmp_path / "y")]) == 2  # no recordings
+    assert main(["fit", str(rig), "--out", str(rig / "trial_000" / "run"), "--steps", "2"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 5 and all(line.startswith("kinecast: error:") for line in err)
+    assert "already exists" in err[0] and "not a complete run folder" in err[1] and "train.budget" in err[2]
+    assert "inside the input" in err[4]
