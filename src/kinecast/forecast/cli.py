@@ -1,0 +1,146 @@
+"""``kinecast forecast``: extrapolate frames from a trained run and render a clip.
+
+Writes OUT (mp4, gif, or a folder of PNGs, by its extension) plus, beside it, ``<name>_sheet.png``
+(every n-th frame), ``<name>_latents.csv`` and ``<name>_phase.png`` (the latent trajectory) and
+``<name>_forecast.npz`` (times, mean, spread, samples). When the recording has frames at the
+forecast times, the clip shows truth | prediction | absolute error (| spread).
+"""
+
+from __future__ import annotations
+
+import io
+from pathlib import Path
+
+import numpy as np
+
+from ..errors import KinecastError
+from ..fileio import write_bytes, write_text
+from . import core
+
+CAUTION = "forecasts are statistical extrapolations, not measurements; not for safety-critical control"
+
+
+def configure(parser) -> None:
+    parser.add_argument("run", metavar="RUN", help="run folder written by `kinecast fit`")
+    parser.add_argument("path", metavar="PATH", help="recording to condition on")
+    parser.add_argument("--frames", type=int, metavar="N", help="frames to forecast (forecast.frames)")
+    parser.add_argument("--from", dest="start", metavar="TIME|FRAME",
+                        help="start point: a time like 2.5s or a frame number; default: the end")
+    parser.add_argument("--samples", type=int, metavar="K", help="futures to draw (forecast.samples)")
+    parser.add_argument("--fps", metavar="F", help="output frame rate, e.g. 60 or 4x the recording's")
+    parser.add_argument("--out", required=True, metavar="OUT", help="clip.mp4, clip.gif or a folder/")
+    parser.add_argument("--overwrite", action="store_true", help="replace existing outputs")
+    parser.add_argument("--device", choices=("auto", "cpu", "cuda"), help="compute device (train.device)")
+
+
+def open_run(args, cfg):
+    """The run's model and config (with this command's --set overrides) and the recording."""
+    from .. import config as cfgmod
+    from ..frames import read_recording
+    from ..train.checkpoint import load_run
+    from ..train.distributed import pick_device
+
+    device = pick_device(args.device or cfg.train.device)
+    model, run_cfg = load_run(args.run, device)
+    run_cfg = cfgmod.apply_overrides(run_cfg, args.overrides)
+    for section in ("forecast", "score"):  # per-use settings come from this command
+        setattr(run_cfg, section, getattr(cfg, section))
+    rec = read_recording(args.path, run_cfg.data)
+    core.check_compatible(rec, run_cfg, model)
+    return model, run_cfg, rec, device
+
+
+def refuse_inside(out: Path, src: str | Path) -> None:
+    src = Path(src).resolve()
+    if src.is_dir() and (out.resolve() == src or src in out.resolve().parents):
+        raise KinecastError(out, f"output is inside the input folder {src}; choose a place elsewhere")
+
+
+def parse_fps(text: str | None, rec, default: float) -> float:
+    """``60`` → 60 fps; ``4x`` → 4 × the recording's median rate; None → ``default``."""
+    if not text:
+        return default
+    try:
+        if text.lower().endswith("x"):
+            return float(text[:-1]) / rec.median_interval
+        value = float(text)
+    except ValueError:
+        raise KinecastError("--fps", f"bad value {text!r}: allowed a rate like 60 or a multiple like 4x") from None
+    if value <= 0:
+        raise KinecastError("--fps", f"bad value {text!r}: must be positive")
+    return value
+
+
+def parse_start(text: str | None, rec) -> int | None:
+    """``2.5s`` → the first slot at or after 2.5 s; ``75`` → slot 75; None → the end."""
+    if text is None:
+        return None
+    try:
+        if text.lower().endswith("s"):
+            return core.slot_at_time(rec, float(text[:-1]))
+        return int(text)
+    except ValueError:
+        raise KinecastError("--from", f"bad value {text!r}: allowed a time like 2.5s or a frame number") from None
+
+
+def truth_at(rec, times: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Recorded frames at ``times`` (within 1% of an interval) and a mask of where they exist."""
+    tol = 0.01 * rec.median_interval
+    idx = np.clip(np.searchsorted(rec.times, times), 0, rec.n_frames - 1)
+    best = np.where(np.abs(rec.times[np.maximum(idx - 1, 0)] - times) < np.abs(rec.times[idx] - times),
+                    np.maximum(idx - 1, 0), idx)
+    have = (np.abs(rec.times[best] - times) <= tol) & ~rec.missing[best]
+    truth = np.where(have[:, None, None, None], rec.frames[best], 0.0).astype(np.float32)
+    return truth, have
+
+
+def sidecars(out: Path) -> dict[str, Path]:
+    base = out.parent / (out.stem if out.suffix else out.name.rstrip("/"))
+    return {k: Path(f"{base}_{k}{ext}") for k, ext in
+            (("sheet", ".png"), ("latents", ".csv"), ("phase", ".png"), ("forecast", ".npz"))}
+
+
+def latents_csv(times: np.ndarray, latents: np.ndarray) -> str:
+    """One row per sample and time: sample, time_s, s_0..s_{q-1}, v_0..v_{q-1}."""
+    q = latents.shape[-1] // 2
+    head = ["sample", "time_s"] + [f"s_{i}" for i in range(q)] + [f"v_{i}" for i in range(latents.shape[-1] - q)]
+    rows = [",".join(head)]
+    for s, lat in enumerate(latents):
+        rows += [",".join([str(s), f"{t:.6f}"] + [f"{x:.6g}" for x in z]) for t, z in zip(times, lat)]
+    return "\n".join(rows) + "\n"
+
+
+def run(args, cfg) -> int:
+    from ..plots import phase_portrait
+    from .render import comparison_columns, contact_sheet, panel_frames, write_frames
+
+    out = Path(args.out)
+    refuse_inside(out, args.path)
+    side = sidecars(out)
+    if not args.overwrite:
+        for p in [out, *side.values()]:
+            if p.exists():
+                raise KinecastError(p, "already exists (pass --overwrite to replace it)")
+    model, cfg, rec, device = open_run(args, cfg)
+    n = args.frames or cfg.forecast.frames
+    samples = args.samples or cfg.forecast.samples
+    if n < 1 or samples < 1:
+        raise KinecastError("--frames/--samples", "must be at least 1")
+    fps = parse_fps(args.fps, rec, cfg.forecast.fps)
+    fc = core.forecast(model, cfg, rec, n, parse_start(args.start, rec), fps, samples, device)
+    truth, have = truth_at(rec, fc.times)
+    cols = comparison_columns(fc.mean, truth if have.any() else None, fc.spread if samples > 1 else None)
+    panels = panel_frames(cols, fc.times, upscale=cfg.forecast.upscale)
+    play_fps = 1.0 / rec.median_interval  # play at the recording's rate: --fps 4x gives slow motion
+    write_frames(panels, out, play_fps, overwrite=args.overwrite)
+    contact_sheet(panels, fc.times, cfg.forecast.contact_every, side["sheet"], overwrite=args.overwrite)
+    write_text(side["latents"], latents_csv(fc.times, fc.latents))
+    phase_portrait(fc.latents[0], fc.times, side["phase"], overwrite=args.overwrite)
+    buf = io.BytesIO()
+    np.savez_compressed(buf, times=fc.times, mean=fc.mean, spread=fc.spread, samples=fc.samples,
+                        truth=truth, truth_present=have)
+    write_bytes(side["forecast"], buf.getvalue())
+    print(f"forecast of {n} frames ({fc.times[0]:.3f}–{fc.times[-1]:.3f} s, {samples} sample(s)) "
+          f"written to {out}; contact sheet {side['sheet']}; latents {side['latents']}")
+    print(f"note: {CAUTION}")
+    return 0
