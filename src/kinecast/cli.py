@@ -23,7 +23,7 @@ VERBS = {
     "forecast": ("kinecast.forecast.cli", "extrapolate frames from a trained run and render a clip"),
     "fill": ("kinecast.forecast.fill_cli", "fill dropped frames of a recording from a trained run"),
     "score": ("kinecast.score.cli", "score predictions against held-out frames, with baselines"),
-    "report": ("kinecast.score.report_cli", "write one HTML page for a run"),
+    "report": ("kinecast.score.report", "write one HTML page for a run"),
     "config": ("kinecast.config_cli", "print the default configuration or every key with its help"),
 }
 

@@ -112,9 +112,10 @@ def latents_csv(times: np.ndarray, latents: np.ndarray) -> str:
 
 def run(args, cfg) -> int:
     from ..plots import phase_portrait
-    from .render import comparison_columns, contact_sheet, panel_frames, write_frames
+    from .render import output_kind, comparison_columns, contact_sheet, panel_frames, write_frames
 
     out = Path(args.out)
+    output_kind(out)  # refuses an unknown extension before anything is read or written
     refuse_inside(out, args.path)
     side = sidecars(out)
     if not args.overwrite:

@@ -39,5 +39,5 @@ def run(args, cfg) -> int:
         f"{name},{t:.6f},{int(f)}\n" for name, t, f in zip(names, rec.times, filled)))
     print(f"filled {int(filled.sum())} of {rec.n_frames} frames; complete recording written to {out} "
           f"(filled.csv marks them)")
-    print(f"note: filled frames are {CAUTION}")
+    print(f"note: filled frames are model output: {CAUTION}")
     return 0

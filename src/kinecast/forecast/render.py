@@ -105,7 +105,7 @@ def _rgb(frames8: np.ndarray) -> np.ndarray:
     return np.repeat(frames8, 3, axis=-1) if frames8.shape[-1] == 1 else frames8
 
 
-def _output_kind(out: str | Path) -> str:
+def output_kind(out: str | Path) -> str:
     text = str(out)
     suffix = Path(text).suffix.lower()
     if text.endswith(("/", os.sep)) or not suffix:
@@ -208,7 +208,7 @@ def write_frames(frames: np.ndarray, out: str | Path, fps: float, overwrite: boo
         or a location that cannot be written.
     """
     path = Path(out)
-    kind = _output_kind(out)
+    kind = output_kind(out)
     if not (isinstance(fps, numbers.Real) and math.isfinite(fps) and fps > 0):
         raise KinecastError(path, f"frame rate must be a positive number, got {fps!r}")
     _check_target(path, kind, overwrite)

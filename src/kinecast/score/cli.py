@@ -1,0 +1,171 @@
+"""``kinecast score``: score a run's forecast of held-out frames, with baselines, or any two frame sources.
+
+Writes to DIR: ``per_frame.csv`` (one row per method and frame), ``summary.json`` (every metric per
+method, valid horizons, calibration, periods), ``metrics.png`` (each metric against the horizon for
+all methods), and for a run ``forecast.mp4`` + ``forecast_sheet.png`` (truth | model | error | spread).
+"""
+
+from __future__ import annotations
+
+import json
+import math
+from pathlib import Path
+
+import numpy as np
+
+from ..errors import KinecastError
+from ..fileio import write_text
+
+CAUTION = ("Scores compare statistical extrapolations with held-out frames of this recording; they are "
+           "not measurements. Not for safety-critical control; follow your lab's own safety rules.")
+METRICS = ("mse", "mae", "psnr", "ssim", "position_error_px")
+
+
+def configure(parser) -> None:
+    parser.add_argument("run", nargs="?", metavar="RUN", help="run folder written by `kinecast fit`")
+    parser.add_argument("path", nargs="?", metavar="PATH", help="recording (or folder of trials) to score on")
+    parser.add_argument("--holdout", metavar="last:N|trial:NAME", help="held-out frames (score.holdout)")
+    parser.add_argument("--context", type=int, metavar="K", help="conditioning frames (score.context)")
+    parser.add_argument("--samples", type=int, metavar="K", help="futures to draw for calibration")
+    parser.add_argument("--compare", action="append", default=[], metavar="RUN2",
+                        help="another run scored on the same frames (e.g. the first-order variant)")
+    parser.add_argument("--pred", metavar="A", help="score these frames (any frame source) ...")
+    parser.add_argument("--truth", metavar="B", help="... against these frames")
+    parser.add_argument("--out", required=True, metavar="DIR", help="folder for the scores")
+    parser.add_argument("--overwrite", action="store_true", help="replace an existing output folder")
+    parser.add_argument("--device", choices=("auto", "cpu", "cuda"), help="compute device (train.device)")
+
+
+def _finite(x):
+    """JSON-friendly: NaN/inf → None."""
+    if isinstance(x, dict):
+        return {k: _finite(v) for k, v in x.items()}
+    if isinstance(x, (float, np.floating)):
+        return float(x) if math.isfinite(x) else None
+    if isinstance(x, (np.integer,)):
+        return int(x)
+    return x
+
+
+def write_scores(out: Path, result: dict, cfg, extra: dict) -> None:
+    """per_frame.csv, summary.json and metrics.png for a scoring result."""
+    from ..plots import metric_curves
+
+    times = result["times"]
+    rows = ["method,frame,time_s," + ",".join(METRICS)]
+    for method, per in result["per_frame"].items():
+        for i, t in enumerate(times):
+            rows.append(f"{method},{i},{t:.6f}," + ",".join(f"{per[m][i]:.6g}" for m in METRICS))
+    write_text(out / "per_frame.csv", "\n".join(rows) + "\n")
+    summary = {"caution": CAUTION, "frames_scored": int(len(times)), "methods": result["summary"],
+               "ssim_threshold": cfg.score.ssim_threshold, **extra}
+    for key in ("periods",):
+        if key in result:
+            summary[key] = result[key]
+    if "coverage" in result:
+        summary["band"] = cfg.score.band
+        summary["band_coverage_per_frame"] = [None if not np.isfinite(c) else round(float(c), 4)
+                                              for c in result["coverage"]]
+    write_text(out / "summary.json", json.dumps(_finite(summary), indent=2) + "\n")
+    metric_curves(result["per_frame"], times, out / "metrics.png", threshold=cfg.score.ssim_threshold,
+                  overwrite=True)
+
+
+def table(result: dict) -> str:
+    """The summary as a markdown table (printed and shown in the report)."""
+    head = "| method | mean MSE | mean SSIM | mean PSNR (dB) | position error (px) | valid horizon |"
+    lines = [head, "|---|---|---|---|---|---|"]
+    for method, s in result["summary"].items():
+        lines.append(f"| {method} | {s['mean_mse']:.4g} | {s['mean_ssim']:.3f} | {s['mean_psnr']:.1f} | "
+                     f"{s['mean_position_error_px']:.2f} | {s['valid_horizon_frames']} frames "
+                     f"({s['valid_horizon_s']:.2f} s) |")
+    return "\n".join(lines)
+
+
+def _prepare_out(out: Path, overwrite: bool, inputs: list) -> None:
+    from ..forecast.cli import refuse_inside
+
+    for src in inputs:
+        if src:
+            refuse_inside(out, src)
+    if out.exists() and (not out.is_dir() or any(out.iterdir())) and not overwrite:
+        raise KinecastError(out, "already exists (pass --overwrite to replace it)")
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise KinecastError(out, f"cannot create the output folder ({exc.strerror or exc})") from None
+
+
+def run(args, cfg) -> int:
+    out = Path(args.out)
+    if args.pred or args.truth:
+        return _run_pair(args, cfg, out)
+    if not (args.run and args.path):
+        raise KinecastError("kinecast score", "give RUN PATH, or --pred A --truth B")
+    return _run_model(args, cfg, out)
+
+
+def _run_pair(args, cfg, out: Path) -> int:
+    from ..frames import read_recording
+    from .evaluate import score_prediction
+
+    if not (args.pred and args.truth):
+        raise KinecastError("kinecast score", "--pred and --truth go together")
+    _prepare_out(out, args.overwrite, [args.pred, args.truth])
+    pred, truth = read_recording(args.pred, cfg.data), read_recording(args.truth, cfg.data)
+    if pred.n_frames != truth.n_frames or pred.frames.shape != truth.frames.shape:
+        raise KinecastError(args.pred, f"{pred.frames.shape} frames do not match the truth's {truth.frames.shape}")
+    present = ~truth.missing & ~pred.missing
+    origin = truth.times[0] - truth.median_interval
+    per, summ = score_prediction(pred.frames, truth.frames, present, truth.times, origin, cfg)
+    result = {"times": truth.times, "per_frame": {"prediction": per}, "summary": {"prediction": summ}}
+    write_scores(out, result, cfg, {"pred": str(args.pred), "truth": str(args.truth)})
+    print(table(result))
+    print(f"scores written to {out}\nnote: {CAUTION}")
+    return 0
+
+
+def _run_model(args, cfg, out: Path) -> int:
+    from .. import config as cfgmod
+    from ..forecast.cli import open_run
+    from ..forecast.render import comparison_columns, contact_sheet, panel_frames, write_frames
+    from ..train.checkpoint import load_run
+    from .evaluate import evaluate, holdout_split
+
+    sets = [f'score.holdout="{args.holdout}"'] if args.holdout else []
+    sets += [f"score.context={args.context}"] if args.context else []
+    cfg = cfgmod.apply_overrides(cfg, sets)
+    holdout = cfg.score.holdout
+    _prepare_out(out, args.overwrite, [args.path, args.run])
+    if holdout.startswith("trial:"):
+        args.path = str(Path(args.path) / holdout.split(":", 1)[1])
+    model, run_cfg, rec, device = open_run(args, cfg)
+    if holdout.startswith("trial:"):
+        cond_start, first = 0, run_cfg.score.context
+        if rec.n_frames <= first:
+            raise KinecastError(rec.source, f"has {rec.n_frames} frames; nothing left after {first} conditioning frames")
+    else:
+        first, cond_start = holdout_split(rec, holdout, run_cfg.score.context)
+    n = rec.n_frames - first
+    others = {}
+    for other in args.compare:
+        m2, c2 = load_run(other, device)
+        others[Path(other).name or other] = (m2, c2)
+    samples = args.samples or max(run_cfg.forecast.samples, 1)
+    result = evaluate(model, run_cfg, rec, cond_start, first, n, samples, others, device)
+    write_scores(out, result, run_cfg, {"run": str(args.run), "recording": str(args.path),
+                                        "holdout": holdout, "context_frames": first - cond_start,
+                                        "samples": samples})
+    spread = result["samples"].std(axis=0) if samples > 1 else None
+    truth = np.where(result["present"][:, None, None, None], result["truth"], 0.0)
+    panels = panel_frames(comparison_columns(result["forecast"], truth, spread), result["times"],
+                          upscale=run_cfg.forecast.upscale)
+    write_frames(panels, out / "forecast.mp4", 1.0 / rec.median_interval, overwrite=True)
+    contact_sheet(panels, result["times"], run_cfg.forecast.contact_every, out / "forecast_sheet.png",
+                  overwrite=True)
+    print(table(result))
+    p = result["periods"]
+    print(f"dominant period: truth {p['truth_track_s']:.3f} s, model track {p['model_track_s']:.3f} s, "
+          f"model latent {p['model_latent_s']:.3f} s")
+    print(f"scores written to {out}\nnote: {CAUTION}")
+    return 0

@@ -1,0 +1,306 @@
+"""Object tracks from frames and the period of an oscillating track.
+
+Coordinates are in pixels of the frames given: ``x`` is the column and ``y`` the row, with the centre
+of pixel ``[row, col]`` at ``(x, y) = (col, row)`` (the convention of ``skimage.draw``).
+
+Examples
+--------
+>>> import numpy as np
+>>> frames = np.zeros((3, 1, 16, 16), np.float32)
+>>> for t in range(3):
+...     frames[t, 0, 5:8, 2 + 3 * t:5 + 3 * t] = 1.0
+>>> centroid_track(frames, background=np.zeros((1, 16, 16))).round(3).tolist()
+[[3.0, 6.0], [6.0, 6.0], [9.0, 6.0]]
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from ..errors import KinecastError
+
+# Foreground pixels are those whose background difference exceeds this share of the frame's largest
+# difference, plus a one-pixel ring around them (so faint anti-aliased edges still weigh in); the rest
+# count as noise.
+FOREGROUND_FRACTION = 0.25
+# A frame whose largest background difference (summed over channels) is below two grey levels of an
+# 8-bit source (1/255 per level) holds no object: its centroid is NaN.
+MIN_CONTRAST = 2.0 / 255.0
+# Fewest oscillation cycles the samples must span before a period is reported.
+MIN_CYCLES = 1.5
+# Zero crossings count only when the detrended signal travels from below -h to above +h (or back),
+# h = this × the signal's standard deviation; stops noise near zero adding crossings.
+HYSTERESIS_FRACTION = 0.2
+# Same-direction crossing intervals whose coefficient of variation exceeds this are irregular
+# (noise-driven); the spectral estimate is used instead.
+MAX_INTERVAL_CV = 0.25
+# Frequency grid of the spectral fallback: points per 1/span (oversampling; 5-10 is common practice,
+# J. T. VanderPlas, ApJS 236 (2018) 16), lowest frequency in cycles per span (below MIN_CYCLES, so a
+# peak there means too few cycles), and points of the finer grid around the peak.
+SPECTRUM_OVERSAMPLE = 5
+SPECTRUM_LOWEST_CYCLES = 0.5
+SPECTRUM_REFINE_POINTS = 41
+# The periodogram is evaluated in blocks of at most this many (frequency, sample) pairs (16 MB
+# per complex128 temporary), so long recordings do not exhaust memory.
+SPECTRUM_BLOCK_VALUES = 1 << 20
+# The trend line is refitted together with a sinusoid at the latest period estimate until the period
+# changes by less than this relative amount, at most TREND_REFITS times.
+TREND_REFITS = 12
+REFIT_TOLERANCE = 1e-5
+
+
+def _as_frames(frames, name: str = "frames") -> np.ndarray:
+    arr = np.asarray(frames, dtype=np.float32)
+    if arr.ndim != 4 or min(arr.shape) < 1:
+        raise KinecastError(name, f"expected a (T, C, H, W) array, got shape {arr.shape}")
+    return arr
+
+
+def median_background(frames) -> np.ndarray:
+    """Per-pixel median over the frames: the static background of a fixed camera, shape (C, H, W).
+
+    The median keeps the background at every pixel that a moving object covers in under half of the
+    frames.
+    """
+    return np.median(_as_frames(frames), axis=0).astype(np.float32)
+
+
+def foreground(frames, background=None) -> np.ndarray:
+    """Absolute difference from the background summed over channels, shape (T, H, W).
+
+    Parameters
+    ----------
+    frames : array (T, C, H, W)
+    background : array (C, H, W) or None
+        The static background; None uses :func:`median_background` of ``frames``.
+    """
+    arr = _as_frames(frames)
+    bg = median_background(arr) if background is None else np.asarray(background, np.float32)
+    if bg.shape != arr.shape[1:]:
+        raise KinecastError("background", f"shape {bg.shape} does not match frames {arr.shape[1:]}")
+    return np.abs(arr - bg[None]).sum(axis=1)
+
+
+def foreground_mask(fg: np.ndarray, threshold: float = FOREGROUND_FRACTION) -> np.ndarray:
+    """Object pixels of foreground weights (T, H, W): above ``threshold`` × each frame's maximum,
+    grown by one pixel in all eight directions. Boolean, shape (T, H, W)."""
+    core = fg > threshold * fg.max(axis=(1, 2), keepdims=True)
+    padded = np.pad(core, ((0, 0), (1, 1), (1, 1)))
+    h, w = core.shape[1:]
+    grown = np.zeros_like(core)
+    for dy in range(3):
+        for dx in range(3):
+            grown |= padded[:, dy:dy + h, dx:dx + w]
+    return grown
+
+
+def centroid_track(frames, background=None, threshold: float = FOREGROUND_FRACTION) -> np.ndarray:
+    """Intensity-weighted centroid of the foreground in each frame.
+
+    The foreground weight of a pixel is ``|frame - background|`` summed over channels. Only pixels of
+    :func:`foreground_mask` weigh in: those above ``threshold`` × the frame's largest weight and their
+    one-pixel ring (faint anti-aliased edges); the rest are noise. A frame whose largest weight is
+    below :data:`MIN_CONTRAST` has no object and gets NaN.
+
+    Parameters
+    ----------
+    frames : array (T, C, H, W), float in [0, 1]
+    background : array (C, H, W) or None
+        The static background; None uses the per-pixel median over ``frames`` (right when the object
+        moves off every pixel for more than half of the frames).
+    threshold : float
+        Noise threshold relative to each frame's largest foreground weight, in [0, 1).
+
+    Returns
+    -------
+    ndarray (T, 2)
+        ``x, y`` in pixels (column, row of pixel centres); NaN where there is no foreground.
+    """
+    if not 0.0 <= threshold < 1.0:
+        raise KinecastError("threshold", f"bad value {threshold!r}: allowed a number in [0, 1)")
+    fg = foreground(frames, background).astype(np.float64)
+    peak = fg.max(axis=(1, 2), keepdims=True)
+    w = np.where(foreground_mask(fg, threshold), fg, 0.0)
+    total = w.sum(axis=(1, 2))
+    rows = np.arange(fg.shape[1], dtype=np.float64)
+    cols = np.arange(fg.shape[2], dtype=np.float64)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        x = (w.sum(axis=1) * cols).sum(axis=1) / total
+        y = (w.sum(axis=2) * rows).sum(axis=1) / total
+    track = np.stack([x, y], axis=1)
+    track[peak[:, 0, 0] < MIN_CONTRAST] = np.nan
+    return track
+
+
+def _crossings(t: np.ndarray, x: np.ndarray, h: float) -> tuple[list[float], list[float]]:
+    """Times of upward and downward zero crossings with hysteresis ``h``, linearly interpolated."""
+    up: list[float] = []
+    down: list[float] = []
+    state = 0  # -1 below -h, +1 above +h, 0 not yet known
+    last_zero = None  # time of the latest sign change since the state was set
+    for i in range(1, len(x)):
+        if (x[i - 1] <= 0.0) != (x[i] <= 0.0):
+            last_zero = t[i - 1] - x[i - 1] * (t[i] - t[i - 1]) / (x[i] - x[i - 1])
+        new = 1 if x[i] > h else (-1 if x[i] < -h else state)
+        if state and new != state and last_zero is not None:
+            (up if new > 0 else down).append(last_zero)
+        if new != state:
+            state, last_zero = new, None
+    return up, down
+
+
+def _crossing_period(t: np.ndarray, x: np.ndarray) -> float:
+    """Mean spacing of same-direction crossings, NaN when too few or too irregular.
+
+    Averaging upward and downward spacings cancels, to first order, a residual linear trend (it
+    stretches one kind of spacing and shrinks the other by the same factor).
+    """
+    up, down = _crossings(t, x, HYSTERESIS_FRACTION * float(np.std(x)))
+    spans, counts, gaps = 0.0, 0, []
+    for times in (up, down):
+        if len(times) >= 2:
+            spans += times[-1] - times[0]
+            counts += len(times) - 1
+            gaps.extend(np.diff(times))
+    if counts == 0:
+        return float("nan")
+    gaps = np.asarray(gaps)
+    if len(gaps) > 1 and np.std(gaps) > MAX_INTERVAL_CV * np.mean(gaps):
+        return float("nan")
+    return spans / counts
+
+
+def _lomb_scargle(t: np.ndarray, x: np.ndarray, f0: float, df: float, count: int) -> np.ndarray:
+    """Lomb-Scargle power of ``x`` sampled at ``t`` at the frequencies ``f0 + k df`` (Hz).
+
+    Written with complex sums: with ``Z1 = sum x e^{iwt}`` and ``Z2 = sum e^{2iwt}`` the time shift
+    is ``2 w tau = arg Z2``, the cosine and sine projections are the real and imaginary parts of
+    ``Z1 e^{-iw tau}``, and their norms are ``(N ± |Z2|) / 2``. The exponentials of a block of
+    frequencies are the block's first row times precomputed powers ``e^{2 pi i k df t}``.
+    """
+    n = len(t)
+    t = t - t[0]  # the periodogram does not depend on the time origin
+    block = max(1, min(count, SPECTRUM_BLOCK_VALUES // n))
+    steps = np.exp(2j * np.pi * df * np.arange(block)[:, None] * t)
+    power = np.empty(count)
+    for i in range(0, count, block):
+        m = min(block, count - i)
+        e = np.exp(2j * np.pi * (f0 + i * df) * t) * steps[:m]
+        z1, z2 = e @ x, (e * e).sum(axis=1)
+        y = z1 * np.exp(-0.5j * np.angle(z2))
+        sine_norm = n - np.abs(z2)  # 0 where every sample sits on a sine node (e.g. at Nyquist)
+        sine = np.divide(y.imag ** 2, sine_norm, out=np.zeros(m), where=sine_norm > 1e-9 * n)
+        power[i:i + m] = y.real ** 2 / (n + np.abs(z2)) + sine
+    return power
+
+
+def _spectral_period(t: np.ndarray, x: np.ndarray) -> float:
+    """Period at the Lomb-Scargle peak; NaN when the peak sits at the lowest frequency searched."""
+    span = t[-1] - t[0]
+    df = 1.0 / (SPECTRUM_OVERSAMPLE * span)
+    f0 = SPECTRUM_LOWEST_CYCLES / span
+    count = int((0.5 / float(np.median(np.diff(t))) - f0) / df) + 1  # up to the Nyquist frequency
+    if count < 3:
+        return float("nan")
+    k = int(np.argmax(_lomb_scargle(t, x, f0, df, count)))
+    if k == 0:
+        return float("nan")
+    fine_df = 2.0 * df / (SPECTRUM_REFINE_POINTS - 1)  # from one coarse step below to one above
+    fine = _lomb_scargle(t, x, f0 + (k - 1) * df, fine_df, SPECTRUM_REFINE_POINTS)
+    return float(1.0 / (f0 + (k - 1) * df + int(np.argmax(fine)) * fine_df))
+
+
+def _period_estimate(t: np.ndarray, x: np.ndarray) -> float:
+    """Crossing-spacing period of a detrended signal, else the spectral one."""
+    period = _crossing_period(t, x)
+    return period if np.isfinite(period) else _spectral_period(t, x)
+
+
+def dominant_period(signal, times) -> float:
+    """Period in seconds of an oscillating signal sampled at (possibly irregular) times.
+
+    The signal is detrended (least-squares line, refitted jointly with a sinusoid at the period found,
+    so that few or non-whole cycles do not tilt it), then the period is the mean spacing of
+    same-direction zero crossings (hysteresis against noise, crossing times linearly interpolated,
+    upward and downward spacings pooled). When the crossings are too few or too irregular, the peak
+    of the Lomb-Scargle periodogram is used instead. Non-finite samples are dropped.
+
+    Parameters
+    ----------
+    signal : array (T,)
+    times : array (T,), seconds, strictly increasing
+
+    Returns
+    -------
+    float
+        The period in seconds; NaN when the samples span fewer than :data:`MIN_CYCLES` periods, the
+        signal is constant, or fewer than four finite samples remain.
+
+    References
+    ----------
+    N. R. Lomb, "Least-squares frequency analysis of unequally spaced data", Astrophysics and Space
+    Science 39 (1976) 447-462. J. D. Scargle, "Studies in astronomical time series analysis. II",
+    The Astrophysical Journal 263 (1982) 835-853.
+
+    Examples
+    --------
+    >>> t = np.linspace(0.0, 10.0, 400)
+    >>> round(dominant_period(np.sin(2 * np.pi * t / 2.5), t), 3)
+    2.5
+    """
+    x = np.asarray(signal, dtype=np.float64).ravel()
+    t = np.asarray(times, dtype=np.float64).ravel()
+    if x.shape != t.shape:
+        raise KinecastError("times", f"length {t.size} does not match the signal's {x.size}")
+    keep = np.isfinite(x) & np.isfinite(t)
+    x, t = x[keep], t[keep]
+    if len(t) < 4:
+        return float("nan")
+    if np.any(np.diff(t) <= 0):
+        raise KinecastError("times", "must be strictly increasing")
+    tc = t - t[0]
+    trend = np.polyval(np.polyfit(tc, x, 1), tc)
+    if not np.std(x - trend) > 0:
+        return float("nan")
+    period = _period_estimate(t, x - trend)
+    for _ in range(TREND_REFITS):
+        if not np.isfinite(period):
+            break
+        # refit the line jointly with a sinusoid at the current period, so the oscillation itself
+        # does not tilt the line (it does when the samples span few or non-whole cycles)
+        w = 2.0 * np.pi / period
+        basis = np.stack([np.ones_like(tc), tc, np.cos(w * tc), np.sin(w * tc)], axis=1)
+        coef = np.linalg.lstsq(basis, x, rcond=None)[0]
+        previous, period = period, _period_estimate(t, x - basis[:, :2] @ coef[:2])
+        if abs(period - previous) <= REFIT_TOLERANCE * previous:
+            break
+    if not np.isfinite(period) or (t[-1] - t[0]) < MIN_CYCLES * period:
+        return float("nan")
+    return float(period)
+
+
+def track_period(track, times) -> float:
+    """Period in seconds of a 2-D track, measured along its first principal component.
+
+    Parameters
+    ----------
+    track : array (T, 2)
+        ``x, y`` positions (NaN rows are dropped), e.g. from :func:`centroid_track`.
+    times : array (T,), seconds
+
+    Returns
+    -------
+    float
+        :func:`dominant_period` of the projection on the direction of largest variance.
+    """
+    xy = np.asarray(track, dtype=np.float64)
+    t = np.asarray(times, dtype=np.float64).ravel()
+    if xy.ndim != 2 or xy.shape[1] != 2 or len(xy) != len(t):
+        raise KinecastError("track", f"expected shape ({len(t)}, 2), got {xy.shape}")
+    keep = np.all(np.isfinite(xy), axis=1)
+    xy, t = xy[keep], t[keep]
+    if len(t) < 4:
+        return float("nan")
+    centred = xy - xy.mean(axis=0)
+    _, vecs = np.linalg.eigh(centred.T @ centred)
+    return dominant_period(centred @ vecs[:, -1], t)
