@@ -13,6 +13,9 @@ from typing import Callable, Iterator
 
 from .errors import KinecastError
 
+_UMASK = os.umask(0)
+os.umask(_UMASK)
+
 
 @contextlib.contextmanager
 def atomic_path(target: str | Path, overwrite: bool = True) -> Iterator[Path]:
@@ -32,6 +35,7 @@ def atomic_path(target: str | Path, overwrite: bool = True) -> Iterator[Path]:
         raise KinecastError(folder, f"cannot write here ({exc.strerror or exc})") from None
     os.close(fd)
     tmp_path = Path(tmp)
+    os.chmod(tmp_path, 0o666 & ~_UMASK)  # mkstemp makes 0600; give the file the usual permissions
     try:
         yield tmp_path
         with open(tmp_path, "rb+") as fh:
