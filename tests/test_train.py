@@ -118,6 +118,14 @@ def test_schedules():
     for _ in range(10):
         cur.update(2.0)
     assert cur.window == 20 and cur.done
+    # scheduled floor: geometric growth 8 -> 32 reaches 16 at half of the schedule, 32 at its end
+    sched = Curriculum(window=8, longest=32, growth=1.5, patience=2)
+    sched.follow(8, 0.3, 0.6)
+    assert sched.window == 16
+    sched.follow(8, 0.6, 0.6)
+    assert sched.window == 32
+    sched.follow(8, 0.1, 0.6)
+    assert sched.window == 32  # never shrinks
 
 
 def test_bad_input_exit_2_and_nothing_overwritten(rig, tmp_path, capsys):

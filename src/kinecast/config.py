@@ -106,6 +106,9 @@ class TrainConfig:
     window_start: int = _opt(8, "first curriculum window length in frames", lo=2)
     window_max: int = _opt(0, "longest window; 0 = the longest that fits", lo=0)
     window_growth: float = _opt(1.5, "window × this when validation stalls", lo=1.0)
+    window_schedule: float = _opt(0.6, "share of the budget by which the window has grown (geometrically) "
+                                  "to its longest at the latest; 0 = grow only when validation stalls",
+                                  lo=0.0, hi=1.0)
     val_every: int = _opt(50, "steps between validations", lo=1)
     val_fraction: float = _opt(0.25, "tail share of a single recording held out for validation",
                                lo=0.0, hi=0.9)

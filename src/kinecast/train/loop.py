@@ -20,6 +20,7 @@ from tqdm import tqdm
 
 from .. import config as cfgmod
 from ..errors import KinecastError
+from ..fileio import check_can_create
 from ..model import build_model, to_model_time
 from . import checkpoint as ck
 from . import distributed as D
@@ -41,8 +42,12 @@ def _prepare_folder(run: Path, paths: list[Path], resume: bool, overwrite: bool)
             raise KinecastError(run, f"output folder is inside the input {p}; choose a folder elsewhere")
     if resume:
         ck.check_run_folder(run, need_resume=True)
+        ck.remove_stale_temporaries(run)  # left by a kill mid-checkpoint
+    elif run.exists() and not run.is_dir():
+        raise KinecastError(run, "exists and is not a folder (a run is a folder)")
     elif run.exists() and any(run.iterdir()) and not overwrite:
         raise KinecastError(run, "already exists (pass --resume to continue it or --overwrite to replace it)")
+    check_can_create(run)
 
 
 def validate(model, sampler: WindowSampler | None, window: int, cfg) -> float:
@@ -93,7 +98,7 @@ def fit(paths, out, cfg: cfgmod.Config | None = None, *, resume: bool = False, o
     run = Path(out)
     if resume:
         ck.check_run_folder(run, need_resume=True)
-        paths = paths or ck.load_tensors(run / ck.RESUME)[1]["paths"]
+        paths = paths or ck.load_resume(run)[1]["paths"]
         cfg = cfg or cfgmod.load(run / ck.CONFIG)
     cfg = cfgmod.from_dict(cfgmod.to_dict(cfg or cfgmod.Config()))  # a private, validated copy
     paths = expand_paths(paths)
@@ -117,7 +122,7 @@ def fit(paths, out, cfg: cfgmod.Config | None = None, *, resume: bool = False, o
     if longest < k + 1:
         raise KinecastError(paths[0], f"too short: {longest} frames, the model needs at least {k + 1}")
     val_sampler = WindowSampler(val_recs or train_recs, k, 0)
-    val_window = min(val_sampler.longest_window(), max(longest, 3 * cfg.train.window_start))
+    val_window = min(val_sampler.longest_window(), 3 * longest)  # score extrapolation, not fit
     total_frames = sum(r.n_frames for r in train_recs)
 
     # --- model ----------------------------------------------------------------------------
@@ -132,8 +137,9 @@ def fit(paths, out, cfg: cfgmod.Config | None = None, *, resume: bool = False, o
                      cfg.train.patience)
     step, elapsed_before, faults, lr_scale, rows = 0, 0.0, 0, 1.0, []
     if resume:
-        tensors, meta = ck.load_tensors(run / ck.RESUME)
-        model.load_state_dict({k_: v for k_, v in tensors.items() if not k_.startswith(("opt.", "rng."))})
+        tensors, meta = ck.load_resume(run)
+        ck.restore_model(model, {k_: v for k_, v in tensors.items() if not k_.startswith(("opt.", "rng."))},
+                         run / ck.RESUME)
         ck.restore_optimizer(opt, tensors, meta["optimizer"])
         torch.set_rng_state(tensors["rng.torch"])
         sampler.rng.bit_generator.state = meta["sampler_rng"]
@@ -144,7 +150,10 @@ def fit(paths, out, cfg: cfgmod.Config | None = None, *, resume: bool = False, o
     net = torch.nn.parallel.DistributedDataParallel(model) if ctx.active else model
 
     if ctx.main:
-        run.mkdir(parents=True, exist_ok=True)
+        try:
+            run.mkdir(parents=True, exist_ok=True)
+        except OSError as exc:
+            raise KinecastError(run, f"cannot create the run folder ({exc.strerror or exc})") from None
         cfgmod.save(cfg, run / ck.CONFIG)
         if background is not None:
             import imageio.v3 as iio
@@ -179,6 +188,7 @@ def fit(paths, out, cfg: cfgmod.Config | None = None, *, resume: bool = False, o
         elapsed = elapsed_before + time.time() - t0
         prog = progress(step, elapsed, steps_total, budget_s)
         stop = (steps_total and step >= steps_total) or (budget_s and elapsed >= budget_s) or cur.done
+        cur.follow(min(cfg.train.window_start, longest), prog, cfg.train.window_schedule)
         stop, cur.window = D.sync_decision(ctx, bool(stop), cur.window)
         if stop:
             stop_reason = "early stop: validation stalled at the longest window" if cur.done else "budget"

@@ -58,6 +58,16 @@ class Curriculum:
     stalls: int = 0
     done: bool = False
 
+    def follow(self, start: int, prog: float, schedule: float) -> None:
+        """Never lag behind geometric growth from ``start`` to ``longest`` over ``schedule`` of the budget.
+
+        A wall-clock budget may end before validation stalls often enough to grow the window; the
+        schedule makes sure long windows (needed for long extrapolation) are trained in any case.
+        """
+        if schedule > 0 and self.longest > start:
+            floor = start * (self.longest / start) ** min(1.0, prog / schedule)
+            self.window = max(self.window, min(self.longest, int(floor)))
+
     def update(self, val: float) -> bool:
         """Record a validation score; return True when it is the best so far."""
         improved = val < self.best * (1 - 1e-3)
