@@ -86,6 +86,9 @@ def main(argv: list[str] | None = None) -> int:
     except KinecastError as exc:
         print(f"kinecast: error: {exc}", file=sys.stderr)
         return EXIT_BAD_INPUT
+    except OSError as exc:  # a file-system failure no check foresaw (disk full, ...): one line too
+        print(f"kinecast: error: {exc.filename or 'kinecast'}: {exc.strerror or exc}", file=sys.stderr)
+        return EXIT_BAD_INPUT
     except KeyboardInterrupt:
         print("kinecast: interrupted", file=sys.stderr)
         return 130

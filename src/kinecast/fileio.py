@@ -28,6 +28,7 @@ def atomic_path(target: str | Path, overwrite: bool = True) -> Iterator[Path]:
     if not overwrite and target.exists():
         raise KinecastError(target, "already exists (pass --overwrite to replace it)")
     folder = target.parent if str(target.parent) else Path(".")
+    check_can_create(target)
     try:
         folder.mkdir(parents=True, exist_ok=True)
         fd, tmp = tempfile.mkstemp(prefix=f".{target.stem}.", suffix=f".tmp{target.suffix}", dir=folder)
@@ -35,9 +36,11 @@ def atomic_path(target: str | Path, overwrite: bool = True) -> Iterator[Path]:
         raise KinecastError(folder, f"cannot write here ({exc.strerror or exc})") from None
     os.close(fd)
     tmp_path = Path(tmp)
-    os.chmod(tmp_path, 0o666 & ~_UMASK)  # mkstemp makes 0600; give the file the usual permissions
     try:
         yield tmp_path
+        # mkstemp makes 0600, and some writers (safetensors) replace the file with a 0600 one of
+        # their own: give the finished file the usual permissions
+        os.chmod(tmp_path, 0o666 & ~_UMASK)
         with open(tmp_path, "rb+") as fh:
             fh.flush()
             os.fsync(fh.fileno())
@@ -45,6 +48,22 @@ def atomic_path(target: str | Path, overwrite: bool = True) -> Iterator[Path]:
     finally:
         if tmp_path.exists():
             tmp_path.unlink()
+
+
+def check_can_create(target: str | Path) -> None:
+    """Refuse early, with one line, a file or folder that cannot be created where it is asked for.
+
+    Walks up to the nearest existing ancestor: it must be a folder this process may write into.
+    Nothing is created. (Root may write into a chmod 0o555 folder; ``os.access`` knows that.)
+    """
+    target = Path(target)
+    probe = target if target.is_dir() else target.parent
+    while not probe.exists() and probe != probe.parent:
+        probe = probe.parent
+    if not probe.is_dir():
+        raise KinecastError(target, f"cannot write here ({probe} is a file, not a folder)")
+    if not os.access(probe, os.W_OK | os.X_OK):
+        raise KinecastError(target, f"cannot write here (no write permission in {probe})")
 
 
 def write_bytes(target: str | Path, data: bytes, overwrite: bool = True) -> Path:

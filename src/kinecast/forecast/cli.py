@@ -14,9 +14,11 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import KinecastError
-from ..fileio import write_bytes, write_text
+from ..fileio import check_can_create, write_bytes, write_text
 from . import core
 
+# Keys a trained model is built for (a whole section when no key is named); its config.toml fixes them.
+FIXED_BY_RUN = (("data", "size"), ("data", "color"), ("model", None))
 CAUTION = "forecasts are statistical extrapolations, not measurements; not for safety-critical control"
 
 
@@ -41,8 +43,15 @@ def open_run(args, cfg):
     from ..train.distributed import pick_device
 
     device = pick_device(args.device or cfg.train.device)
-    model, run_cfg = load_run(args.run, device)
-    run_cfg = cfgmod.apply_overrides(run_cfg, args.overrides)
+    model, trained = load_run(args.run, device)
+    run_cfg = cfgmod.apply_overrides(trained, args.overrides)
+    was, now = cfgmod.to_dict(trained), cfgmod.to_dict(run_cfg)
+    for section, name in fixed_keys(was):  # the model was built for these: --set cannot change them
+        if was[section][name] != now[section][name]:
+            key = f"{section}.{name}"
+            raise KinecastError(f"--set {key}", f"{args.run} was trained with {key} = "
+                                                f"{was[section][name]!r}; a trained run's frame size, "
+                                                "colour and model keys cannot change")
     for section in ("forecast", "score"):  # per-use settings come from this command
         setattr(run_cfg, section, getattr(cfg, section))
     rec = read_recording(args.path, run_cfg.data)
@@ -54,6 +63,19 @@ def refuse_inside(out: Path, src: str | Path) -> None:
     src = Path(src).resolve()
     if src.is_dir() and (out.resolve() == src or src in out.resolve().parents):
         raise KinecastError(out, f"output is inside the input folder {src}; choose a place elsewhere")
+
+
+def fixed_keys(tree: dict) -> list[tuple[str, str]]:
+    """(section, key) of every key in :data:`FIXED_BY_RUN`, sections expanded."""
+    return [(section, k) for section, key in FIXED_BY_RUN for k in ([key] if key else tree[section])]
+
+
+def at_least_one(option: str, given: int | None, default: int) -> int:
+    """An option's count (``default`` when not given); 0 or less is refused, never silently replaced."""
+    value = default if given is None else given
+    if value < 1:
+        raise KinecastError(option, f"bad value {value}: must be at least 1")
+    return value
 
 
 def parse_fps(text: str | None, rec, default: float) -> float:
@@ -116,17 +138,16 @@ def run(args, cfg) -> int:
 
     out = Path(args.out)
     output_kind(out)  # refuses an unknown extension before anything is read or written
+    n = at_least_one("--frames", args.frames, cfg.forecast.frames)
+    samples = at_least_one("--samples", args.samples, cfg.forecast.samples)
     refuse_inside(out, args.path)
     side = sidecars(out)
     if not args.overwrite:
         for p in [out, *side.values()]:
             if p.exists():
                 raise KinecastError(p, "already exists (pass --overwrite to replace it)")
+    check_can_create(out)
     model, cfg, rec, device = open_run(args, cfg)
-    n = args.frames or cfg.forecast.frames
-    samples = args.samples or cfg.forecast.samples
-    if n < 1 or samples < 1:
-        raise KinecastError("--frames/--samples", "must be at least 1")
     fps = parse_fps(args.fps, rec, cfg.forecast.fps)
     fc = core.forecast(model, cfg, rec, n, parse_start(args.start, rec), fps, samples, device)
     truth, have = truth_at(rec, fc.times)

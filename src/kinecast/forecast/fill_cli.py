@@ -8,7 +8,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from ..fileio import write_text
+from ..fileio import check_can_create, write_text
 from . import core
 from .cli import CAUTION, open_run, refuse_inside
 
@@ -29,6 +29,7 @@ def run(args, cfg) -> int:
     refuse_inside(out, args.path)
     if out.exists() and (not out.is_dir() or any(out.iterdir())) and not args.overwrite:
         raise KinecastError(out, "already exists (pass --overwrite to replace it)")
+    check_can_create(out)
     model, cfg, rec, device = open_run(args, cfg)
     frames, filled = core.fill(model, cfg, rec, device)
     write_frames(frames, out, 1.0 / rec.median_interval, overwrite=args.overwrite)

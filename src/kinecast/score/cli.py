@@ -14,7 +14,7 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import KinecastError
-from ..fileio import write_text
+from ..fileio import check_can_create, write_text
 
 CAUTION = ("Scores compare statistical extrapolations with held-out frames of this recording; they are "
            "not measurements. Not for safety-critical control; follow your lab's own safety rules.")
@@ -88,12 +88,12 @@ def _prepare_out(out: Path, overwrite: bool, inputs: list) -> None:
     for src in inputs:
         if src:
             refuse_inside(out, src)
-    if out.exists() and (not out.is_dir() or any(out.iterdir())) and not overwrite:
+    if out.exists() and not out.is_dir():
+        raise KinecastError(out, "exists and is not a folder (scores go into a folder)")
+    if out.is_dir() and any(out.iterdir()) and not overwrite:
         raise KinecastError(out, "already exists (pass --overwrite to replace it)")
-    try:
-        out.mkdir(parents=True, exist_ok=True)
-    except OSError as exc:
-        raise KinecastError(out, f"cannot create the output folder ({exc.strerror or exc})") from None
+    # checked now, created by the first write: bad input later leaves no empty folder behind
+    check_can_create(out)
 
 
 def run(args, cfg) -> int:
@@ -127,15 +127,16 @@ def _run_pair(args, cfg, out: Path) -> int:
 
 def _run_model(args, cfg, out: Path) -> int:
     from .. import config as cfgmod
-    from ..forecast.cli import open_run
+    from ..forecast.cli import at_least_one, open_run
     from ..forecast.render import comparison_columns, contact_sheet, panel_frames, write_frames
     from ..train.checkpoint import load_run
     from .evaluate import evaluate, holdout_split
 
     sets = [f'score.holdout="{args.holdout}"'] if args.holdout else []
-    sets += [f"score.context={args.context}"] if args.context else []
+    sets += [f"score.context={args.context}"] if args.context is not None else []
     cfg = cfgmod.apply_overrides(cfg, sets)
     holdout = cfg.score.holdout
+    samples = at_least_one("--samples", args.samples, cfg.forecast.samples)
     _prepare_out(out, args.overwrite, [args.path, args.run])
     if holdout.startswith("trial:"):
         args.path = str(Path(args.path) / holdout.split(":", 1)[1])
@@ -151,7 +152,6 @@ def _run_model(args, cfg, out: Path) -> int:
     for other in args.compare:
         m2, c2 = load_run(other, device)
         others[Path(other).name or other] = (m2, c2)
-    samples = args.samples or max(run_cfg.forecast.samples, 1)
     result = evaluate(model, run_cfg, rec, cond_start, first, n, samples, others, device)
     write_scores(out, result, run_cfg, {"run": str(args.run), "recording": str(args.path),
                                         "holdout": holdout, "context_frames": first - cond_start,

@@ -13,7 +13,7 @@ import json
 from pathlib import Path
 
 from ..errors import KinecastError
-from ..fileio import write_text
+from ..fileio import check_can_create, write_text
 from ..train import checkpoint as ck
 
 CAUTIONS = [
@@ -127,6 +127,7 @@ def run(args, cfg) -> int:
     out = Path(args.out) if args.out else Path(args.run) / "report.html"
     if out.exists() and not args.overwrite:
         raise KinecastError(out, "already exists (pass --overwrite to replace it)")
+    check_can_create(out)
     page = build_report(args.run, args.scores, args.clip)
     write_text(out, page)
     print(f"report written to {out} ({len(page) / 1e6:.1f} MB, self-contained)")

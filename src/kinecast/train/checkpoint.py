@@ -15,11 +15,14 @@ Each file is written under a temporary name and renamed, so a kill leaves the pr
 
 from __future__ import annotations
 
+import hashlib
 import json
+import os
+import time
 from pathlib import Path
 
 import torch
-from safetensors import SafetensorError
+from safetensors import SafetensorError, safe_open
 from safetensors.torch import load_file, save_file
 
 from .. import config as cfgmod
@@ -34,12 +37,43 @@ SUMMARY = "summary.json"
 BACKGROUND = "background.png"
 LOSS_PLOT = "loss.png"
 _META_KEY = "kinecast"
+_SUM_KEY = "kinecast_sha256"
+RUN_FILES = (CONFIG, WEIGHTS, RESUME, LOG, SUMMARY, BACKGROUND, LOSS_PLOT)
+PAUSE_ENV = "KINECAST_TEST_CHECKPOINT_PAUSE"  # test hook, see _test_pause
 
 
 def save_tensors(path: Path, tensors: dict[str, torch.Tensor], meta: dict) -> None:
     """Atomically write tensors (made contiguous, on the CPU) plus a JSON metadata blob."""
     flat = {k: v.detach().to("cpu").contiguous() for k, v in tensors.items()}
-    write_with(path, lambda tmp: save_file(flat, str(tmp), metadata={_META_KEY: json.dumps(meta)}))
+
+    def write(tmp: Path) -> None:
+        save_file(flat, str(tmp), metadata={_META_KEY: json.dumps(meta), _SUM_KEY: tensors_digest(flat)})
+        _test_pause()
+
+    write_with(path, write)
+
+
+def _test_pause() -> None:
+    """Test hook: hold a written temporary checkpoint ``$KINECAST_TEST_CHECKPOINT_PAUSE`` seconds
+    before it is renamed into place, so a test can kill the process mid-checkpoint. Unset: no pause."""
+    try:
+        seconds = float(os.environ.get(PAUSE_ENV) or 0.0)
+    except ValueError:
+        seconds = 0.0
+    if seconds > 0:
+        time.sleep(seconds)
+
+
+def remove_stale_temporaries(run: Path) -> list[Path]:
+    """Delete temporaries of this folder's own files left by a killed run (``.resume.*.tmp.safetensors``
+    ...); nothing else is touched. Returns what was removed."""
+    gone = []
+    for name in RUN_FILES:
+        stem, suffix = Path(name).stem, Path(name).suffix
+        for tmp in run.glob(f".{stem}.*.tmp{suffix}"):
+            tmp.unlink(missing_ok=True)
+            gone.append(tmp)
+    return gone
 
 
 def load_tensors(path: Path) -> tuple[dict[str, torch.Tensor], dict]:
@@ -48,20 +82,36 @@ def load_tensors(path: Path) -> tuple[dict[str, torch.Tensor], dict]:
         raise KinecastError(path, "missing")
     try:
         tensors = load_file(str(path))
-        from safetensors import safe_open
-
         with safe_open(str(path), framework="pt") as fh:
-            meta = json.loads((fh.metadata() or {}).get(_META_KEY, "{}"))
+            header = fh.metadata() or {}
+        meta = json.loads(header.get(_META_KEY, "{}"))
     except (SafetensorError, OSError, ValueError, RuntimeError) as exc:
-        raise KinecastError(path, f"damaged or not a kinecast safetensors file ({exc})") from None
+        reason = " ".join(str(exc).split())
+        raise KinecastError(path, f"damaged or not a kinecast safetensors file ({reason})") from None
+    # safetensors itself has no checksum: a flipped bit in the tensor data would load silently
+    if _SUM_KEY in header and header[_SUM_KEY] != tensors_digest(tensors):
+        raise KinecastError(path, "damaged: the tensor data does not match the checksum written with "
+                                  "it (the file changed after it was saved)")
     return tensors, meta
+
+
+def tensors_digest(tensors: dict[str, torch.Tensor]) -> str:
+    """SHA-256 over every tensor's name, dtype, shape and raw bytes, in name order."""
+    digest = hashlib.sha256()
+    for name in sorted(tensors):
+        t = tensors[name].detach().to("cpu").contiguous().reshape(-1)
+        digest.update(f"{name}|{t.dtype}|{tuple(tensors[name].shape)}|".encode())
+        digest.update(t.view(torch.uint8).numpy().tobytes())
+    return digest.hexdigest()
 
 
 def check_run_folder(run: Path, need_resume: bool = False) -> None:
     """Raise a clear error unless ``run`` looks like a kinecast run folder."""
     if not run.is_dir():
-        raise KinecastError(run, "not a run folder (no such folder)")
-    need = [CONFIG, WEIGHTS] + ([RESUME] if need_resume else [])
+        raise KinecastError(run, f"not a run folder ({'a file' if run.exists() else 'no such folder'})")
+    # resuming needs the latest state, not the best weights (written at the first validation,
+    # which may come after the first checkpoint)
+    need = [CONFIG, RESUME] if need_resume else [CONFIG, WEIGHTS]
     missing = [n for n in need if not (run / n).is_file()]
     if missing:
         raise KinecastError(run, f"not a complete run folder (missing {', '.join(missing)})")
@@ -81,6 +131,13 @@ def optimizer_tensors(opt: torch.optim.Optimizer) -> tuple[dict[str, torch.Tenso
 
 
 def restore_optimizer(opt: torch.optim.Optimizer, tensors: dict[str, torch.Tensor], meta: dict) -> None:
+    try:
+        _restore_optimizer(opt, tensors, meta)
+    except (KeyError, ValueError, TypeError, RuntimeError) as exc:
+        raise KinecastError(RESUME, f"optimiser state does not match the model ({exc})") from None
+
+
+def _restore_optimizer(opt: torch.optim.Optimizer, tensors: dict[str, torch.Tensor], meta: dict) -> None:
     state: dict[int, dict] = {}
     for key, value in tensors.items():
         if key.startswith("opt."):
@@ -113,14 +170,48 @@ def load_run(run: str | Path, device: str | torch.device = "cpu"):
     cfg = cfgmod.load(run / CONFIG)
     tensors, _ = load_tensors(run / WEIGHTS)
     model = build_model(cfg, channels_of(cfg))
+    restore_model(model, tensors, run / WEIGHTS)
+    return model.to(device).eval(), cfg
+
+
+def restore_model(model: torch.nn.Module, tensors: dict[str, torch.Tensor], path: Path) -> None:
+    """Load ``tensors`` into ``model``; a mismatch with the config is one clear line naming ``path``."""
     if "background" in tensors:
         model.set_background(tensors["background"])
+    problem = weights_mismatch(tensors, model.state_dict())
     try:
-        model.load_state_dict(tensors, strict=True)
+        if problem is None:
+            model.load_state_dict(tensors, strict=True)
     except RuntimeError as exc:
-        first = str(exc).strip().splitlines()[0]
-        raise KinecastError(run / WEIGHTS, f"weights do not match the run's config.toml ({first})") from None
-    return model.to(device).eval(), cfg
+        problem = " ".join(str(exc).split())
+    if problem is not None:
+        raise KinecastError(path, f"weights do not match the run's config.toml ({problem})")
+
+
+# what a resume checkpoint's metadata must hold (written by train.loop.fit)
+RESUME_META = ("step", "elapsed", "faults", "lr_scale", "curriculum", "optimizer", "sampler_rng",
+               "paths")
+
+
+def load_resume(run: Path) -> tuple[dict[str, torch.Tensor], dict]:
+    """The resume checkpoint of ``run``, refused clearly when it lacks what resuming needs."""
+    tensors, meta = load_tensors(run / RESUME)
+    missing = [k for k in RESUME_META if k not in meta] + [k for k in ("rng.torch",) if k not in tensors]
+    if missing:
+        raise KinecastError(run / RESUME, f"not a kinecast resume checkpoint (no {', '.join(missing)})")
+    return tensors, meta
+
+
+def weights_mismatch(saved: dict[str, torch.Tensor], expected: dict[str, torch.Tensor]) -> str | None:
+    """The first difference between saved tensors and the ones a model expects, or None."""
+    for name, want in expected.items():
+        if name not in saved:
+            return f"tensor {name} is not in the file"
+        if tuple(saved[name].shape) != tuple(want.shape):
+            return (f"tensor {name} has shape {tuple(saved[name].shape)} in the file but the config "
+                    f"builds {tuple(want.shape)}")
+    extra = sorted(set(saved) - set(expected))
+    return f"the file has tensor {extra[0]} that the config does not build" if extra else None
 
 
 def channels_of(cfg: cfgmod.Config) -> int:

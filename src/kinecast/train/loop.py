@@ -170,8 +170,10 @@ def fit(paths, out, cfg: cfgmod.Config | None = None, *, resume: bool = False, o
                 "lr_scale": lr_scale, "curriculum": cur.state(), "optimizer": opt_meta,
                 "sampler_rng": sampler.rng.bit_generator.state, "paths": [str(p) for p in paths],
                 "budget": cfg.train.budget, "steps": cfg.train.steps}
-        ck.save_tensors(run / ck.RESUME, tensors, meta)
+        # log first: a kill between the two writes then leaves extra rows (dropped on resume, which
+        # keeps rows up to the checkpoint's step), never missing ones
         ck.write_log(run, rows)
+        ck.save_tensors(run / ck.RESUME, tensors, meta)
 
     # --- loop -----------------------------------------------------------------------------
     budget_s = cfgmod.parse_budget(cfg.train.budget)

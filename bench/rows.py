@@ -1,0 +1,122 @@
+"""Turn the raw benchmark results into table rows, each with its goal and whether it is met."""
+
+from __future__ import annotations
+
+import math
+
+from .common import (BEAT_FACTOR, EFFICIENCY_GOAL, FLAT_RSS_RATIO, READ_RATIO_GOAL, ROLLOUT_GOAL_FPS,
+                     RSS_GOAL_BYTES, Profile, Row, fmt_si, goal_row)
+from .quality import BASELINES, EVAL_SEED, HORIZONS, LEARNED, TRAIN_SEED, TTQ_RIG
+
+GOAL_SAMPLES = 10  # the rollout goal is stated for 10 samples
+
+
+def peak_rows(peak: dict) -> list[Row]:
+    """The machine's measured peak FLOP/s."""
+    mm, cv = peak["matmul"], peak["conv"]
+    return [Row("machine", f"peak FLOP/s, {peak['threads']} threads (best of {mm['op']}, {cv['op']})",
+                f"{fmt_si(peak['peak'], 'FLOP/s')} (matmul {fmt_si(mm['flops_per_s'], 'FLOP/s')}, "
+                f"conv {fmt_si(cv['flops_per_s'], 'FLOP/s')})")]
+
+
+def train_rows(peak: dict, train: list[dict], p: Profile) -> list[Row]:
+    """Per-size step throughput and achieved FLOP/s, and the efficiency ratios against ``peak``."""
+    rows = []
+    for r in train:
+        rows.append(Row("train", f"training step {r['size']} px, batch {r['batch']} × {r['window']} frames",
+                        f"{r['frames_per_s']:.0f} frames/s ({r['step_s'] * 1e3:.0f} ms/step)"))
+        per_step = fmt_si(r["flops_per_step"], "FLOP")
+        rows.append(Row("train", f"achieved FLOP/s {r['size']} px (fwd+bwd {per_step}/step)",
+                        fmt_si(r["flops_per_s"], "FLOP/s")))
+    for r in train:
+        eff = r["flops_per_s"] / peak["peak"]
+        if r["size"] == p.efficiency_size:
+            rows.append(goal_row("train", f"efficiency ({r['size']} px, achieved / peak)", eff, f"{eff:.3f}",
+                                 EFFICIENCY_GOAL, f"≥ {EFFICIENCY_GOAL}"))
+        else:
+            rows.append(Row("train", f"efficiency @ {r['size']} px", f"{eff:.3f}"))
+    return rows
+
+
+def rollout_rows(rollout: list[dict]) -> list[Row]:
+    rows = []
+    for r in rollout:
+        goal = ROLLOUT_GOAL_FPS if r["samples"] == GOAL_SAMPLES else None
+        measure = f"rollout + decode {r['size']} px, {r['samples']} sample(s) × {r['frames']} frames"
+        rows.append(goal_row("forecast", measure, r["frames_per_s"], f"{r['frames_per_s']:.0f} frames/s",
+                             goal, f"≥ {ROLLOUT_GOAL_FPS:.0f} frames/s" if goal else "—"))
+    return rows
+
+
+def memory_rows(memory: list[dict], p: Profile) -> list[Row]:
+    rows = []
+    for r in memory:
+        measure = (f"peak RSS, fresh process, {p.memory_steps} training steps on {r['frames']} frames "
+                   f"at {p.memory_size} px (validation window {r.get('val_window')} frames)")
+        rows.append(goal_row("memory", measure, r["peak_rss_bytes"], fmt_si(r["peak_rss_bytes"], "B"),
+                             RSS_GOAL_BYTES, f"≤ {fmt_si(RSS_GOAL_BYTES, 'B')}", higher_is_better=False))
+    if len(memory) >= 2:
+        short, long_ = min(memory, key=lambda r: r["frames"]), max(memory, key=lambda r: r["frames"])
+        ratio = long_["peak_rss_bytes"] / short["peak_rss_bytes"]
+        rows.append(goal_row("memory", f"peak RSS {long_['frames']} / {short['frames']} frames", ratio,
+                             f"{ratio:.2f}", FLAT_RSS_RATIO, f"≤ {FLAT_RSS_RATIO} (flat; our threshold)",
+                             higher_is_better=False))
+    return rows
+
+
+def video_rows(v: dict) -> list[Row]:
+    return [Row("video", f"read {v['frames']}-frame mp4 to {v['size']} px, cache off",
+                f"kinecast {v['kinecast_fps']:.0f} frames/s, raw ffmpeg {v['raw_fps']:.0f} frames/s"),
+            goal_row("video", "read throughput ratio, kinecast / raw ffmpeg decode", v["ratio"],
+                     f"{v['ratio']:.2f}", READ_RATIO_GOAL, f"≥ {READ_RATIO_GOAL}")]
+
+
+def _triple(values: list[float], spec: str) -> str:
+    return " / ".join("n/a" if not math.isfinite(x) else format(x, spec) for x in values)
+
+
+def _method_value(s: dict, persistence_mse: float, is_persistence: bool) -> str:
+    value = (f"MSE {_triple(s['mse'], '.2e')} · SSIM {_triple(s['ssim'], '.3f')} · "
+             f"pos {_triple(s['position_error_px'], '.2f')} px · valid {s['valid_horizon_frames']:.1f} fr")
+    if s["object_lost_share"] > 0:
+        value += f" · no object in {100 * s['object_lost_share']:.0f}% of frames"
+    if not is_persistence:
+        value += f" · 3W MSE = {s['mse'][-1] / persistence_mse:.2f} × persistence"
+    return value
+
+
+def quality_rows(quality: dict, budget: str) -> tuple[list[Row], list[str]]:
+    """One row per rig and method, then the time-to-quality rows; plus notes for the table."""
+    rows, notes = [], []
+    for rig, entry in quality.items():
+        if "error" in entry:
+            rows.append(Row("quality", f"{rig}", f"failed: {entry['error']}"))
+            continue
+        scores, train = entry["scores"], entry["training"]
+        pers = scores["persistence"]["mse"][-1]
+        for method in LEARNED + BASELINES:
+            if method not in scores:
+                err = (train.get(method) or {}).get("error")
+                rows.append(Row("quality", f"{rig}: {method}", f"not trained: {err}"))
+                continue
+            steps = f" ({train[method]['summary']['steps']} steps in {budget})" if method in LEARNED else ""
+            rows.append(Row("quality", f"{rig}: {method}{steps}",
+                            _method_value(scores[method], pers, method == "persistence")))
+        for variant, t in entry.get("time_to_quality", {}).items():
+            reached = t["reached"]
+            text = (f"{reached['time_s']:.1f} s (step {reached['step']})" if reached
+                    else f"not reached in {budget}")
+            text += (f"; best 3W MSE {t['best_ratio']:.2f} × persistence over {len(t['curve'])} "
+                     "kept checkpoint(s)")
+            measure = f"{rig}: {variant} until 3W MSE ≤ {1 / BEAT_FACTOR:g} × persistence"
+            rows.append(Row("time-to-quality", measure, text, f"within {budget}", reached is not None))
+        horizons = " / ".join(f"{h}·W" for h in HORIZONS)
+        notes.append(f"quality {rig}: {entry['size']} px, W = {entry['window']} frames (train.window_max); "
+                     f"MSE, SSIM and position error (model pixels) are means over the first {horizons} "
+                     "forecast frames after the first model.velocity_frames frames of each evaluation trial "
+                     f"(rendered with seed {EVAL_SEED}, training trials with seed {TRAIN_SEED}); valid = "
+                     "forecast frames before SSIM first drops below score.ssim_threshold, within 3·W")
+    if any(r.area == "time-to-quality" for r in rows):
+        notes.append(f"time-to-quality: training-loop seconds at the first kept checkpoint of the {TTQ_RIG} "
+                     f"run whose 3·W MSE is at most 1/{BEAT_FACTOR:g} of persistence's")
+    return rows, notes

@@ -1,0 +1,112 @@
+"""Training-step and rollout throughput, on pendulum frames rendered by kinecast.
+
+A training step here is what the trainer does per step: the negative ELBO of a batch of windows
+(forward), its gradient (backward), gradient clipping and an Adam update. Its FLOPs (forward +
+backward) are counted once with ``FlopCounterMode``; the fixed-step solver makes every step cost the
+same. Throughput is ``batch × window / step time``.
+
+Rollout throughput is encoding ``k`` context frames, integrating to ``rollout_frames`` future times
+and decoding every frame, for 1 sample (posterior-mean weights) or S samples (drawn weights and
+initial states, as ``kinecast forecast --samples S`` does): ``S × frames / time``.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import torch
+
+from kinecast.config import Config
+from kinecast.model import build_model, to_model_time
+from kinecast.rigs import render_trials
+
+from .common import NOMINAL_FPS, best_time, sync, use_all_cores
+from .flops import count_flops
+
+RIG = "pendulum"
+SEED = 0
+
+
+def model_config(size: int) -> Config:
+    """The default config at frame size ``size``, with the time scale set for the bench's frame rate."""
+    cfg = Config()
+    cfg.data.size = size
+    cfg.solver.time_scale = cfg.solver.units_per_frame * NOMINAL_FPS
+    return cfg
+
+
+def pendulum_frames(size: int, n: int) -> np.ndarray:
+    """``n`` grey pendulum frames at ``size`` px, uint8 (n, size, size, 1), as rendered."""
+    return render_trials(RIG, trials=1, frames=n, seed=SEED, size=size, channels="grey")[0].frames
+
+
+def rig_frames(size: int, n: int) -> torch.Tensor:
+    """``n`` grey pendulum frames at ``size`` px, as a float tensor (n, 1, size, size) in [0, 1]."""
+    frames = pendulum_frames(size, n).astype(np.float32) / 255.0
+    return torch.from_numpy(np.ascontiguousarray(frames.transpose(0, 3, 1, 2)))
+
+
+def train_step_rate(size: int, window: int, repeats: int, device: torch.device) -> dict:
+    """Time one training step at ``size`` px (default batch) and count its FLOPs.
+
+    Returns
+    -------
+    dict
+        ``size``, ``batch``, ``window``, ``step_s`` (best of ``repeats``), ``frames_per_s``,
+        ``flops_per_step`` (forward + backward) and ``flops_per_s``.
+    """
+    use_all_cores()
+    torch.manual_seed(SEED)
+    cfg = model_config(size)
+    batch = cfg.train.batch
+    frames = rig_frames(size, window + batch)
+    x = torch.stack([frames[i:i + window] for i in range(batch)]).to(device)
+    t = to_model_time(np.arange(window) / NOMINAL_FPS, cfg).to(device)
+    model = build_model(cfg, 1).to(device).train()
+    opt = torch.optim.Adam(model.parameters(), lr=cfg.train.lr)
+    n_total = len(frames)
+
+    def loss():
+        return model(x, t, n_total_frames=n_total, beta=1.0)["loss"]
+
+    def step():
+        opt.zero_grad(set_to_none=True)
+        value = loss()
+        value.backward()
+        torch.nn.utils.clip_grad_norm_(model.parameters(), cfg.train.grad_clip or math.inf)
+        opt.step()
+
+    flops = count_flops(lambda: loss().backward())
+    opt.zero_grad(set_to_none=True)
+    seconds = best_time(step, repeats, device)
+    return {"size": size, "batch": batch, "window": window, "step_s": seconds,
+            "frames_per_s": batch * window / seconds, "flops_per_step": flops,
+            "flops_per_s": flops / seconds}
+
+
+def rollout_rate(size: int, n_frames: int, samples: int, repeats: int, device: torch.device) -> dict:
+    """Frames per second of encode + integrate + decode for ``samples`` futures of ``n_frames``.
+
+    The model is untrained: with the fixed-step solver the cost does not depend on the weights.
+    """
+    use_all_cores()
+    torch.manual_seed(SEED)
+    cfg = model_config(size)
+    k = cfg.model.velocity_frames
+    ctx = rig_frames(size, k)[None].to(device)
+    t = to_model_time((k - 1 + np.arange(1, n_frames + 1)) / NOMINAL_FPS, cfg).to(device)
+    model = build_model(cfg, 1).to(device).eval()
+    stochastic = samples > 1
+
+    def roll():
+        with torch.no_grad():
+            frames, _ = model.rollout(ctx, t, samples=samples, mean_weights=not stochastic,
+                                      sample_init=stochastic)
+        return frames
+
+    shape = tuple(roll().shape)
+    sync(device)
+    seconds = best_time(roll, repeats, device)
+    return {"size": size, "samples": samples, "frames": n_frames, "output_shape": shape,
+            "seconds": seconds, "frames_per_s": samples * n_frames / seconds}

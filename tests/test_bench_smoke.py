@@ -1,0 +1,101 @@
+"""Keep the benchmark scripts working: their cheapest pieces at toy size, checked against outside facts."""
+
+import json
+import math
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+import torch
+import torch.nn.functional as F
+
+ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(ROOT))
+
+from bench import common, flops, rss, throughput, video_read  # noqa: E402
+from bench.rows import train_rows  # noqa: E402
+
+CPU = torch.device("cpu")
+
+
+@pytest.fixture(autouse=True)
+def _threads():
+    old = torch.get_num_threads()
+    yield
+    torch.set_num_threads(old)
+
+
+def test_flop_counter_matches_closed_forms():
+    # A (n×m)·(m×p) product is n·p·m multiply-adds = 2·n·m·p FLOPs (closed form; counting a
+    # multiply-add as 2 FLOPs is common practice). The peak and the training step use this counter,
+    # so this pins the convention both sides of the efficiency ratio share.
+    a, b = torch.randn(7, 5), torch.randn(5, 3)
+    assert flops.count_flops(lambda: a @ b) == 2 * 7 * 5 * 3
+    # A stride-1 "same" convolution: every output pixel of every output channel is Cin·k² multiply-adds
+    # (closed form).
+    x, w = torch.randn(2, 4, 9, 9), torch.randn(6, 4, 3, 3)
+    assert flops.count_flops(lambda: F.conv2d(x, w, padding=1)) == 2 * 2 * 6 * 9 * 9 * 4 * 3 * 3
+
+
+def test_training_step_rate_is_consistent_and_below_peak():
+    peak = flops.peak_rate(CPU, repeats=1, matmul_n=1024, conv=(8, 64, 32))
+    step = throughput.train_step_rate(16, 4, 1, CPU)
+    assert step["frames_per_s"] == pytest.approx(step["batch"] * step["window"] / step["step_s"])
+    assert step["flops_per_s"] == pytest.approx(step["flops_per_step"] / step["step_s"])
+    # Achieved work cannot exceed what the hardware just showed it can do (both counted alike):
+    # an efficiency above 1 would mean the two sides are counted differently.
+    assert 0 < step["flops_per_s"] / peak["peak"] < 1
+    rows = train_rows(peak, [step], common.PROFILES["smoke"])
+    assert [r.measure.split(" (")[0] for r in rows if r.measure.startswith("efficiency")] == ["efficiency"]
+
+
+def test_child_peak_rss_sees_a_known_allocation():
+    # 2**25 float64 values written by np.ones are 2**25 × 8 bytes = 256 MiB resident (numpy's itemsize
+    # for float64 is 8 bytes); the child's reported peak must exceed a bare child's by about that.
+    n = 2 ** 25
+    tail = "from bench.rss import report; report()"
+    bare = rss.run_child([sys.executable, "-c", f"import numpy; {tail}"], cwd=ROOT)
+    big = rss.run_child([sys.executable, "-c", f"import numpy; a = numpy.ones({n}); {tail}"], cwd=ROOT)
+    assert bare["returncode"] == 0 and big["returncode"] == 0
+    grown = big["peak_rss_bytes"] - bare["peak_rss_bytes"]
+    assert 0.95 * n * 8 < grown < 1.2 * n * 8
+    # and the parent's own size (torch loaded here) does not leak into a child's figure
+    assert bare["peak_rss_bytes"] < rss.own_peak_rss()
+
+
+def test_video_read_ratio_on_a_tiny_clip(tmp_path):
+    frames = throughput.pendulum_frames(16, 12)
+    path = video_read.write_video(frames, tmp_path / "clip.mp4", upscale=2)
+    got = video_read.read_ratio(path, 16, repeats=1)
+    # An mp4 written frame by frame reads back with the same number of frames (codec round trip).
+    assert got["frames"] == 12
+    assert got["ratio"] == pytest.approx(got["kinecast_fps"] / got["raw_fps"])
+
+
+def test_table_goals_and_result_files(tmp_path):
+    rows = [common.goal_row("a", "above goal", 0.5, "0.5", 0.35, "≥ 0.35"),
+            common.goal_row("a", "over a ceiling", 2e9, "2 GB", 1.5e9, "≤ 1.5 GB", higher_is_better=False),
+            common.goal_row("a", "unmeasured", math.nan, "n/a", 0.8, "≥ 0.8"),
+            common.Row("b", "no goal", "pipe | inside")]
+    assert [r.met for r in rows] == [True, False, None, None]
+    report = common.Report("smoke", meta={"notes": ["a note"]}, rows=rows, raw={"x": math.nan, "y": [1.0]})
+    md, js = report.write(tmp_path, "smoke")
+    text = md.read_text()
+    table = [ln for ln in text.splitlines() if ln.startswith("|")]
+    assert len(table) == 2 + len(rows)
+    assert all(ln.count("|") == 6 for ln in table)  # five cells each; the pipe in a value is escaped
+    assert "| yes |" in table[2] and "| no |" in table[3]
+    assert "not for safety-critical control" in text
+    data = json.loads(js.read_text())  # strict JSON: NaN written as null
+    assert data["raw"] == {"x": None, "y": [1.0]}
+    assert [r["measure"] for r in data["rows"]] == [r.measure for r in rows]
+
+
+def test_profiles_keep_the_quick_run_smaller_than_the_full_one():
+    full, quick = common.PROFILES["full"], common.PROFILES["quick"]
+    assert quick.rigs and set(quick.rigs) <= set(full.rigs)
+    assert set(quick.train_sizes) <= set(full.train_sizes)
+    from kinecast.config import parse_budget
+    assert parse_budget(quick.budget) < parse_budget(full.budget)
+    assert np.all(np.diff(full.memory_frames) > 0)
