@@ -104,7 +104,8 @@ class TrainConfig:
                             lo=0.0, hi=1.0)
     grad_clip: float = _opt(1.0, "gradient norm clip; 0 = off", lo=0.0)
     window_start: int = _opt(8, "first curriculum window length in frames", lo=2)
-    window_max: int = _opt(0, "longest window; 0 = the longest that fits", lo=0)
+    window_max: int = _opt(64, "longest training window in frames (also capped by the shortest training "
+                           "recording); 0 = no cap beyond the recordings", lo=0)
     window_growth: float = _opt(1.5, "window × this when validation stalls", lo=1.0)
     window_schedule: float = _opt(0.6, "share of the budget by which the window has grown (geometrically) "
                                   "to its longest at the latest; 0 = grow only when validation stalls",

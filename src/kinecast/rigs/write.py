@@ -25,6 +25,7 @@ from tqdm import tqdm
 
 from .. import fileio
 from ..errors import KinecastError
+from ..fileio import check_can_create
 from .camera import Camera
 from .catalog import get_rig
 from .render import RigTrial, background_for, check_settings, render_trial
@@ -77,6 +78,7 @@ def _check_out(out_dir: Path, overwrite: bool) -> None:
     if out_dir.is_dir() and any(out_dir.iterdir()) and not overwrite:
         raise KinecastError(out_dir, "already exists and is not empty (pass --overwrite to replace "
                             "the trials in it)")
+    check_can_create(out_dir)
 
 
 def _remove_stale(folder: Path, keep: set[str]) -> None:

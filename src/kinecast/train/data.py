@@ -86,8 +86,9 @@ def median_background(recs: list[Recording]) -> np.ndarray:
 @dataclass
 class Batch:
     frames: torch.Tensor  # [B, W, C, H, W]
-    times: torch.Tensor  # [W] seconds since the window start (batch mean)
+    times: torch.Tensor  # [W] seconds since the window start (batch mean, for one shared ODE solve)
     mask: torch.Tensor  # [B, W] True where a frame is present
+    own_times: torch.Tensor  # [B, W] each window's own seconds since its start
 
 
 class WindowSampler:
@@ -136,4 +137,4 @@ class WindowSampler:
         rel = np.stack([self.recs[i].times[s:s + window] - self.recs[i].times[s]
                         for i, s in zip(which, starts)])
         mask = np.stack([~self.recs[i].missing[s:s + window] for i, s in zip(which, starts)])
-        return Batch(frames, torch.from_numpy(rel.mean(axis=0)), torch.from_numpy(mask))
+        return Batch(frames, torch.from_numpy(rel.mean(axis=0)), torch.from_numpy(mask), torch.from_numpy(rel))
