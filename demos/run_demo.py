@@ -40,9 +40,9 @@ def demo() -> None:
     os.environ.setdefault("KINECAST_CACHE_DIR", str(OUT / "cache"))
     train, held = OUT / "pendulum_train", OUT / "pendulum_heldout"
     step("render training trials", ["rig", "pendulum", "--out", str(train), "--trials", "8",
-                                     "--frames", str(FRAMES), "--seed", "1", "--noise", "2"])
+                                     "--frames", str(FRAMES), "--seed", "1", "--noise", "0.01"])
     step("render a held-out trial", ["rig", "pendulum", "--out", str(held), "--trials", "1",
-                                     "--frames", str(FRAMES), "--seed", "2", "--noise", "2"])
+                                     "--frames", str(FRAMES), "--seed", "2", "--noise", "0.01"])
     trial = held / "trial_000"
     step("inspect the held-out recording", ["inspect", str(trial)])
     fast = os.environ.get("DEMO", "") == "fast" and (SHIPPED / "weights.safetensors").is_file()
@@ -55,6 +55,13 @@ def demo() -> None:
     step("forecast the held-out trial from its first 3 frames",
          ["forecast", str(run), str(trial), "--from", "3", "--frames", str(FRAMES - 3),
           "--samples", "8", "--out", str(clip)])
+    scores = OUT / "scores"
+    step("score the held-out frames against baselines",
+         ["score", str(run), str(trial), "--holdout", f"last:{FRAMES - 3}", "--context", "3",
+          "--samples", "8", "--out", str(scores)])
+    report = OUT / "report.html"
+    step("write the HTML report", ["report", str(run), "--scores", str(scores), "--clip", str(clip),
+                                   "--out", str(report)])
     print("\n== outputs")
     for path in sorted(OUT.iterdir()):
         if path.name != "cache":

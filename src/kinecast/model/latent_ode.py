@@ -1,0 +1,293 @@
+"""The second-order latent ODE VAE: encoders, latent dynamics, decoder over a static background, ELBO.
+
+Generative story for a window of frames x_0..x_{T-1} at model times t_0 = 0 < t_1 < ... :
+s0 ~ N(0, I), v0 ~ N(0, I), W ~ p(W); (s, v) solves ds/dt = v, dv/dt = f_W(s, v); x_i ~ p(x | s(t_i)).
+The position encoder reads x_0 and gives q(s0); the velocity encoder reads the first k frames and
+their differences and gives q(v0); q(W) is a mean-field Gaussian.
+
+Mean frame: ``sigmoid(logit(b) + decoder(s))`` with b the background buffer (clamped to
+[:data:`BG_EPS`, 1 − :data:`BG_EPS`]). A zero residual reproduces b up to float rounding, and the
+Bernoulli likelihood works on logits directly. Without a background b = 0.5 (logit 0).
+
+References
+----------
+Rubanova, Y., Chen, R. T. Q. and Duvenaud, D. (2019). Latent ODEs for irregularly-sampled time
+series. NeurIPS.
+"""
+
+from __future__ import annotations
+
+import math
+
+import torch
+from torch import nn
+
+from .convnets import Decoder, GaussEncoder
+from .field import DynamicsField
+from .gauss import bernoulli_nll, gaussian_nll, kl_std_normal
+from .solver import solve
+
+BG_EPS = 1e-4  # background intensities are clamped into [BG_EPS, 1 - BG_EPS] before the logit
+INIT_NOISE_STD = 0.1  # starting pixel noise std of the Gaussian likelihood (intensities in [0, 1])
+DECODE_CHUNK = 1024  # frames decoded at once by decode() (bounds the decoder's working memory)
+
+
+def _reparam(mean: torch.Tensor, logvar: torch.Tensor, generator: torch.Generator | None = None):
+    eps = torch.randn(mean.shape, generator=generator, device=mean.device, dtype=mean.dtype)
+    return mean + (0.5 * logvar).exp() * eps
+
+
+class LatentODE(nn.Module):
+    """Latent ODE model; build it with :func:`build_model`.
+
+    Parameters
+    ----------
+    model_cfg : ModelConfig
+    solver_cfg : SolverConfig
+    channels : int
+        1 (grey) or 3 (RGB).
+    size : int
+        Frame height and width in pixels.
+    """
+
+    def __init__(self, model_cfg, solver_cfg, channels: int, size: int):
+        super().__init__()
+        if channels < 1 or size < 2:
+            raise ValueError(f"LatentODE: need channels >= 1 and size >= 2, got {channels}, {size}")
+        self.cfg = model_cfg
+        self.solver_cfg = solver_cfg
+        self.variant = model_cfg.variant
+        self.q = q = int(model_cfg.latent_dim)
+        self.k = k = int(model_cfg.velocity_frames)
+        self.channels, self.size = int(channels), int(size)
+        self.pos_enc = GaussEncoder(channels, size, model_cfg.enc_channels, q)
+        self.vel_enc = GaussEncoder((2 * k - 1) * channels, size, model_cfg.enc_channels, q)
+        self.field = DynamicsField(q, model_cfg.hidden, model_cfg.hidden_layers,
+                                   second_order=self.variant != "first_order",
+                                   bayesian=self.variant != "deterministic",
+                                   prior_std=model_cfg.prior_std, init_logstd=model_cfg.init_logstd)
+        self.decoder = Decoder(q, channels, size, model_cfg.dec_channels)
+        if model_cfg.likelihood == "gaussian":
+            self.log_noise = nn.Parameter(torch.full((channels,), math.log(INIT_NOISE_STD)))
+        else:
+            self.log_noise = None
+        self.register_buffer("background", torch.full((channels, size, size), 0.5))
+
+    # ----------------------------------------------------------------- background and decoding
+    def set_background(self, bg: torch.Tensor | None) -> None:
+        """Use ``bg`` ([C, H, W] in [0, 1]) as the static background; None resets to none (0.5)."""
+        with torch.no_grad():
+            if bg is None:
+                self.background.fill_(0.5)
+                return
+            bg = torch.as_tensor(bg)
+            if tuple(bg.shape) != tuple(self.background.shape):
+                raise ValueError(f"set_background: expected shape {tuple(self.background.shape)}, "
+                                 f"got {tuple(bg.shape)}")
+            if not torch.isfinite(bg).all():
+                raise ValueError("set_background: background holds non-finite values")
+            self.background.copy_(bg.to(self.background))
+
+    def decode_logits(self, s: torch.Tensor) -> torch.Tensor:
+        """Latent positions (..., q) → pixel logits (..., C, H, W), background included."""
+        base = torch.logit(self.background.clamp(BG_EPS, 1.0 - BG_EPS))
+        return base + self.decoder(s)
+
+    def decode(self, s: torch.Tensor) -> torch.Tensor:
+        """Latent positions (..., q) → mean frames (..., C, H, W) in [0, 1].
+
+        Large batches are decoded in chunks of :data:`DECODE_CHUNK` frames, so many long sampled
+        futures do not need the decoder's activations for every frame at once.
+        """
+        flat = s.reshape(-1, s.shape[-1])
+        if len(flat) <= DECODE_CHUNK:
+            return torch.sigmoid(self.decode_logits(s))
+        out = torch.cat([torch.sigmoid(self.decode_logits(c)) for c in flat.split(DECODE_CHUNK)])
+        return out.view(*s.shape[:-1], *out.shape[1:])
+
+    # ----------------------------------------------------------------------------- encoding
+    def _check_frames(self, x: torch.Tensor, name: str, min_t: int) -> None:
+        if x.ndim != 5 or x.shape[2:] != (self.channels, self.size, self.size) or x.shape[1] < min_t:
+            raise ValueError(f"{name}: expected [B, T>={min_t}, {self.channels}, {self.size}, "
+                             f"{self.size}], got {list(x.shape)}")
+
+    def encode_dist(self, ctx: torch.Tensor):
+        """Means and log-variances of q(s0) and q(v0) from ``ctx`` [B, k, C, H, W] (first k used)."""
+        self._check_frames(ctx, "encode", self.k)
+        ctx = ctx[:, :self.k].contiguous()  # convs on broadcast (expanded) views are very slow
+        s_mean, s_logvar = self.pos_enc(ctx[:, 0])
+        stacked = torch.cat([ctx.flatten(1, 2), (ctx[:, 1:] - ctx[:, :-1]).flatten(1, 2)], dim=1)
+        v_mean, v_logvar = self.vel_enc(stacked)
+        return s_mean, s_logvar, v_mean, v_logvar
+
+    def encode(self, ctx: torch.Tensor, sample: bool, generator: torch.Generator | None = None
+               ) -> torch.Tensor:
+        """Initial latent state [B, 2q] = [s0, v0] at the time of ``ctx[:, 0]``.
+
+        ``sample`` draws from q(s0) q(v0) (reparameterised); otherwise the means are returned.
+        """
+        s_mean, s_logvar, v_mean, v_logvar = self.encode_dist(ctx)
+        if sample:
+            return torch.cat([_reparam(s_mean, s_logvar, generator),
+                              _reparam(v_mean, v_logvar, generator)], dim=1)
+        return torch.cat([s_mean, v_mean], dim=1)
+
+    # ---------------------------------------------------------------------------- dynamics
+    def integrate(self, state0: torch.Tensor, t: torch.Tensor) -> torch.Tensor:
+        """Solve from ``state0`` [n, 2q] at t[0] with the weights last drawn; returns [N, n, 2q]."""
+        return solve(self.field, state0, t, self.solver_cfg)
+
+    def integrate_any(self, state0: torch.Tensor, t: torch.Tensor) -> torch.Tensor:
+        """States at arbitrary times ``t`` [N] relative to ``state0`` (time 0): any order, repeats,
+        before and after 0. Solves forward for t > 0 and backward for t < 0. Returns [N, n, 2q]."""
+        t = torch.as_tensor(t, dtype=state0.dtype).to(state0.device).reshape(-1)
+        uniq, inverse = torch.unique(t, sorted=True, return_inverse=True)
+        zero = uniq.new_zeros(1)
+        parts = []
+        neg = uniq[uniq < 0]
+        if len(neg):
+            back = self.integrate(state0, torch.cat([zero, neg.flip(0)]))[1:]
+            parts.append(back.flip(0))
+        pos = uniq[uniq >= 0]
+        if len(pos):
+            fwd = self.integrate(state0, torch.cat([zero, pos[pos > 0]]))
+            parts.append(fwd if pos[0] == 0 else fwd[1:])
+        return torch.cat(parts, dim=0)[inverse]
+
+    # ------------------------------------------------------------------------------ ELBO
+    def forward(self, frames: torch.Tensor, t: torch.Tensor, n_total_frames: int, beta: float = 1.0,
+                mask: torch.Tensor | None = None, sample: bool = True) -> dict:
+        """Negative ELBO of a batch of windows, normalised per observed pixel, and its terms.
+
+        Parameters
+        ----------
+        frames : Tensor [B, T, C, H, W]
+            Intensities in [0, 1]; T >= ``velocity_frames``.
+        t : Tensor [T]
+            Model times of the frames, strictly increasing (made relative to ``t[0]``).
+        n_total_frames : int
+            Frames in the whole training set; the weight KL is scaled by T / n_total_frames.
+        beta : float
+            Weight of the KL terms (KL warm-up).
+        mask : Tensor [B, T] of bool, optional
+            True where a frame is present. Dropped frames get no likelihood or agreement term; the
+            first ``velocity_frames`` frames are read by the encoders whatever the mask says.
+        sample : bool
+            Draw s0, v0 and the weights (training); False uses the means (deterministic score).
+
+        Returns
+        -------
+        dict
+            ``loss = nll + beta·(kl_s0 + kl_v0 + kl_w) + agreement_weight·agreement`` (0-dim), with
+            ``nll`` and the KL terms in nats per observed pixel (per-sequence sums divided by the
+            observed pixels per sequence), ``agreement`` the negative log-density (up to a
+            constant) of the position encoder's means on the present frames 1.. under N(s_t, I),
+            in the same per-pixel units (gradients reach both the encoder and the trajectory),
+            ``mse`` the per-pixel squared error of the mean frames (observed frames), and
+            ``recon`` the mean frames [B, T, C, H, W]. Only ``loss`` carries gradients; the
+            other entries are detached (for logging).
+        """
+        self._check_frames(frames, "forward", self.k)
+        frames = frames.contiguous()
+        B, T = frames.shape[:2]
+        t = torch.as_tensor(t, dtype=frames.dtype).to(frames.device)
+        if t.shape != (T,):
+            raise ValueError(f"forward: t must have shape [{T}], got {list(t.shape)}")
+        if n_total_frames < 1:
+            raise ValueError(f"forward: n_total_frames must be positive, got {n_total_frames}")
+        obs = (torch.ones(B, T, dtype=torch.bool, device=frames.device) if mask is None
+               else torch.as_tensor(mask, dtype=torch.bool).to(frames.device))
+        if obs.shape != (B, T):
+            raise ValueError(f"forward: mask must have shape [{B}, {T}], got {list(obs.shape)}")
+        obs_f = obs.to(frames.dtype)
+        n_obs = obs_f.sum().clamp_min(1.0)
+
+        s_mean, s_logvar, v_mean, v_logvar = self.encode_dist(frames)
+        if sample:
+            state0 = torch.cat([_reparam(s_mean, s_logvar), _reparam(v_mean, v_logvar)], dim=1)
+        else:
+            state0 = torch.cat([s_mean, v_mean], dim=1)
+        self.field.draw(B, mean=not sample)
+        states = self.integrate(state0, t - t[0]).transpose(0, 1)  # [B, T, 2q]
+        s = states[..., :self.q]
+        logits = self.decode_logits(s)
+        recon = torch.sigmoid(logits)
+
+        if self.log_noise is None:
+            nll_pix = bernoulli_nll(logits, frames)
+        else:
+            nll_pix = gaussian_nll(recon, frames, self.log_noise.view(-1, 1, 1))
+        pixels_per_frame = float(self.channels * self.size * self.size)
+        norm = n_obs / B * pixels_per_frame  # observed pixels per sequence
+        nll = (nll_pix.flatten(2).sum(2) * obs_f).sum() / B / norm
+        kl_s0 = kl_std_normal(s_mean, s_logvar).sum() / B / norm
+        kl_v0 = kl_std_normal(v_mean, v_logvar).sum() / B / norm
+        kl_w = self.field.kl() * (T / float(n_total_frames)) / norm
+        mse = (((recon - frames) ** 2).flatten(2).mean(2) * obs_f).sum() / n_obs
+
+        agreement = frames.new_zeros(())
+        if self.cfg.agreement_weight > 0 and T > 1:
+            later = obs[:, 1:]
+            if later.any():
+                # both sides learn: the trajectory follows the encoder's reading of each frame and
+                # the encoder learns to read every frame, not only first ones (measured on one clip:
+                # a stop-gradient on the encoder side made weights >= 1 collapse to the mean frame)
+                enc_mean, _ = self.pos_enc(frames[:, 1:][later])
+                agreement = 0.5 * ((enc_mean - s[:, 1:][later]) ** 2).sum() / B / norm
+        loss = nll + beta * (kl_s0 + kl_v0 + kl_w) + self.cfg.agreement_weight * agreement
+        terms = {"nll": nll, "kl_s0": kl_s0, "kl_v0": kl_v0, "kl_w": kl_w, "agreement": agreement,
+                 "mse": mse, "recon": recon}
+        return {"loss": loss, **{k: v.detach() for k, v in terms.items()}}
+
+    # --------------------------------------------------------------------------- rollout
+    def rollout(self, ctx: torch.Tensor, t: torch.Tensor, samples: int = 1, mean_weights: bool = True,
+                sample_init: bool = False, generator: torch.Generator | None = None):
+        """Decode frames at model times ``t`` (relative to ``ctx[:, 0]``; any order, may be < 0).
+
+        Parameters
+        ----------
+        ctx : Tensor [B, k, C, H, W]
+            Context frames (the first ``velocity_frames`` are used).
+        t : Tensor [N]
+            Model times relative to the first context frame.
+        samples : int
+            Futures per sequence (S).
+        mean_weights : bool
+            Posterior-mean weights; False draws weights per future and sequence (the
+            "deterministic" variant has only mean weights).
+        sample_init : bool
+            Draw s0, v0 from the encoder's posterior; False uses its means.
+        generator : torch.Generator, optional
+            Noise source for reproducible samples.
+
+        Returns
+        -------
+        frames : Tensor [S, B, N, C, H, W]
+        latents : Tensor [S, B, N, 2q]
+        """
+        if samples < 1:
+            raise ValueError(f"rollout: samples must be at least 1, got {samples}")
+        self._check_frames(ctx, "rollout", self.k)
+        B = ctx.shape[0]
+        s_mean, s_logvar, v_mean, v_logvar = self.encode_dist(ctx)
+        state0 = torch.cat([s_mean, v_mean], 1).repeat(samples, 1)
+        if sample_init:
+            logvar = torch.cat([s_logvar, v_logvar], 1).repeat(samples, 1)
+            state0 = _reparam(state0, logvar, generator)
+        self.field.draw(samples * B, mean=mean_weights, generator=generator)
+        states = self.integrate_any(state0, t)  # [N, S·B, 2q]
+        latents = states.transpose(0, 1).reshape(samples, B, states.shape[0], 2 * self.q)
+        return self.decode(latents[..., :self.q]), latents
+
+
+def build_model(cfg, channels: int) -> LatentODE:
+    """The model for ``cfg`` (sizes from ``cfg.model``, frame size ``cfg.data.size``).
+
+    Examples
+    --------
+    >>> from kinecast.config import Config
+    >>> cfg = Config(); cfg.data.size = 32
+    >>> build_model(cfg, 1).rollout(torch.zeros(2, 3, 1, 32, 32), torch.tensor([0.0, 0.1]))[0].shape
+    torch.Size([1, 2, 2, 1, 32, 32])
+    """
+    return LatentODE(cfg.model, cfg.solver, channels, cfg.data.size)
