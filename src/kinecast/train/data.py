@@ -18,6 +18,7 @@ import torch
 from ..config import Config
 from ..errors import KinecastError
 from ..frames import Recording, read_recording
+from ..score import tracks
 
 IMAGE_SUFFIXES = {".png", ".jpg", ".jpeg", ".bmp", ".tif", ".tiff"}
 
@@ -80,7 +81,7 @@ def median_background(recs: list[Recording]) -> np.ndarray:
     """Per-pixel median of the present frames of all recordings: a fixed camera's static scene."""
     present = np.concatenate([r.frames[~r.missing] for r in recs], axis=0)
     stride = max(1, len(present) // 512)  # a median over ≤ 512 frames is plenty and bounds memory
-    return np.median(present[::stride], axis=0).astype(np.float32)
+    return tracks.median_background(present[::stride])
 
 
 @dataclass
