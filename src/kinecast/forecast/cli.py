@@ -155,7 +155,8 @@ def run(args, cfg) -> int:
     panels = panel_frames(cols, fc.times, upscale=cfg.forecast.upscale)
     play_fps = 1.0 / rec.median_interval  # play at the recording's rate: --fps 4x gives slow motion
     write_frames(panels, out, play_fps, overwrite=args.overwrite)
-    contact_sheet(panels, fc.times, cfg.forecast.contact_every, side["sheet"], overwrite=args.overwrite)
+    contact_sheet(panels, fc.times, cfg.forecast.contact_every, side["sheet"], overwrite=args.overwrite,
+                  label=False)
     write_text(side["latents"], latents_csv(fc.times, fc.latents))
     phase_portrait(fc.latents[0], fc.times, side["phase"], overwrite=args.overwrite)
     buf = io.BytesIO()

@@ -378,7 +378,7 @@ def _scale_bar(img: np.ndarray, box: tuple[int, int, int, int], vmax: float, cma
 
 
 def contact_sheet(frames_or_panels: np.ndarray, times: np.ndarray, every: int, out: str | Path,
-                  upscale: int = 1, overwrite: bool = False) -> Path:
+                  upscale: int = 1, overwrite: bool = False, label: bool = True) -> Path:
     """One PNG grid of every ``every``-th frame, each labelled with its time.
 
     Parameters
@@ -395,6 +395,8 @@ def contact_sheet(frames_or_panels: np.ndarray, times: np.ndarray, every: int, o
         Nearest-neighbour magnification of each tile.
     overwrite : bool
         Replace an existing file.
+    label : bool
+        Write each tile's time under it; False for panels from :func:`panel_frames`, which carry it.
 
     Returns
     -------
@@ -412,7 +414,7 @@ def contact_sheet(frames_or_panels: np.ndarray, times: np.ndarray, every: int, o
         raise ValueError(f"need T >= 1 frames and T times, got {len(frames8)} frames, {len(times)} times")
     picks = np.arange(0, len(frames8), int(every))
     th, tw = frames8.shape[1], max(frames8.shape[2], MIN_PANEL_WIDTH)
-    tile_h = th + BAND
+    tile_h = th + (BAND if label else 0)
     # choose the column count that makes the sheet closest to square in pixels
     cols = int(np.clip(round(math.sqrt(len(picks) * tile_h / tw)), 1, len(picks)))
     rows = -(-len(picks) // cols)
@@ -423,5 +425,6 @@ def contact_sheet(frames_or_panels: np.ndarray, times: np.ndarray, every: int, o
         y, x = (n // cols) * (tile_h + GAP), (n % cols) * (tw + GAP)
         xo = x + (tw - frames8.shape[2]) // 2
         sheet[y:y + th, xo:xo + frames8.shape[2]] = frames8[i]
-        _text(sheet, (y + th, x, y + tile_h, x + tw), fmt.format(times[i]))
+        if label:
+            _text(sheet, (y + th, x, y + tile_h, x + tw), fmt.format(times[i]))
     return write_bytes(path, iio.imwrite("<bytes>", sheet, extension=".png"), overwrite)

@@ -162,7 +162,7 @@ def _run_model(args, cfg, out: Path) -> int:
                           upscale=run_cfg.forecast.upscale)
     write_frames(panels, out / "forecast.mp4", 1.0 / rec.median_interval, overwrite=True)
     contact_sheet(panels, result["times"], run_cfg.forecast.contact_every, out / "forecast_sheet.png",
-                  overwrite=True)
+                  overwrite=True, label=False)
     print(table(result))
     p = result["periods"]
     print(f"dominant period: truth {p['truth_track_s']:.3f} s, model track {p['model_track_s']:.3f} s, "
