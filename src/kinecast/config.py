@@ -106,6 +106,8 @@ class TrainConfig:
     window_start: int = _opt(8, "first curriculum window length in frames", lo=2)
     window_max: int = _opt(64, "longest training window in frames (also capped by the shortest training "
                            "recording); 0 = no cap beyond the recordings", lo=0)
+    decode_frames: int = _opt(0, "frames per window decoded and scored each step (drawn at random; an "
+                               "unbiased estimate); 0 = all", lo=0)
     window_growth: float = _opt(1.5, "window × this when validation stalls", lo=1.0)
     window_schedule: float = _opt(0.6, "share of the budget by which the window has grown (geometrically) "
                                   "to its longest at the latest; 0 = grow only when validation stalls",

@@ -156,7 +156,7 @@ class LatentODE(nn.Module):
 
     # ------------------------------------------------------------------------------ ELBO
     def forward(self, frames: torch.Tensor, t: torch.Tensor, n_total_frames: int, beta: float = 1.0,
-                mask: torch.Tensor | None = None, sample: bool = True) -> dict:
+                mask: torch.Tensor | None = None, sample: bool = True, decode_frames: int = 0) -> dict:
         """Negative ELBO of a batch of windows, normalised per observed pixel, and its terms.
 
         Parameters
@@ -174,6 +174,10 @@ class LatentODE(nn.Module):
             first ``velocity_frames`` frames are read by the encoders whatever the mask says.
         sample : bool
             Draw s0, v0 and the weights (training); False uses the means (deterministic score).
+        decode_frames : int
+            When 0 < decode_frames < T, decode and score only that many frames drawn at random from
+            the window (``train.decode_frames``); ``nll`` stays an unbiased estimate and ``recon``
+            covers the drawn frames only.
 
         Returns
         -------
@@ -210,6 +214,14 @@ class LatentODE(nn.Module):
         self.field.draw(B, mean=not sample)
         states = self.integrate(state0, t - t[0]).transpose(0, 1)  # [B, T, 2q]
         s = states[..., :self.q]
+        pixels_per_frame = float(self.channels * self.size * self.size)
+        norm = n_obs / B * pixels_per_frame  # observed pixels per sequence
+        if 0 < decode_frames < T:
+            # Decode a random subset of the window's frames: an unbiased estimate of the sum over
+            # all frames (rescaled by the observed-frame ratio), at a cost that does not grow with T.
+            idx = torch.randperm(T, device=frames.device)[:decode_frames].sort().values
+            s, frames, obs, obs_f = s[:, idx], frames[:, idx], obs[:, idx], obs_f[:, idx]
+        scale = n_obs / obs_f.sum().clamp_min(1.0)
         logits = self.decode_logits(s)
         recon = torch.sigmoid(logits)
 
@@ -217,23 +229,21 @@ class LatentODE(nn.Module):
             nll_pix = bernoulli_nll(logits, frames)
         else:
             nll_pix = gaussian_nll(recon, frames, self.log_noise.view(-1, 1, 1))
-        pixels_per_frame = float(self.channels * self.size * self.size)
-        norm = n_obs / B * pixels_per_frame  # observed pixels per sequence
-        nll = (nll_pix.flatten(2).sum(2) * obs_f).sum() / B / norm
+        nll = scale * (nll_pix.flatten(2).sum(2) * obs_f).sum() / B / norm
         kl_s0 = kl_std_normal(s_mean, s_logvar).sum() / B / norm
         kl_v0 = kl_std_normal(v_mean, v_logvar).sum() / B / norm
         kl_w = self.field.kl() * (T / float(n_total_frames)) / norm
-        mse = (((recon - frames) ** 2).flatten(2).mean(2) * obs_f).sum() / n_obs
+        mse = (((recon - frames) ** 2).flatten(2).mean(2) * obs_f).sum() / obs_f.sum().clamp_min(1.0)
 
         agreement = frames.new_zeros(())
-        if self.cfg.agreement_weight > 0 and T > 1:
+        if self.cfg.agreement_weight > 0 and s.shape[1] > 1:
             later = obs[:, 1:]
             if later.any():
                 # both sides learn: the trajectory follows the encoder's reading of each frame and
                 # the encoder learns to read every frame, not only first ones (measured on one clip:
                 # a stop-gradient on the encoder side made weights >= 1 collapse to the mean frame)
                 enc_mean, _ = self.pos_enc(frames[:, 1:][later])
-                agreement = 0.5 * ((enc_mean - s[:, 1:][later]) ** 2).sum() / B / norm
+                agreement = scale * 0.5 * ((enc_mean - s[:, 1:][later]) ** 2).sum() / B / norm
         loss = nll + beta * (kl_s0 + kl_v0 + kl_w) + self.cfg.agreement_weight * agreement
         terms = {"nll": nll, "kl_s0": kl_s0, "kl_v0": kl_v0, "kl_w": kl_w, "agreement": agreement,
                  "mse": mse, "recon": recon}
