@@ -1,17 +1,3 @@
 #!/usr/bin/env bash
-# The whole job on the synthetic 'spring' rig (our own demo scenario): render training trials and a
-# held-out trial with another seed, train briefly, forecast, score against baselines, report.
-# Usage: demos/spring.sh [OUTDIR] [BUDGET]   (defaults: demo_output/spring, 3m)
-# Forecasts are statistical extrapolations, not measurements; not for safety-critical control.
-set -euo pipefail
-K="${KINECAST:-.venv/bin/kinecast}"
-OUT="${1:-demo_output/spring}"
-BUDGET="${2:-3m}"
-mkdir -p "$OUT"
-$K rig spring --out "$OUT/train" --trials 8 --frames 90 --seed 1 --noise 0.01 --overwrite
-$K rig spring --out "$OUT/heldout" --trials 1 --frames 90 --seed 2 --noise 0.01 --overwrite
-$K fit "$OUT/train" --out "$OUT/run" --budget "$BUDGET" --overwrite
-$K forecast "$OUT/run" "$OUT/heldout/trial_000" --from 3 --frames 87 --samples 8 --out "$OUT/forecast.mp4" --overwrite
-$K score "$OUT/run" "$OUT/heldout/trial_000" --holdout last:87 --context 3 --samples 8 --out "$OUT/scores" --overwrite
-$K report "$OUT/run" --scores "$OUT/scores" --clip "$OUT/forecast.mp4" --out "$OUT/report.html" --overwrite
-echo "open $OUT/report.html"
+# The whole job on the synthetic spring rig; see rig_job.sh. Usage: demos/spring.sh [OUTDIR] [BUDGET]
+exec "$(dirname "$0")/rig_job.sh" spring "$@"
