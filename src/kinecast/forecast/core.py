@@ -76,7 +76,7 @@ def slot_at_time(rec: Recording, when: float) -> int:
 
 def predict_from(model, cfg: Config, rec: Recording, ctx_start: int, times: np.ndarray,
                  samples: int = 1, device: str | torch.device = "cpu") -> Forecast:
-    """Condition on ``k`` frames from ``ctx_start`` and predict frames at ``times`` (seconds, monotonic away from the context).
+    """Condition on ``k`` frames from ``ctx_start`` and predict frames at ``times`` (seconds, any order, before or after the context).
 
     With ``samples == 1`` the mean weights and the encoders' means are used (one deterministic
     forecast). With more, each sample draws the initial state and the field's weights.
@@ -114,9 +114,11 @@ def resample(model, cfg: Config, rec: Recording, times: np.ndarray, device="cpu"
 
     Conditions on the first ``k`` present frames and integrates to every requested time.
     """
-    cs = context_start_for(rec, cfg.model.velocity_frames, rec.n_frames)
-    first = next(s for s in range(cs + 1) if not rec.missing[s:s + cfg.model.velocity_frames].any())
-    return predict_from(model, cfg, rec, first, np.asarray(times, dtype=np.float64), 1, device)
+    k = cfg.model.velocity_frames
+    starts = [s for s in range(rec.n_frames - k + 1) if not rec.missing[s:s + k].any()]
+    if not starts:
+        raise KinecastError(rec.source, f"no {k} consecutive present frames to start from")
+    return predict_from(model, cfg, rec, starts[0], np.asarray(times, dtype=np.float64), 1, device)
 
 
 def gaps(missing: np.ndarray) -> list[tuple[int, int]]:
@@ -157,7 +159,7 @@ def fill(model, cfg: Config, rec: Recording, device="cpu") -> tuple[np.ndarray, 
             preds.append(predict_from(model, cfg, rec, before[0], times, 1, device).mean)
             weights.append(rec.times[b] - times if b < rec.n_frames else np.ones_like(times))
         if after:
-            preds.append(_predict_backward(model, cfg, rec, after[0], times, device))
+            preds.append(predict_from(model, cfg, rec, after[0], times, 1, device).mean)  # backward in time
             weights.append(times - rec.times[a - 1] if a > 0 else np.ones_like(times))
         if not preds:
             raise KinecastError(rec.source, f"cannot fill frames {a}..{b - 1}: no {k} present frames on either side")
@@ -166,12 +168,3 @@ def fill(model, cfg: Config, rec: Recording, device="cpu") -> tuple[np.ndarray, 
         out[a:b] = sum(wi[:, None, None, None] * p for wi, p in zip(w, preds))
         filled[a:b] = True
     return out, filled
-
-
-def _predict_backward(model, cfg, rec, ctx_start, times, device):
-    """Integrate backward in time from the k frames at ``ctx_start`` to earlier ``times``."""
-    order = np.argsort(-times)  # decreasing times from the context
-    pred = predict_from(model, cfg, rec, ctx_start, times[order], 1, device).mean
-    out = np.empty_like(pred)
-    out[order] = pred
-    return out

@@ -23,7 +23,7 @@ from pathlib import Path
 
 import torch
 from safetensors import SafetensorError, safe_open
-from safetensors.torch import load_file, save_file
+from safetensors.torch import save_file
 
 from .. import config as cfgmod
 from ..errors import KinecastError
@@ -81,9 +81,9 @@ def load_tensors(path: Path) -> tuple[dict[str, torch.Tensor], dict]:
     if not path.is_file():
         raise KinecastError(path, "missing")
     try:
-        tensors = load_file(str(path))
-        with safe_open(str(path), framework="pt") as fh:
+        with safe_open(str(path), framework="pt") as fh:  # one pass: header and tensors
             header = fh.metadata() or {}
+            tensors = {key: fh.get_tensor(key) for key in fh.keys()}
         meta = json.loads(header.get(_META_KEY, "{}"))
     except (SafetensorError, OSError, ValueError, RuntimeError) as exc:
         reason = " ".join(str(exc).split())

@@ -7,7 +7,6 @@ all be present; dropped frames later in a window are masked out of the likelihoo
 
 from __future__ import annotations
 
-import re
 import sys
 from dataclasses import dataclass
 from pathlib import Path
@@ -18,13 +17,11 @@ import torch
 from ..config import Config
 from ..errors import KinecastError
 from ..frames import Recording, read_recording
+from ..frames.images import IMAGE_SUFFIXES, natural_key
 from ..score import tracks
 
-IMAGE_SUFFIXES = {".png", ".jpg", ".jpeg", ".bmp", ".tif", ".tiff"}
-
-
 def _natural_key(path: Path):
-    return [int(p) if p.isdigit() else p.lower() for p in re.split(r"(\d+)", path.name)]
+    return natural_key(path.name)
 
 
 def expand_paths(paths: list[str | Path]) -> list[Path]:
