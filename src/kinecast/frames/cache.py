@@ -26,7 +26,7 @@ from ..fileio import write_with
 CACHE_ENV = "KINECAST_CACHE_DIR"
 DEFAULT_CACHE_DIR = "~/.cache/kinecast"
 # Bump when the entry layout or the preprocessing changes, so old entries are never reused.
-CACHE_FORMAT = 1
+CACHE_FORMAT = 2  # 2: videos shrunk by ffmpeg (16-bit area averages)
 PIXEL_FIELDS = ("size", "color", "roi")
 
 

@@ -51,7 +51,7 @@ def content_problems(rec: Recording, info: dict) -> list[str]:
         if spread < NEAR_CONSTANT_STD:
             notes.append(f"frames nearly constant: the largest per-pixel standard deviation over time "
                          f"is {spread:.2g} (of 1); nothing seems to move")
-    if info.get("bit_depth") == 16 and 0 < info.get("raw_max", 0) <= TWELVE_BIT_MAX:
+    if info.get("bit_depth") == 16 and 0 < (info.get("raw_max") or 0) <= TWELVE_BIT_MAX:
         notes.append(f"16-bit files but no value above {int(info['raw_max'])}: the camera may write "
                      "12 bits or fewer, so frames look dark after dividing by 65535")
     return notes

@@ -4,6 +4,8 @@ Every reader hands its raw frames, one at a time, to a :class:`FrameSink`. The s
 frames of a recording agree in size, channel layout and sample type, normalises intensities by the
 sample type's range, crops the region of interest, converts to grey or RGB, and resizes to the model
 size. Only the small model frames are kept, so a long full-resolution video never sits in memory.
+A decoder that does the crop, conversion and resize itself (ffmpeg, for videos) hands over frames
+already at the model size, together with the facts of the source frame they came from.
 """
 
 from __future__ import annotations
@@ -87,13 +89,23 @@ def to_unit(raw: np.ndarray, fmt: SampleFormat, where: str) -> np.ndarray:
     return np.clip(unit, 0.0, 1.0)
 
 
-def check_roi(roi: list, width: int, height: int, where: str) -> tuple[int, int, int, int] | None:
-    """The region of interest ``(x, y, w, h)`` in source pixels, checked against the frame size."""
+def roi_numbers(roi: list, where: str) -> tuple[int, int, int, int] | None:
+    """``data.roi`` as four whole numbers ``(x, y, w, h)`` (None when empty), not yet checked
+    against a frame size."""
     if not roi:
         return None
     if len(roi) != 4 or any(float(v) != int(v) for v in roi):
         raise KinecastError(where, f"data.roi {roi} must be four whole numbers [x, y, width, height]")
     x, y, w, h = (int(v) for v in roi)
+    return x, y, w, h
+
+
+def check_roi(roi: list, width: int, height: int, where: str) -> tuple[int, int, int, int] | None:
+    """The region of interest ``(x, y, w, h)`` in source pixels, checked against the frame size."""
+    numbers = roi_numbers(roi, where)
+    if numbers is None:
+        return None
+    x, y, w, h = numbers
     if w < 1 or h < 1 or x < 0 or y < 0 or x + w > width or y + h > height:
         raise KinecastError(where, f"data.roi {[x, y, w, h]} lies outside the {width}x{height} frame")
     return x, y, w, h
@@ -125,7 +137,8 @@ class FrameSink:
     """Collects a recording's frames at model resolution, checking that they agree.
 
     Readers call :meth:`add` once per decoded frame (and :meth:`restart` before decoding again with
-    another decoder). :meth:`info` describes the source after the last frame.
+    another decoder); a decoder that shrinks frames itself calls :meth:`add_shrunk` instead.
+    :meth:`info` describes the source after the last frame.
     """
 
     def __init__(self, cfg: DataConfig, label: str):
@@ -158,6 +171,33 @@ class FrameSink:
         if fmt.dtype in ("uint8", "uint16", "bool"):
             self.raw_max = max(self.raw_max, float(raw.max()))
         self.frames.append(to_model(unit, self.roi, self.cfg.size, self.cfg.color))
+        self.names.append(name)
+        self._bar.update(1)
+
+    def add_shrunk(self, small: np.ndarray, source: SampleFormat, name: str, where: str) -> None:
+        """Keep one frame that the decoder itself already cropped, converted and resized.
+
+        Parameters
+        ----------
+        small : ndarray
+            (size, size) grey or (size, size, 3) RGB unsigned integers (8 or 16 bits per sample),
+            made from a source frame by cropping ``data.roi``, converting to ``data.color`` and
+            area averaging to ``data.size``. It is normalised by its own sample type's full scale.
+        source : SampleFormat
+            The decoded frame it was made from. ``data.roi`` is checked against its size, with the
+            same message as :meth:`add`, and :meth:`info` reports it; ``raw_max`` is reported as
+            None, since the full-resolution samples never reach the sink.
+        name, where : str
+            As for :meth:`add`.
+        """
+        size = self.cfg.size
+        if small.shape[:2] != (size, size):
+            raise ValueError(f"{where}: expected a {size}x{size} frame, got shape {small.shape}")
+        if self.fmt is None:
+            self.fmt, self.first, self.raw_max = source, name, None
+            self.roi = check_roi(self.cfg.roi, source.width, source.height, where)
+        unit = to_unit(small, sample_format(small, where), where)
+        self.frames.append(to_model(unit, None, size, self.cfg.color))
         self.names.append(name)
         self._bar.update(1)
 

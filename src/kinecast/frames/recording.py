@@ -27,7 +27,7 @@ class Recording:
         (width, height), ``source_channels``, ``names`` (file name or frame index per slot, '' for
         missing slots), ``time_source`` (csv, fps, video, default).
         The readers in :mod:`kinecast.frames` also set (all JSON-friendly): ``dtype`` (sample type),
-        ``formats``, ``decoder``, ``raw_max`` (largest raw integer sample), ``roi`` (as applied),
+        ``formats``, ``decoder``, ``raw_max`` (largest raw integer sample; None for a video shrunk by ffmpeg), ``roi`` (as applied),
         ``source_rate`` and ``codec`` (videos: container frame rate or None), ``times_file`` (the timestamps CSV, when used),
         ``n_read`` (real frames), ``drops`` (one dict per gap: ``after`` name, ``slot`` index,
         ``time``, ``count``), ``problems`` (one-line notes) and ``cache`` (hit, written, off, or why

@@ -3,21 +3,35 @@
 The first choice is the ffmpeg binary that ships with imageio-ffmpeg (frames stream through a pipe,
 one at a time); OpenCV's ``VideoCapture`` is the fallback when ffmpeg cannot read the file. The
 frame rate comes from the container.
+
+ffmpeg also does the preprocessing itself, in C: it crops ``data.roi``, converts to grey or RGB and
+area-averages down to ``data.size`` (a video filter), and writes 16-bit samples so the averages are
+not rounded to 1/255. Those frames cross the pipe at model size, and Python only normalises them.
+Beside that shrinking ffmpeg, started at the same time, a plain one reports the frame size as the
+frame-by-frame decode sees it (after any rotation the container asks for). ``data.roi`` is checked
+against that size; when it does not fit, or the region is smaller than the model size (an
+enlargement), the frames come from the plain one and go through :class:`FrameSink` as for any other
+source, which also reports a bad region at the first frame with the usual message.
 """
 
 from __future__ import annotations
 
+import contextlib
+import logging
 import math
 import os
+import threading
+from concurrent.futures import Future, ThreadPoolExecutor
 from pathlib import Path
 from typing import Callable, Iterator
 
 import cv2
 import numpy as np
 
+from ..config import DataConfig
 from ..errors import KinecastError
 from .boundary import one_line, quiet_opencv
-from .preprocess import FrameSink
+from .preprocess import FrameSink, SampleFormat, check_roi, roi_numbers
 
 VIDEO_SUFFIXES = (".mp4", ".avi", ".mov", ".mkv")
 # OpenCV reads this variable for the log level of its bundled ffmpeg; -8 is ffmpeg's AV_LOG_QUIET.
@@ -33,30 +47,143 @@ def _ffmpeg_reason(exc: Exception, path: Path) -> str:
     return reason.replace(str(path), "").strip(" :") or reason
 
 
-def open_ffmpeg(path: Path) -> Opened:
-    """Start ffmpeg on ``path``; return its facts and an iterator of (H, W, 3) uint8 RGB frames."""
+# Scaler flags for the in-ffmpeg shrink: area averaging (a box filter, as cv2.INTER_AREA), with
+# chroma taken and interpolated at full resolution, as the frame-by-frame rgb24 decode does.
+SHRINK_FLAGS = "area+full_chroma_int+full_chroma_inp"
+# Pixel format and channels ffmpeg writes at model size: 16 bits per sample (little-endian), BT.601
+# luma for grey. More than 8 bits, so an average is not rounded to 1/255.
+SHRINK_PIX_FMT = {"grey": ("gray16le", 1), "rgb": ("rgb48le", 3)}
+_LE16 = np.dtype("<u2")
+# What the frame-by-frame decode reads (rgb24), so what a shrunk source frame is reported as.
+_DECODED_CHANNELS, _DECODED_DTYPE, _DECODED_BITS = 3, "uint8", 8
+# imageio-ffmpeg logs a warning whenever the frames it reads differ in size from the stored ones
+# (a shrunk read, or a rotated video); failures reach the user as our one-line errors instead.
+_IMAGEIO_FFMPEG_LOGGER = "imageio_ffmpeg"
+
+Started = tuple[dict, Iterator[bytes]]
+
+
+@contextlib.contextmanager
+def _quiet_imageio_ffmpeg() -> Iterator[None]:
+    """Hide imageio-ffmpeg's warnings while ffmpeg starts."""
+    log = logging.getLogger(_IMAGEIO_FFMPEG_LOGGER)
+    old = log.level
+    log.setLevel(logging.ERROR)
+    try:
+        yield
+    finally:
+        log.setLevel(old)
+
+
+def _start(path: Path, pix_fmt: str, bits: int, vf: str | None = None) -> Started:
+    """Start ffmpeg writing ``pix_fmt`` frames (through filter ``vf``); return its facts and frames."""
     import imageio_ffmpeg
 
-    gen = imageio_ffmpeg.read_frames(str(path), pix_fmt="rgb24")
+    gen = imageio_ffmpeg.read_frames(str(path), pix_fmt=pix_fmt, bits_per_pixel=bits,
+                                     output_params=["-vf", vf] if vf else None)
     try:
-        meta = next(gen)
+        return next(gen), gen
     except Exception as exc:
         raise RuntimeError(_ffmpeg_reason(exc, path)) from None
+
+
+def _arrays(gen: Iterator[bytes], shape: tuple[int, ...], dtype: np.dtype) -> Iterator[np.ndarray]:
+    """Each frame of ``gen`` as an array of ``shape`` in native byte order; ffmpeg stops at the end."""
+    native = dtype.newbyteorder("=")
+    try:
+        for buf in gen:
+            yield np.frombuffer(buf, dtype).reshape(shape).astype(native, copy=False)
+    finally:
+        gen.close()
+
+
+def shrink_filter(roi: tuple[int, int, int, int] | None, size: int, color: str) -> str:
+    """The ffmpeg video filter that crops ``roi`` (x, y, w, h) and area-averages to size x size.
+
+    ``exact=1`` crops at odd offsets too, instead of rounding to the chroma grid. For ``rgb`` the
+    crop is made on full-resolution RGB (rgb24, as the frame-by-frame decode): chroma stored at half
+    resolution cannot be cut at an odd offset. Grey is luma, which is stored at full resolution.
+
+    >>> shrink_filter((7, 4, 40, 32), 16, "rgb")
+    'format=rgb24,crop=40:32:7:4:exact=1,scale=16:16:flags=area+full_chroma_int+full_chroma_inp'
+    """
+    crop = ""
+    if roi:
+        crop = ("format=rgb24," if color == "rgb" else "") + "crop={2}:{3}:{0}:{1}:exact=1,".format(*roi)
+    return f"{crop}scale={size}:{size}:flags={SHRINK_FLAGS}"
+
+
+def _start_shrinking(pool: ThreadPoolExecutor, path: Path, cfg: DataConfig | None) -> Future | None:
+    """Start the shrinking ffmpeg in ``pool``; None without data settings, or when ``data.roi`` is
+    not even four whole numbers (the frame-by-frame path reports that)."""
+    if cfg is None:
+        return None
+    try:
+        roi = roi_numbers(cfg.roi, str(path))
+    except (KinecastError, ValueError, OverflowError):
+        return None
+    pix_fmt, channels = SHRINK_PIX_FMT[cfg.color]
+    return pool.submit(_start, path, pix_fmt, 16 * channels, shrink_filter(roi, cfg.size, cfg.color))
+
+
+def _result(pending: Future | None) -> Started | None:
+    """The shrinking ffmpeg's facts and frames, or None when it was not started or failed to."""
+    if pending is None:
+        return None
+    try:
+        return pending.result()
+    except Exception:  # a file the plain ffmpeg reads but the shrinking one does not: read it plainly
+        return None
+
+
+def _close(started: Started | None) -> None:
+    """Stop an ffmpeg whose frames are not wanted."""
+    if started is not None:
+        started[1].close()
+
+
+def _usable(started: Started, cfg: DataConfig, width: int, height: int) -> bool:
+    """Whether the shrunk frames may stand for decoded frames of ``width`` x ``height``.
+
+    ``data.roi`` must fit those, and the region must be at least ``data.size`` both ways: OpenCV's
+    area resize turns bilinear for an enlargement, so that is left to it.
+    """
+    try:
+        region = check_roi(cfg.roi, width, height, "") or (0, 0, width, height)
+    except (KinecastError, ValueError, OverflowError):
+        return False
+    return min(region[2], region[3]) >= cfg.size and tuple(started[0]["size"]) == (cfg.size, cfg.size)
+
+
+def open_ffmpeg(path: Path, cfg: DataConfig | None = None) -> Opened:
+    """Start ffmpeg on ``path``; return its facts and an iterator of frames.
+
+    Without ``cfg``: (H, W, 3) uint8 RGB frames at the source size. With ``cfg``, when the region
+    fits and shrinks: frames already cropped, converted and area-averaged by ffmpeg to (size, size)
+    grey or (size, size, 3) RGB uint16, and ``facts["shrunk_from"]`` describes the decoded frame
+    they came from, for :meth:`FrameSink.add_shrunk`.
+    """
+    with _quiet_imageio_ffmpeg(), ThreadPoolExecutor(max_workers=1) as pool:
+        pending = _start_shrinking(pool, path, cfg)          # both ffmpeg start at the same time
+        try:
+            meta, gen = _start(path, "rgb24", 24)
+        except RuntimeError:
+            _close(_result(pending))
+            raise
+        shrunk = _result(pending)
     width, height = meta["size"]
     fps = float(meta.get("fps") or 0.0)
     facts = {"decoder": "ffmpeg", "source_rate": fps if fps > 0 and math.isfinite(fps) else None,
              "expected": int(round(fps * float(meta.get("duration") or 0.0))) or None,
              "codec": str(meta.get("codec", "")).strip(","),
              "grey_source": str(meta.get("pix_fmt", "")).startswith("gray")}
-
-    def frames() -> Iterator[np.ndarray]:
-        try:
-            for buf in gen:
-                yield np.frombuffer(buf, np.uint8).reshape(height, width, 3)
-        finally:
-            gen.close()
-
-    return facts, frames()
+    if shrunk is None or not _usable(shrunk, cfg, width, height):
+        _close(shrunk)
+        return facts, _arrays(gen, (height, width, 3), np.dtype(np.uint8))
+    threading.Thread(target=gen.close).start()      # the plain ffmpeg stops while frames arrive
+    size, channels = cfg.size, SHRINK_PIX_FMT[cfg.color][1]
+    facts["shrunk_from"] = SampleFormat(width, height, _DECODED_CHANNELS, _DECODED_DTYPE, _DECODED_BITS)
+    return facts, _arrays(shrunk[1], (size, size) if channels == 1 else (size, size, channels), _LE16)
 
 
 def open_opencv(path: Path) -> Opened:
@@ -93,6 +220,11 @@ DECODERS: tuple[tuple[str, Callable[[Path], Opened]], ...] = (("ffmpeg", open_ff
                                                               ("opencv", open_opencv))
 
 
+def _open(opener: Callable[..., Opened], path: Path, cfg: DataConfig) -> Opened:
+    """Start one decoder; the ffmpeg one is also given the data settings, to shrink frames itself."""
+    return opener(path, cfg) if opener is open_ffmpeg else opener(path)
+
+
 def decode_video(path: Path, sink: FrameSink) -> dict:
     """Feed every frame of a video to ``sink`` (trying each decoder in turn); return its facts.
 
@@ -106,11 +238,15 @@ def decode_video(path: Path, sink: FrameSink) -> dict:
     for name, opener in DECODERS:
         frames = None
         try:
-            facts, frames = opener(path)
+            facts, frames = _open(opener, path, sink.cfg)
             opened = True
             sink.restart(total=facts.pop("expected"))
+            source = facts.pop("shrunk_from", None)
             for i, raw in enumerate(frames):
-                sink.add(raw, str(i), f"{path} (frame {i})")
+                if source is None:
+                    sink.add(raw, str(i), f"{path} (frame {i})")
+                else:
+                    sink.add_shrunk(raw, source, str(i), f"{path} (frame {i})")
         except KinecastError:
             raise
         except Exception as exc:  # a decoder failing on bad bytes: try the next one
