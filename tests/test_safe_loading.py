@@ -199,3 +199,23 @@ def test_a_foreign_safetensors_file_is_not_taken_for_a_checkpoint(world, tmp_pat
     err = capsys.readouterr().err.splitlines()
     assert "not a kinecast resume checkpoint" in err[0] and ck.RESUME in err[0]
     assert "do not match the run's config.toml" in err[-1] and ck.WEIGHTS in err[-1]
+
+
+def test_weights_of_an_older_network_layout_are_refused(world, tmp_path, capsys):
+    """Same tensor names and shapes, but written for another layout (e.g. the ELU networks before
+    layout 2): refused by name instead of silently computing something else."""
+    rig, run = world
+    copy = Path(shutil.copytree(run, tmp_path / "run"))
+    tensors, meta = ck.load_tensors(copy / ck.WEIGHTS)
+    from safetensors.torch import save_file
+
+    meta.pop("layout")  # what files written before the layout key looked like (layout 1)
+    save_file({k: v.contiguous() for k, v in tensors.items()}, str(copy / ck.WEIGHTS),
+              metadata={"kinecast": json.dumps(meta)})
+    with pytest.raises(KinecastError, match="layout 1"):
+        load_run(copy)
+    capsys.readouterr()
+    assert main(["forecast", str(copy), str(rig / "trial_001"), "--out", str(tmp_path / "c.mp4")]) == 2
+    err = capsys.readouterr().err.splitlines()
+    assert len(err) == 1 and "train the run again" in err[0], err
+    assert not (tmp_path / "c.mp4").exists()

@@ -20,6 +20,10 @@ OUT_GAIN = 0.1  # the decoder's last layer starts small: the first prediction is
 # Encoders start with small posterior variances (std e^-2 ≈ 0.14): unit-variance noise on the latent
 # state at the start drowns the signal and pushes the decoder towards the mean frame.
 INIT_LOGVAR = -4.0
+# Hidden activation of every conv stage: SiLU (x·sigmoid(x)), smooth like ELU. Measured on this
+# torch build's CPU kernels: ELU on a [160, 8, 64, 64] feature map took 68-119 ms, SiLU 2-5 ms, and
+# ELU was a quarter of a 64 px training step.
+Activation = nn.SiLU
 
 
 def n_halvings(size: int) -> int:
@@ -56,7 +60,7 @@ class GaussEncoder(nn.Module):
         layers: list[nn.Module] = []
         c_in, side = in_channels, size
         for c_out in _encoder_channels(base, n_halvings(size)):
-            layers += [nn.Conv2d(c_in, c_out, 3, stride=2, padding=1), nn.ELU()]
+            layers += [nn.Conv2d(c_in, c_out, 3, stride=2, padding=1), Activation()]
             c_in, side = c_out, (side + 1) // 2
         self.trunk = nn.Sequential(*layers)
         self.head = nn.Linear(c_in * side * side, 2 * out_dim)
@@ -105,7 +109,7 @@ class Decoder(nn.Module):
         self.fc = nn.Linear(q, self.c0 * BOTTOM * BOTTOM)
         layers: list[nn.Module] = []
         for c_in, c_out in zip(chans[:-1], chans[1:]):
-            layers += [nn.ConvTranspose2d(c_in, c_out, 4, stride=2, padding=1), nn.ELU()]
+            layers += [nn.ConvTranspose2d(c_in, c_out, 4, stride=2, padding=1), Activation()]
         self.up = nn.Sequential(*layers)
         self.out = nn.Conv2d(chans[-1], channels, 3, padding=1)
         with torch.no_grad():
@@ -115,7 +119,7 @@ class Decoder(nn.Module):
 
     def forward(self, s: torch.Tensor) -> torch.Tensor:
         lead = s.shape[:-1]
-        h = F.elu(self.fc(s.reshape(-1, s.shape[-1]))).view(-1, self.c0, BOTTOM, BOTTOM)
+        h = F.silu(self.fc(s.reshape(-1, s.shape[-1]))).view(-1, self.c0, BOTTOM, BOTTOM)
         h = self.out(self.up(h.contiguous(memory_format=torch.channels_last)))
         if self.native != self.size:  # sizes that are not BOTTOM·2^k
             h = F.interpolate(h, size=(self.size, self.size), mode="bilinear", align_corners=False)

@@ -40,11 +40,16 @@ _META_KEY = "kinecast"
 _SUM_KEY = "kinecast_sha256"
 RUN_FILES = (CONFIG, WEIGHTS, RESUME, LOG, SUMMARY, BACKGROUND, LOSS_PLOT)
 PAUSE_ENV = "KINECAST_TEST_CHECKPOINT_PAUSE"  # test hook, see _test_pause
+# Version of the networks' layout, written with every checkpoint. Bump it when a change makes old
+# weights compute something else although their tensor names and shapes still match.
+# 1: ELU activations (files without the key); 2: SiLU activations (model/convnets.py).
+MODEL_LAYOUT = 2
 
 
 def save_tensors(path: Path, tensors: dict[str, torch.Tensor], meta: dict) -> None:
     """Atomically write tensors (made contiguous, on the CPU) plus a JSON metadata blob."""
     flat = {k: v.detach().to("cpu").contiguous() for k, v in tensors.items()}
+    meta = {"layout": MODEL_LAYOUT, **meta}
 
     def write(tmp: Path) -> None:
         save_file(flat, str(tmp), metadata={_META_KEY: json.dumps(meta), _SUM_KEY: tensors_digest(flat)})
@@ -168,14 +173,15 @@ def load_run(run: str | Path, device: str | torch.device = "cpu"):
     run = Path(run)
     check_run_folder(run)
     cfg = cfgmod.load(run / CONFIG)
-    tensors, _ = load_tensors(run / WEIGHTS)
+    tensors, meta = load_tensors(run / WEIGHTS)
     model = build_model(cfg, channels_of(cfg))
-    restore_model(model, tensors, run / WEIGHTS)
+    restore_model(model, tensors, meta, run / WEIGHTS)
     return model.to(device).eval(), cfg
 
 
-def restore_model(model: torch.nn.Module, tensors: dict[str, torch.Tensor], path: Path) -> None:
-    """Load ``tensors`` into ``model``; a mismatch with the config is one clear line naming ``path``."""
+def restore_model(model: torch.nn.Module, tensors: dict[str, torch.Tensor], meta: dict, path: Path) -> None:
+    """Load ``tensors`` into ``model``; a mismatch with the config or with this version's network
+    layout (``meta["layout"]``, see :data:`MODEL_LAYOUT`) is one clear line naming ``path``."""
     if "background" in tensors:
         model.set_background(tensors["background"])
     problem = weights_mismatch(tensors, model.state_dict())
@@ -186,6 +192,10 @@ def restore_model(model: torch.nn.Module, tensors: dict[str, torch.Tensor], path
         problem = " ".join(str(exc).split())
     if problem is not None:
         raise KinecastError(path, f"weights do not match the run's config.toml ({problem})")
+    layout = meta.get("layout", 1)
+    if layout != MODEL_LAYOUT:
+        raise KinecastError(path, f"weights were written for network layout {layout}; this kinecast "
+                                  f"builds layout {MODEL_LAYOUT}: train the run again")
 
 
 # what a resume checkpoint's metadata must hold (written by train.loop.fit)

@@ -99,9 +99,11 @@ def fit(paths, out, cfg: cfgmod.Config | None = None, *, resume: bool = False, o
         The summary also written to ``summary.json``.
     """
     run = Path(out)
+    resumed = None
     if resume:
         ck.check_run_folder(run, need_resume=True)
-        paths = paths or ck.load_resume(run)[1]["paths"]
+        resumed = ck.load_resume(run)
+        paths = paths or resumed[1]["paths"]
         cfg = cfg or cfgmod.load(run / ck.CONFIG)
     cfg = cfgmod.from_dict(cfgmod.to_dict(cfg or cfgmod.Config()))  # a private, validated copy
     paths = expand_paths(paths)
@@ -140,9 +142,9 @@ def fit(paths, out, cfg: cfgmod.Config | None = None, *, resume: bool = False, o
                      cfg.train.patience)
     step, elapsed_before, faults, lr_scale, rows = 0, 0.0, 0, 1.0, []
     if resume:
-        tensors, meta = ck.load_resume(run)
+        tensors, meta = resumed
         ck.restore_model(model, {k_: v for k_, v in tensors.items() if not k_.startswith(("opt.", "rng."))},
-                         run / ck.RESUME)
+                         meta, run / ck.RESUME)
         ck.restore_optimizer(opt, tensors, meta["optimizer"])
         torch.set_rng_state(tensors["rng.torch"])
         sampler.rng.bit_generator.state = meta["sampler_rng"]
