@@ -33,3 +33,28 @@ def test_subset_nll_is_unbiased_and_cheaper_windows_keep_shapes():
     assert abs(draws.mean() - full) <= 4 * se + 1e-7
     assert draws.std() > 0  # the subset really varies
     assert sub["recon"].shape == (2, 4, 1, 32, 32)
+
+
+def test_agreement_on_a_frame_subset_is_unbiased_and_exact_when_all_fit():
+    # same reference as above: simple random sampling without replacement is unbiased for the total
+    torch.manual_seed(1)
+    cfg = Config()
+    cfg.data.size = 32
+    cfg.model.enc_channels = cfg.model.dec_channels = 8
+    cfg.model.hidden = 16
+    cfg.model.agreement_weight = 1.0
+    cfg.solver.time_scale = 3.0
+    model = build_model(cfg, 1).eval()
+    frames = torch.rand(2, 12, 1, 32, 32)
+    t = torch.arange(12) * 0.1
+    mask = torch.ones(2, 12, dtype=torch.bool)
+    mask[1, 5] = False  # a dropped frame stays out of both
+    with torch.no_grad():
+        full = model(frames, t, 100, mask=mask, sample=False)["agreement"]
+        same = model(frames, t, 100, mask=mask, sample=False, agreement_frames=11)["agreement"]
+        draws = torch.stack([model(frames, t, 100, mask=mask, sample=False, agreement_frames=3)["agreement"]
+                             for _ in range(400)])
+    torch.testing.assert_close(same, full)      # 11 later frames: all of them, nothing drawn
+    se = draws.std() / 400 ** 0.5
+    assert draws.std() > 0
+    assert abs(draws.mean() - full) <= 4 * se + 1e-7

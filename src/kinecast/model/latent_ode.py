@@ -156,7 +156,8 @@ class LatentODE(nn.Module):
 
     # ------------------------------------------------------------------------------ ELBO
     def forward(self, frames: torch.Tensor, t: torch.Tensor, n_total_frames: int, beta: float = 1.0,
-                mask: torch.Tensor | None = None, sample: bool = True, decode_frames: int = 0) -> dict:
+                mask: torch.Tensor | None = None, sample: bool = True, decode_frames: int = 0,
+                agreement_frames: int = 0) -> dict:
         """Negative ELBO of a batch of windows, normalised per observed pixel, and its terms.
 
         Parameters
@@ -178,6 +179,10 @@ class LatentODE(nn.Module):
             When 0 < decode_frames < T, decode and score only that many frames drawn at random from
             the window (``train.decode_frames``); ``nll`` stays an unbiased estimate and ``recon``
             covers the drawn frames only.
+        agreement_frames : int
+            When 0 < agreement_frames < the frames after the first, the agreement term reads only
+            that many of them, drawn at random (``train.agreement_frames``; an unbiased estimate
+            that bounds the position encoder's memory on long windows).
 
         Returns
         -------
@@ -237,13 +242,19 @@ class LatentODE(nn.Module):
 
         agreement = frames.new_zeros(())
         if self.cfg.agreement_weight > 0 and s.shape[1] > 1:
-            later = obs[:, 1:]
+            later, x_later, s_later = obs[:, 1:], frames[:, 1:], s[:, 1:]
+            ag_scale = scale
+            if 0 < agreement_frames < later.shape[1]:
+                pick = torch.randperm(later.shape[1], device=frames.device)[:agreement_frames]
+                n_later = later.sum()
+                later, x_later, s_later = later[:, pick], x_later[:, pick], s_later[:, pick]
+                ag_scale = scale * n_later / later.sum().clamp_min(1)
             if later.any():
                 # both sides learn: the trajectory follows the encoder's reading of each frame and
                 # the encoder learns to read every frame, not only first ones (measured on one clip:
                 # a stop-gradient on the encoder side made weights >= 1 collapse to the mean frame)
-                enc_mean, _ = self.pos_enc(frames[:, 1:][later])
-                agreement = scale * 0.5 * ((enc_mean - s[:, 1:][later]) ** 2).sum() / B / norm
+                enc_mean, _ = self.pos_enc(x_later[later])
+                agreement = ag_scale * 0.5 * ((enc_mean - s_later[later]) ** 2).sum() / B / norm
         loss = nll + beta * (kl_s0 + kl_v0 + kl_w) + self.cfg.agreement_weight * agreement
         terms = {"nll": nll, "kl_s0": kl_s0, "kl_v0": kl_v0, "kl_w": kl_w, "agreement": agreement,
                  "mse": mse, "recon": recon}

@@ -207,7 +207,8 @@ def fit(paths, out, cfg: cfgmod.Config | None = None, *, resume: bool = False, o
         batch = sampler.draw(cfg.train.batch, cur.window)
         t = to_model_time(batch.times, cfg).to(ctx.device)
         terms = net(batch.frames.to(ctx.device), t, n_total_frames=total_frames, beta=beta,
-                    mask=batch.mask.to(ctx.device), decode_frames=cfg.train.decode_frames)
+                    mask=batch.mask.to(ctx.device), decode_frames=cfg.train.decode_frames,
+                    agreement_frames=cfg.train.agreement_frames)
         loss = terms["loss"]
         if fault_hook is not None and fault_hook(step):
             loss = loss * float("nan")
