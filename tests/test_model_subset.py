@@ -11,17 +11,21 @@ from kinecast.config import Config
 from kinecast.model import build_model
 
 
-def test_subset_nll_is_unbiased_and_cheaper_windows_keep_shapes():
-    torch.manual_seed(0)
+def _tiny(seed: int, agreement_weight: float):
+    """A small model, 2 random 12-frame windows, their times and an all-present mask."""
+    torch.manual_seed(seed)
     cfg = Config()
     cfg.data.size = 32
     cfg.model.enc_channels = cfg.model.dec_channels = 8
     cfg.model.hidden = 16
+    cfg.model.agreement_weight = agreement_weight
     cfg.solver.time_scale = 3.0
-    model = build_model(cfg, 1).eval()
-    frames = torch.rand(2, 12, 1, 32, 32)
-    t = torch.arange(12) * 0.1
-    mask = torch.ones(2, 12, dtype=torch.bool)
+    return (build_model(cfg, 1).eval(), torch.rand(2, 12, 1, 32, 32), torch.arange(12) * 0.1,
+            torch.ones(2, 12, dtype=torch.bool))
+
+
+def test_subset_nll_is_unbiased_and_cheaper_windows_keep_shapes():
+    model, frames, t, mask = _tiny(0, 0.0)
     mask[0, 7] = False  # a dropped frame must stay out of both estimates
     with torch.no_grad():
         full = model(frames, t, 100, mask=mask, sample=False)["nll"]
@@ -37,17 +41,7 @@ def test_subset_nll_is_unbiased_and_cheaper_windows_keep_shapes():
 
 def test_agreement_on_a_frame_subset_is_unbiased_and_exact_when_all_fit():
     # same reference as above: simple random sampling without replacement is unbiased for the total
-    torch.manual_seed(1)
-    cfg = Config()
-    cfg.data.size = 32
-    cfg.model.enc_channels = cfg.model.dec_channels = 8
-    cfg.model.hidden = 16
-    cfg.model.agreement_weight = 1.0
-    cfg.solver.time_scale = 3.0
-    model = build_model(cfg, 1).eval()
-    frames = torch.rand(2, 12, 1, 32, 32)
-    t = torch.arange(12) * 0.1
-    mask = torch.ones(2, 12, dtype=torch.bool)
+    model, frames, t, mask = _tiny(1, 1.0)
     mask[1, 5] = False  # a dropped frame stays out of both
     with torch.no_grad():
         full = model(frames, t, 100, mask=mask, sample=False)["agreement"]
