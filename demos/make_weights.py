@@ -46,9 +46,10 @@ def make(rig: str, budget: str, work: Path) -> dict:
 if __name__ == "__main__":
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--budget", default="5m")
+    ap.add_argument("--rigs", default="pendulum,spring", help="comma-separated rigs to (re)make")
     args = ap.parse_args()
     with tempfile.TemporaryDirectory() as tmp:
-        for rig in ("pendulum", "spring"):
+        for rig in args.rigs.split(","):
             scores = make(rig, args.budget, Path(tmp))
             print(f"\n{rig}: held-out trial, 87 frames forecast from 3")
             for method, s in scores["methods"].items():
