@@ -240,7 +240,7 @@ def test_avi_from_opencv_and_the_opencv_fallback(tmp_path, monkeypatch):
         assert np.abs(got - expected(img, 255)).mean() < 0.02       # MJPEG: lossy (our tolerance)
     np.testing.assert_allclose(via_ffmpeg.times, np.arange(8) / 15.0)
 
-    def broken(_path):
+    def broken(_path, _cfg=None):
         raise RuntimeError("simulated ffmpeg failure")
 
     monkeypatch.setattr(video_mod, "DECODERS", (("ffmpeg", broken), ("opencv", video_mod.open_opencv)))
@@ -285,7 +285,7 @@ def test_second_read_is_served_from_the_cache(tmp_path, monkeypatch):
 
     calls = []
 
-    def fail(_path):
+    def fail(_path, _cfg=None):
         calls.append(_path)
         raise RuntimeError("decoder switched off by the test")
 

@@ -88,7 +88,7 @@ def no_full_frames(monkeypatch):
 
 def frame_by_frame_decoders(monkeypatch):
     """Make read_recording use the frame-by-frame ffmpeg path (the opener called without settings)."""
-    monkeypatch.setattr(video_mod, "DECODERS", (("ffmpeg", lambda p: video_mod.open_ffmpeg(p)),
+    monkeypatch.setattr(video_mod, "DECODERS", (("ffmpeg", lambda p, _cfg=None: video_mod.open_ffmpeg(p)),
                                                 ("opencv", video_mod.open_opencv)))
 
 

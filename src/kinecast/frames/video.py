@@ -186,8 +186,9 @@ def open_ffmpeg(path: Path, cfg: DataConfig | None = None) -> Opened:
     return facts, _arrays(shrunk[1], (size, size) if channels == 1 else (size, size, channels), _LE16)
 
 
-def open_opencv(path: Path) -> Opened:
-    """Open ``path`` with OpenCV; return its facts and an iterator of RGB frames."""
+def open_opencv(path: Path, cfg: DataConfig | None = None) -> Opened:
+    """Open ``path`` with OpenCV; return its facts and an iterator of RGB frames at the source size
+    (``cfg`` is not used: the sink shrinks these frames)."""
     os.environ.setdefault(_OPENCV_FFMPEG_LOG, _FFMPEG_QUIET)    # a user's own setting wins
     with quiet_opencv():
         cap = cv2.VideoCapture(str(path))
@@ -216,13 +217,9 @@ def open_opencv(path: Path) -> Opened:
     return facts, frames()
 
 
-DECODERS: tuple[tuple[str, Callable[[Path], Opened]], ...] = (("ffmpeg", open_ffmpeg),
-                                                              ("opencv", open_opencv))
-
-
-def _open(opener: Callable[..., Opened], path: Path, cfg: DataConfig) -> Opened:
-    """Start one decoder; the ffmpeg one is also given the data settings, to shrink frames itself."""
-    return opener(path, cfg) if opener is open_ffmpeg else opener(path)
+# Every opener takes (path, data settings or None).
+DECODERS: tuple[tuple[str, Callable[[Path, DataConfig | None], Opened]], ...] = (
+    ("ffmpeg", open_ffmpeg), ("opencv", open_opencv))
 
 
 def decode_video(path: Path, sink: FrameSink) -> dict:
@@ -238,7 +235,7 @@ def decode_video(path: Path, sink: FrameSink) -> dict:
     for name, opener in DECODERS:
         frames = None
         try:
-            facts, frames = _open(opener, path, sink.cfg)
+            facts, frames = opener(path, sink.cfg)
             opened = True
             sink.restart(total=facts.pop("expected"))
             source = facts.pop("shrunk_from", None)
