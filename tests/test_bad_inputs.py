@@ -441,6 +441,12 @@ def _(t, w):
         "a_file", UNWRITABLE
 
 
+@case("rig: unknown look")
+def _(t, w):
+    return ["rig", "ball", "--out", str(t / "looks"), "--frames", "4", "--size", "16", "--look", "glossy"], \
+        "look 'glossy'", "unknown look: allowed classic, .*, mixed"
+
+
 @case("report: unwritable output (below a regular file)")
 def _(t, w):
     return ["report", str(w.run), "--out", str(a_file(t) / "r.html")], "a_file", \

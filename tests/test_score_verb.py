@@ -19,7 +19,7 @@ from kinecast.frames import read_recording
 from kinecast.rigs import write_rig
 from kinecast.train import fit
 
-METHODS = {"model", "persistence", "constant_velocity", "flow_warp"}
+METHODS = {"model", "background_only", "persistence", "constant_velocity", "flow_warp"}
 
 
 @pytest.fixture(scope="module")
@@ -34,7 +34,7 @@ def setup(tmp_path_factory):
     return root
 
 
-def test_score_writes_every_method_and_matches_skimage(setup, tmp_path):
+def test_score_writes_every_method_and_matches_skimage(setup, tmp_path, capsys):
     out = tmp_path / "scores"
     rec_path = setup / "rig" / "trial_001"
     assert main(["score", str(setup / "run"), str(rec_path), "--holdout", "last:30", "--context", "4",
@@ -46,7 +46,7 @@ def test_score_writes_every_method_and_matches_skimage(setup, tmp_path):
     assert "not measurements" in summary["caution"] and len(summary["band_coverage_per_frame"]) == 30
     with open(out / "per_frame.csv", newline="") as fh:
         rows = list(csv.DictReader(fh))
-    assert len(rows) == 4 * 30
+    assert len(rows) == len(METHODS) * 30
     # persistence repeats frame 9 (the last context frame) for slots 10..39: recompute with skimage
     rec = read_recording(rec_path, C.apply_overrides(C.Config(), ["data.size=32"]).data)
     last = rec.frames[9, 0]
@@ -57,10 +57,16 @@ def test_score_writes_every_method_and_matches_skimage(setup, tmp_path):
         if np.any(last != truth):
             ref_psnr = peak_signal_noise_ratio(truth, last, data_range=1.0)
             assert float(row["psnr"]) == pytest.approx(ref_psnr, abs=1e-3)
+    # the valid horizon ends at the first frame whose object-region SSIM is below 0.8 (frames where
+    # no pixel differs from the background, NaN, are not judged)
     horizon = summary["methods"]["persistence"]["valid_horizon_frames"]
-    ssim_p = [float(r["ssim"]) for r in rows if r["method"] == "persistence"]
+    ssim_p = [float(r["object_ssim"]) for r in rows if r["method"] == "persistence"]
     below = [i for i, s in enumerate(ssim_p) if s < 0.8]
     assert horizon == (below[0] if below else 30)
+    assert summary["verdict"]["level"] in ("good", "weak", "failed")
+    assert "not measurements" in summary["verdict"]["text"]
+    printed = capsys.readouterr().out
+    assert printed.index(summary["verdict"]["text"]) < printed.index("| method")  # verdict first
 
 
 def test_pair_mode_scores_two_frame_sources(setup, tmp_path):

@@ -305,6 +305,41 @@ def phase_portrait(latents: np.ndarray, times: np.ndarray, out: str | Path,
     return _save(phase_portrait_figure(latents, times), path, overwrite)
 
 
+def keypoint_phase_figure(pixels: np.ndarray, times: np.ndarray) -> Figure:
+    """Phase portrait of each keypoint in the recording's pixels (see :func:`keypoint_phase`)."""
+    pixels, times = np.asarray(pixels, dtype=np.float64), np.asarray(times, dtype=np.float64)
+    if pixels.ndim != 3 or pixels.shape[2] != 4 or len(pixels) != len(times):
+        raise ValueError(f"pixels must be (N, K, 4) with N = len(times), got {pixels.shape}")
+    if not np.isfinite(pixels).all():
+        raise KinecastError("keypoints", "contain NaN or infinite values (did the model diverge?)")
+    fig, (ax,) = _new_figure(1)
+    for j in range(pixels.shape[1]):
+        xy, v = pixels[:, j, :2], pixels[:, j, 2:]
+        centred = xy - xy.mean(axis=0)
+        direction = np.linalg.svd(centred, full_matrices=False)[2][0] if len(xy) > 1 else np.array([1.0, 0.0])
+        pos, vel = centred @ direction, v @ direction
+        ax.plot(pos, vel, color="0.75", lw=0.8, zorder=1)
+        dots = ax.scatter(pos, vel, c=times, cmap="viridis", s=12, zorder=2,
+                          marker="os^Dv<>p"[j % 8], label=f"keypoint {j}")
+    fig.colorbar(dots, ax=ax, label="time (s)")
+    ax.set_xlabel("position along each keypoint's main direction of motion (px, recording pixels)")
+    ax.set_ylabel("velocity along that direction (px/s)")
+    ax.set_title("keypoint phase portrait", fontsize=10)
+    ax.legend(fontsize=8)
+    ax.grid(alpha=0.3)
+    return fig
+
+
+def keypoint_phase(pixels: np.ndarray, times: np.ndarray, out: str | Path, overwrite: bool = False) -> Path:
+    """Plot each keypoint's position against its velocity along its main direction of motion.
+
+    ``pixels`` is (N, K, 4): ``x_px, y_px, vx_px_s, vy_px_s`` per time and keypoint, in the
+    recording's own pixels (from :func:`kinecast.forecast.core.keypoint_pixels`).
+    """
+    path = _check_out(out, overwrite)
+    return _save(keypoint_phase_figure(pixels, times), path, overwrite)
+
+
 def _show(ax, frame: np.ndarray, cmap: str) -> None:
     """An image (RGB as is, grey in 'gray') or, for any other map, the channel mean on [0, 1]."""
     if frame.shape[0] == 3 and cmap == "gray":

@@ -122,10 +122,15 @@ def sidecars(out: Path) -> dict[str, Path]:
             (("sheet", ".png"), ("latents", ".csv"), ("phase", ".png"), ("forecast", ".npz"))}
 
 
-def latents_csv(times: np.ndarray, latents: np.ndarray) -> str:
-    """One row per sample and time: sample, time_s, s_0..s_{q-1}, v_0..v_{q-1}."""
+def latents_csv(times: np.ndarray, latents: np.ndarray, pixels: np.ndarray | None = None) -> str:
+    """One row per sample and time: sample, time_s, s_0..s_{q-1}, v_0..v_{q-1}; with ``pixels``
+    ([S, N, K, 4] from :func:`core.keypoint_pixels`) also each keypoint's position (px) and
+    velocity (px/s) in the recording's own pixels."""
     q = latents.shape[-1] // 2
     head = ["sample", "time_s"] + [f"s_{i}" for i in range(q)] + [f"v_{i}" for i in range(latents.shape[-1] - q)]
+    if pixels is not None:
+        head += [f"kp{j}_{c}" for j in range(pixels.shape[2]) for c in ("x_px", "y_px", "vx_px_s", "vy_px_s")]
+        latents = np.concatenate([latents, pixels.reshape(*pixels.shape[:2], -1)], axis=-1)
     rows = [",".join(head)]
     for s, lat in enumerate(latents):
         rows += [",".join([str(s), f"{t:.6f}"] + [f"{x:.6g}" for x in z]) for t, z in zip(times, lat)]
@@ -133,7 +138,7 @@ def latents_csv(times: np.ndarray, latents: np.ndarray) -> str:
 
 
 def run(args, cfg) -> int:
-    from ..plots import phase_portrait
+    from ..plots import keypoint_phase, phase_portrait
     from .render import output_kind, comparison_columns, contact_sheet, panel_frames, write_frames
 
     out = Path(args.out)
@@ -157,8 +162,12 @@ def run(args, cfg) -> int:
     write_frames(panels, out, play_fps, overwrite=args.overwrite)
     contact_sheet(panels, fc.times, cfg.forecast.contact_every, side["sheet"], overwrite=args.overwrite,
                   label=False)
-    write_text(side["latents"], latents_csv(fc.times, fc.latents))
-    phase_portrait(fc.latents[0], fc.times, side["phase"], overwrite=args.overwrite)
+    pixels = core.keypoint_pixels(fc.latents, rec.info, cfg) if cfg.model.encoder == "keypoints" else None
+    write_text(side["latents"], latents_csv(fc.times, fc.latents, pixels))
+    if pixels is not None:
+        keypoint_phase(pixels[0], fc.times, side["phase"], overwrite=args.overwrite)
+    else:
+        phase_portrait(fc.latents[0], fc.times, side["phase"], overwrite=args.overwrite)
     buf = io.BytesIO()
     np.savez_compressed(buf, times=fc.times, mean=fc.mean, spread=fc.spread, samples=fc.samples,
                         truth=truth, truth_present=have)

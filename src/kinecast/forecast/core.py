@@ -94,6 +94,36 @@ def predict_from(model, cfg: Config, rec: Recording, ctx_start: int, times: np.n
                     latents[:, 0].float().cpu().numpy(), ctx_start)
 
 
+def keypoint_pixels(latents: np.ndarray, info: dict, cfg: Config) -> np.ndarray:
+    """Keypoint positions and velocities of latent states in the recording's own pixels.
+
+    The keypoint encoder's latent position is K image coordinates in [-1, 1] across the model frame
+    (pixel centres at ``(2i + 1) / n − 1``); the model frame is the crop ``data.roi`` (or the whole
+    source frame) resized. Model pixel i covers source pixels ``x0 + [i, i + 1)·w/n``, so a
+    normalised x maps to ``x0 + (x + 1)/2 · w − 0.5`` in pixel-centre coordinates (x right, y
+    down), and a velocity in model units per model time unit to ``v · w/2 · time_scale`` px/s.
+
+    Parameters
+    ----------
+    latents : ndarray (..., 4K)
+        Latent states ``[x1, y1, ..., xK, yK, vx1, vy1, ...]``.
+    info : dict
+        The recording's ``info`` (``source_size`` [width, height], ``roi`` [x, y, w, h] or []).
+
+    Returns
+    -------
+    ndarray (..., K, 4)
+        ``x_px, y_px, vx_px_s, vy_px_s`` per keypoint.
+    """
+    q = latents.shape[-1] // 2
+    x0, y0, w, h = info.get("roi") or [0, 0, *info["source_size"]]
+    pos = latents[..., :q].reshape(*latents.shape[:-1], q // 2, 2)
+    vel = latents[..., q:].reshape(*latents.shape[:-1], q // 2, 2)
+    scale = np.array([w, h], dtype=np.float64) / 2.0
+    px = np.array([x0, y0], dtype=np.float64) + (pos + 1.0) * scale - 0.5
+    return np.concatenate([px, vel * scale * cfg.solver.time_scale], axis=-1)
+
+
 def forecast(model, cfg: Config, rec: Recording, n_frames: int, start: int | None = None,
              fps: float = 0.0, samples: int = 1, device="cpu") -> Forecast:
     """Forecast ``n_frames`` from the ``k`` present frames before slot ``start``.

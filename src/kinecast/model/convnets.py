@@ -53,9 +53,12 @@ class GaussEncoder(nn.Module):
         ``cfg.model.enc_channels``.
     out_dim : int
         Size of the Gaussian.
+    extra_dim : int
+        Size of an optional vector joined to the conv features before the head (the velocity
+        encoder gets the position encoder's readings of the context frames).
     """
 
-    def __init__(self, in_channels: int, size: int, base: int, out_dim: int):
+    def __init__(self, in_channels: int, size: int, base: int, out_dim: int, extra_dim: int = 0):
         super().__init__()
         layers: list[nn.Module] = []
         c_in, side = in_channels, size
@@ -63,13 +66,16 @@ class GaussEncoder(nn.Module):
             layers += [nn.Conv2d(c_in, c_out, 3, stride=2, padding=1), Activation()]
             c_in, side = c_out, (side + 1) // 2
         self.trunk = nn.Sequential(*layers)
-        self.head = nn.Linear(c_in * side * side, 2 * out_dim)
+        self.head = nn.Linear(c_in * side * side + extra_dim, 2 * out_dim)
         with torch.no_grad():
             self.head.bias[out_dim:].fill_(INIT_LOGVAR)
         self.out_dim = out_dim
 
-    def forward(self, x: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+    def forward(self, x: torch.Tensor, extra: torch.Tensor | None = None
+                ) -> tuple[torch.Tensor, torch.Tensor]:
         h = self.trunk(x).flatten(1)
+        if extra is not None:
+            h = torch.cat([h, extra], dim=1)
         mean, logvar = self.head(h).chunk(2, dim=1)
         return mean, logvar.clamp(LOGVAR_MIN, LOGVAR_MAX)
 

@@ -22,6 +22,7 @@ from torch import nn
 
 from .gauss import kl_normal_prior
 
+ACTIVATIONS = {"tanh": torch.tanh, "relu": torch.relu, "softplus": torch.nn.functional.softplus}
 # The last layer's initial means are scaled by this: the starting field is gentle, so early latent
 # trajectories stay bounded while the decoder learns.
 LAST_LAYER_GAIN = 0.1
@@ -43,6 +44,8 @@ class DynamicsField(nn.Module):
         Mean-field Gaussian weights with a KL term; else plain weights and ``kl() == 0``.
     prior_std, init_logstd : float
         Prior standard deviation, and the initial log σ of every weight.
+    activation : str
+        Hidden activation, a key of :data:`ACTIVATIONS` (``relu`` forms the steep walls of impacts).
 
     Examples
     --------
@@ -53,8 +56,9 @@ class DynamicsField(nn.Module):
     """
 
     def __init__(self, q: int, hidden: int, hidden_layers: int, second_order: bool, bayesian: bool,
-                 prior_std: float, init_logstd: float):
+                 prior_std: float, init_logstd: float, activation: str = "tanh"):
         super().__init__()
+        self.act = ACTIVATIONS[activation]
         self.q = q
         self.second_order = second_order
         self.bayesian = bayesian
@@ -65,8 +69,8 @@ class DynamicsField(nn.Module):
         self.w_logstd = nn.ParameterList()
         self.b_logstd = nn.ParameterList()
         for i, (n_in, n_out) in enumerate(zip(sizes[:-1], sizes[1:])):
-            # Glorot-style uniform init for tanh layers (common practice)
-            gain = LAST_LAYER_GAIN if i == len(sizes) - 2 else 1.0
+            # Glorot-style uniform init for tanh layers, He-style (×√2) for ReLU-like ones (common practice)
+            gain = LAST_LAYER_GAIN if i == len(sizes) - 2 else (1.0 if activation == "tanh" else math.sqrt(2))
             bound = math.sqrt(6.0 / (n_in + n_out)) * gain
             self.w_mu.append(nn.Parameter(torch.empty(n_in, n_out).uniform_(-bound, bound)))
             self.b_mu.append(nn.Parameter(torch.zeros(n_out)))
@@ -111,7 +115,7 @@ class DynamicsField(nn.Module):
             for i, (w, b) in enumerate(zip(self.w_mu, self.b_mu)):
                 x = torch.addmm(b, x, w)
                 if i < n_layers - 1:
-                    x = torch.tanh(x)
+                    x = self.act(x)
             return x
         if x.shape[0] != self._weights[0][0].shape[0]:
             raise ValueError(f"DynamicsField: state batch {x.shape[0]} but weights drawn for "
@@ -120,7 +124,7 @@ class DynamicsField(nn.Module):
         for i, (w, b) in enumerate(self._weights):
             x = torch.baddbmm(b, x, w)
             if i < n_layers - 1:
-                x = torch.tanh(x)
+                x = self.act(x)
         return x.squeeze(1)
 
     def forward(self, t: torch.Tensor, y: torch.Tensor) -> torch.Tensor:

@@ -24,6 +24,7 @@ from torch import nn
 
 from .convnets import Decoder, GaussEncoder
 from .field import DynamicsField
+from .keypoints import KeypointDecoder, KeypointEncoder
 from .gauss import bernoulli_nll, gaussian_nll, kl_std_normal
 from .solver import solve
 
@@ -57,16 +58,24 @@ class LatentODE(nn.Module):
         self.cfg = model_cfg
         self.solver_cfg = solver_cfg
         self.variant = model_cfg.variant
-        self.q = q = int(model_cfg.latent_dim)
+        self.keypoints = model_cfg.encoder == "keypoints"
+        self.q = q = latent_size(model_cfg)
         self.k = k = int(model_cfg.velocity_frames)
         self.channels, self.size = int(channels), int(size)
-        self.pos_enc = GaussEncoder(channels, size, model_cfg.enc_channels, q)
-        self.vel_enc = GaussEncoder((2 * k - 1) * channels, size, model_cfg.enc_channels, q)
+        if self.keypoints:
+            self.pos_enc = KeypointEncoder(channels, size, model_cfg.enc_channels, model_cfg.keypoints)
+            self.decoder = KeypointDecoder(model_cfg.keypoints, channels, size, model_cfg.dec_channels,
+                                           model_cfg.blob_std)
+        else:
+            self.pos_enc = GaussEncoder(channels, size, model_cfg.enc_channels, q)
+            self.decoder = Decoder(q, channels, size, model_cfg.dec_channels)
+        # the velocity encoder also reads the position encoder's means of the k context frames
+        self.vel_enc = GaussEncoder((2 * k - 1) * channels, size, model_cfg.enc_channels, q, extra_dim=k * q)
         self.field = DynamicsField(q, model_cfg.hidden, model_cfg.hidden_layers,
                                    second_order=self.variant != "first_order",
                                    bayesian=self.variant != "deterministic",
-                                   prior_std=model_cfg.prior_std, init_logstd=model_cfg.init_logstd)
-        self.decoder = Decoder(q, channels, size, model_cfg.dec_channels)
+                                   prior_std=model_cfg.prior_std, init_logstd=model_cfg.init_logstd,
+                                   activation=model_cfg.field_activation)
         if model_cfg.likelihood == "gaussian":
             self.log_noise = nn.Parameter(torch.full((channels,), math.log(INIT_NOISE_STD)))
         else:
@@ -91,6 +100,8 @@ class LatentODE(nn.Module):
     def decode_logits(self, s: torch.Tensor) -> torch.Tensor:
         """Latent positions (..., q) → pixel logits (..., C, H, W), background included."""
         base = torch.logit(self.background.clamp(BG_EPS, 1.0 - BG_EPS))
+        if self.keypoints:
+            return base + self.decoder(s, self.background)
         return base + self.decoder(s)
 
     def decode(self, s: torch.Tensor) -> torch.Tensor:
@@ -111,13 +122,22 @@ class LatentODE(nn.Module):
             raise ValueError(f"{name}: expected [B, T>={min_t}, {self.channels}, {self.size}, "
                              f"{self.size}], got {list(x.shape)}")
 
+    def encode_positions(self, x: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+        """Means and log-variances of the latent position of each frame ``x`` [N, C, H, W]."""
+        if self.keypoints:
+            return self.pos_enc(x, self.background)
+        return self.pos_enc(x)
+
     def encode_dist(self, ctx: torch.Tensor):
         """Means and log-variances of q(s0) and q(v0) from ``ctx`` [B, k, C, H, W] (first k used)."""
         self._check_frames(ctx, "encode", self.k)
         ctx = ctx[:, :self.k].contiguous()  # convs on broadcast (expanded) views are very slow
-        s_mean, s_logvar = self.pos_enc(ctx[:, 0])
+        B = ctx.shape[0]
+        pos_mean, pos_logvar = self.encode_positions(ctx.flatten(0, 1))
+        s_mean = pos_mean.reshape(B, self.k, self.q)[:, 0]
+        s_logvar = pos_logvar.reshape(B, self.k, self.q)[:, 0]
         stacked = torch.cat([ctx.flatten(1, 2), (ctx[:, 1:] - ctx[:, :-1]).flatten(1, 2)], dim=1)
-        v_mean, v_logvar = self.vel_enc(stacked)
+        v_mean, v_logvar = self.vel_enc(stacked, pos_mean.reshape(B, self.k * self.q))
         return s_mean, s_logvar, v_mean, v_logvar
 
     def encode(self, ctx: torch.Tensor, sample: bool, generator: torch.Generator | None = None
@@ -253,7 +273,7 @@ class LatentODE(nn.Module):
                 # both sides learn: the trajectory follows the encoder's reading of each frame and
                 # the encoder learns to read every frame, not only first ones (measured on one clip:
                 # a stop-gradient on the encoder side made weights >= 1 collapse to the mean frame)
-                enc_mean, _ = self.pos_enc(x_later[later])
+                enc_mean, _ = self.encode_positions(x_later[later])
                 agreement = ag_scale * 0.5 * ((enc_mean - s_later[later]) ** 2).sum() / B / norm
         loss = nll + beta * (kl_s0 + kl_v0 + kl_w) + self.cfg.agreement_weight * agreement
         terms = {"nll": nll, "kl_s0": kl_s0, "kl_v0": kl_v0, "kl_w": kl_w, "agreement": agreement,
@@ -299,6 +319,11 @@ class LatentODE(nn.Module):
         states = self.integrate_any(state0, t)  # [N, S·B, 2q]
         latents = states.transpose(0, 1).reshape(samples, B, states.shape[0], 2 * self.q)
         return self.decode(latents[..., :self.q]), latents
+
+
+def latent_size(model_cfg) -> int:
+    """Size q of the latent position: 2 × keypoints with the keypoint encoder, else latent_dim."""
+    return 2 * int(model_cfg.keypoints) if model_cfg.encoder == "keypoints" else int(model_cfg.latent_dim)
 
 
 def build_model(cfg, channels: int) -> LatentODE:

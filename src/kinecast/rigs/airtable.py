@@ -13,6 +13,7 @@ import math
 import numpy as np
 
 from .draw import Canvas
+from .look import Look
 from .rig import Rig, require
 
 DEFAULTS = {
@@ -28,6 +29,11 @@ MAX_PUCKS = 3
 RAIL = 0.06                  # rail thickness, fraction of the frame
 RAIL_COLOUR = (0.55, 0.55, 0.55)
 PUCK_COLOURS = ((0.95, 0.35, 0.3), (0.3, 0.85, 0.4), (0.35, 0.55, 0.95))
+# Rod look: each puck is a bar (a stroke with round caps) inside its disc's outline, at a fixed
+# angle per puck (radians) -- it slides without turning. Half-length of the stroke's straight part
+# and half-width, as fractions of the radius (they add up to 1: the bar spans the disc).
+BAR_ANGLES = (0.4, 1.9, 2.8)
+BAR_HALF_LENGTH, BAR_HALF_WIDTH = 0.5, 0.5
 PLACEMENT_TRIES = 1000       # rejection-sampling attempts for non-overlapping start positions
 
 
@@ -112,16 +118,23 @@ def _truth(p: dict, states: np.ndarray, size: int) -> dict:
     return out
 
 
-def _draw(canvas: Canvas, p: dict, y: np.ndarray) -> None:
+def _draw(canvas: Canvas, p: dict, y: np.ndarray, look: Look) -> None:
     size = canvas.width
     origin, scale = geometry(p, size)
     edge = size - 0.5
     inner = origin + scale * p["table_m"]
     for box in ((-0.5, -0.5, edge, origin), (-0.5, inner, edge, edge),
                 (-0.5, -0.5, origin, edge), (inner, -0.5, edge, edge)):
-        canvas.box(*box, RAIL_COLOUR)
+        canvas.box(*box, look.fixture(RAIL_COLOUR))
+    radius = p["radius_m"] * scale
     for i, s in enumerate(y.reshape(-1, 4)):
-        canvas.disc(origin + scale * s[0], origin + scale * s[1], p["radius_m"] * scale, PUCK_COLOURS[i])
+        x, y_, colour = origin + scale * s[0], origin + scale * s[1], look.object(PUCK_COLOURS[i])
+        if look.rod:
+            dx = BAR_HALF_LENGTH * radius * math.cos(BAR_ANGLES[i])
+            dy = BAR_HALF_LENGTH * radius * math.sin(BAR_ANGLES[i])
+            canvas.segment(x - dx, y_ - dy, x + dx, y_ + dy, 2 * BAR_HALF_WIDTH * radius, colour)
+        else:
+            canvas.disc(x, y_, radius, colour)
 
 
 AIRTABLE = Rig(

@@ -79,16 +79,18 @@ class Camera:
         return asdict(self)
 
 
-def background(rng: np.random.Generator, size: int, texture: float) -> np.ndarray:
-    """The static background, float32 (size, size, 3), neutral grey with a smooth random texture."""
-    flat = np.full((size, size), BACKGROUND_LEVEL, dtype=np.float32)
+def background(rng: np.random.Generator, size: int, texture: float,
+               base: np.ndarray | None = None) -> np.ndarray:
+    """The static background, float32 (size, size, 3): ``base`` (default neutral grey) with a smooth
+    random texture of contrast ``texture`` multiplied in."""
+    image = np.full((size, size, 1), BACKGROUND_LEVEL, dtype=np.float32) if base is None else base
     if texture > 0:
         noise = rng.standard_normal((size, size)).astype(np.float32)
         smooth = cv2.GaussianBlur(noise, (0, 0), sigmaX=max(size * TEXTURE_SCALE, 0.5),
                                   borderType=cv2.BORDER_REFLECT)
         smooth /= max(float(np.abs(smooth).max()), 1e-12)
-        flat = np.clip(flat * (1.0 + texture * smooth), 0.0, 1.0)
-    return np.repeat(flat[..., None], 3, axis=2)
+        image = np.clip(image * (1.0 + texture * smooth)[..., None], 0.0, 1.0)
+    return np.broadcast_to(image, (size, size, 3)).astype(np.float32)
 
 
 def frame_times(rng: np.random.Generator, frames: int, fps: float, jitter: float) -> np.ndarray:

@@ -4,11 +4,12 @@ from __future__ import annotations
 
 from ..errors import KinecastError
 from .airtable import AIRTABLE
+from .ball import BALL
 from .pendulum import PENDULUM
 from .rig import Rig
 from .spring import SPRING
 
-RIGS: dict[str, Rig] = {rig.name: rig for rig in (PENDULUM, SPRING, AIRTABLE)}
+RIGS: dict[str, Rig] = {rig.name: rig for rig in (PENDULUM, SPRING, AIRTABLE, BALL)}
 
 
 def get_rig(name: str) -> Rig:

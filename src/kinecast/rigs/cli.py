@@ -8,6 +8,7 @@ from pathlib import Path
 from ..errors import KinecastError
 from .camera import Camera
 from .catalog import RIGS
+from .look import CLASSIC, LOOKS, MIXED, look_names
 from .write import DROPPED_DIR, write_rig
 
 
@@ -16,6 +17,9 @@ def _epilog() -> str:
     for rig in RIGS.values():
         lines.append(f"  {rig.name}: {rig.summary}")
         lines.append("    " + ", ".join(f"{k}={v:g}" for k, v in rig.defaults.items()))
+    lines.append("looks (--look NAME; the physics and truth are the same in every look):")
+    lines += [f"  {look.name}: {look.summary}" for look in LOOKS.values()]
+    lines.append(f"  {MIXED}: each trial draws one of the looks above at random from the seed")
     lines.append("Frames are synthetic; truth.csv in each trial folder holds the simulated state.")
     return "\n".join(lines)
 
@@ -34,6 +38,9 @@ def configure(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--fps", type=float, default=30.0, metavar="F", help="frame rate (default 30)")
     parser.add_argument("--channels", default="rgb", choices=("grey", "rgb"), help="colour or grey frames "
                         "(default rgb)")
+    parser.add_argument("--look", default=CLASSIC, metavar="NAME",
+                        help=f"how the rig is drawn: {', '.join(look_names())} (default {CLASSIC}; "
+                        "see below)")
     parser.add_argument("--param", dest="params", action="append", default=[], metavar="KEY=VALUE",
                         help="set a physical parameter of the rig (see below); may be repeated")
     cam = parser.add_argument_group("camera realism (defaults: a clean camera)")
@@ -75,11 +82,12 @@ def run(args: argparse.Namespace, cfg) -> int:
     camera.check(prefix="--")
     folders = write_rig(args.name, args.out, trials=args.trials, frames=args.frames, seed=args.seed,
                         size=args.size, fps=args.fps, camera=camera, channels=args.channels,
-                        params=parse_params(args.params), overwrite=args.overwrite, progress=True)
+                        params=parse_params(args.params), overwrite=args.overwrite, progress=True,
+                        look=args.look)
     dropped = sum(len(list((f / DROPPED_DIR).glob("frame_*.png"))) for f in folders
                   if (f / DROPPED_DIR).is_dir())
     span = folders[0].name if len(folders) == 1 else f"{folders[0].name} ... {folders[-1].name}"
     print(f"wrote {len(folders)} trial(s) of rig {args.name!r} to {Path(args.out)} ({span}; "
-          f"{args.frames} frames each, {dropped} dropped kept in {DROPPED_DIR}/)")
+          f"{args.frames} frames each, look {args.look}, {dropped} dropped kept in {DROPPED_DIR}/)")
     print("frames are synthetic; truth.csv holds the simulated state of every frame")
     return 0

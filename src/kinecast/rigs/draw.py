@@ -43,6 +43,10 @@ class Canvas:
         """Back to the bare background."""
         np.copyto(self.px, self._base)
 
+    def keep(self) -> None:
+        """Make everything drawn so far part of the background (static scenery)."""
+        np.copyto(self._base, self.px)
+
     def image(self) -> np.ndarray:
         """The canvas at output resolution, float32 (H, W, 3).
 
@@ -69,8 +73,10 @@ class Canvas:
         yy, xx = np.mgrid[r0:r1, c0:c1].astype(np.float64)
         return (slice(r0, r1), slice(c0, c1)), xx, yy
 
-    def _blend(self, where, distance: np.ndarray, colour) -> None:
+    def _blend(self, where, distance: np.ndarray, colour, opacity: float = 1.0) -> None:
         alpha = np.clip(0.5 - distance, 0.0, 1.0).astype(np.float32)[..., None]
+        if opacity != 1.0:
+            alpha *= np.float32(opacity)
         region = self.px[where]
         region += alpha * (np.asarray(colour, dtype=np.float32) - region)
 
@@ -84,8 +90,9 @@ class Canvas:
         d = np.hypot(xx - self._ss(x), yy - self._ss(y)) - r * SUPERSAMPLE
         self._blend(where, d, colour)
 
-    def polyline(self, xs, ys, width: float, colour) -> None:
-        """A stroke of the given width through the points (round joins and caps)."""
+    def polyline(self, xs, ys, width: float, colour, opacity: float = 1.0) -> None:
+        """A stroke of the given width through the points (round joins and caps); ``opacity`` < 1
+        lets the background show through."""
         xs, ys = np.asarray(xs, dtype=np.float64), np.asarray(ys, dtype=np.float64)
         half = width / 2
         g = self._grid(xs.min() - half, ys.min() - half, xs.max() + half, ys.max() + half)
@@ -100,13 +107,15 @@ class Canvas:
             px, py = xx - ax[i], yy - ay[i]
             t = np.clip((px * ex + py * ey) / max(ex * ex + ey * ey, 1e-12), 0.0, 1.0)
             np.minimum(d, np.hypot(px - t * ex, py - t * ey), out=d)
-        self._blend(where, d - half * SUPERSAMPLE, colour)
+        self._blend(where, d - half * SUPERSAMPLE, colour, opacity)
 
-    def segment(self, x0: float, y0: float, x1: float, y1: float, width: float, colour) -> None:
+    def segment(self, x0: float, y0: float, x1: float, y1: float, width: float, colour,
+                opacity: float = 1.0) -> None:
         """A straight stroke from (x0, y0) to (x1, y1)."""
-        self.polyline([x0, x1], [y0, y1], width, colour)
+        self.polyline([x0, x1], [y0, y1], width, colour, opacity)
 
-    def box(self, x0: float, y0: float, x1: float, y1: float, colour, corner: float = 0.0) -> None:
+    def box(self, x0: float, y0: float, x1: float, y1: float, colour, corner: float = 0.0,
+            opacity: float = 1.0) -> None:
         """A filled axis-aligned rectangle between its edges (x0, y0) and (x1, y1), with rounded
         corners of radius ``corner``."""
         g = self._grid(x0, y0, x1, y1)
@@ -119,4 +128,4 @@ class Canvas:
         qx, qy = np.abs(xx - cx) - hx, np.abs(yy - cy) - hy
         outside = np.hypot(np.maximum(qx, 0), np.maximum(qy, 0))
         inside = np.minimum(np.maximum(qx, qy), 0)
-        self._blend(where, outside + inside - corner * s, colour)
+        self._blend(where, outside + inside - corner * s, colour, opacity)

@@ -11,6 +11,7 @@ import math
 import numpy as np
 
 from .draw import Canvas
+from .look import Look
 from .rig import Rig, require
 
 # L = 0.25 m with g = 9.81 m/s² gives a small-angle period 2π·sqrt(L/g) ≈ 1.003 s: about 30 frames
@@ -30,6 +31,8 @@ PIVOT_RADIUS = 0.025         # pivot disc radius as a fraction of the frame
 BOB_COLOUR = (0.95, 0.55, 0.2)
 ROD_COLOUR = (0.7, 0.7, 0.7)   # neutral grey: equal R and G, so R − G isolates the bob
 PIVOT_COLOUR = (0.5, 0.5, 0.5)
+# Rod look: one thick rod in the bob's colour from the pivot to just past the bob's centre, no bob.
+THICK_ROD_WIDTH = 1.6        # stroke width as a fraction of the bob's radius
 
 
 def _check(p: dict) -> None:
@@ -73,14 +76,20 @@ def _truth(p: dict, states: np.ndarray, size: int) -> dict:
             "bob_y_px": py + scale * p["length_m"] * np.cos(theta)}
 
 
-def _draw(canvas: Canvas, p: dict, y: np.ndarray) -> None:
+def _draw(canvas: Canvas, p: dict, y: np.ndarray, look: Look) -> None:
     size = canvas.width
     px, py, scale = geometry(p, size)
+    radius = p["bob_radius_m"] * scale
+    canvas.disc(px, py, PIVOT_RADIUS * size, look.fixture(PIVOT_COLOUR))
+    if look.rod:
+        reach = scale * p["length_m"] + radius / 2   # the rod's cap covers the bob's centre
+        canvas.segment(px, py, px + reach * math.sin(y[0]), py + reach * math.cos(y[0]),
+                       THICK_ROD_WIDTH * radius, look.object(BOB_COLOUR))
+        return
     bx = px + scale * p["length_m"] * math.sin(y[0])
     by = py + scale * p["length_m"] * math.cos(y[0])
-    canvas.disc(px, py, PIVOT_RADIUS * size, PIVOT_COLOUR)
-    canvas.segment(px, py, bx, by, ROD_WIDTH * size, ROD_COLOUR)
-    canvas.disc(bx, by, p["bob_radius_m"] * scale, BOB_COLOUR)
+    canvas.segment(px, py, bx, by, ROD_WIDTH * size, look.fixture(ROD_COLOUR))
+    canvas.disc(bx, by, radius, look.object(BOB_COLOUR))
 
 
 PENDULUM = Rig(

@@ -2,7 +2,9 @@
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+import math
+import zlib
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 from tqdm import tqdm
@@ -13,13 +15,15 @@ from . import camera as cam
 from .camera import Camera
 from .catalog import get_rig
 from .draw import Canvas
+from .look import CLASSIC, Look, check_look, pick_look
 from .rig import Rig
 
 # Independent random streams under one seed (numpy SeedSequence spawn keys): the background is
-# shared by all trials of a render (a fixed camera), each trial has its own initial condition and
-# its own camera randomness, so trial k is the same whatever the number of trials.
+# shared by all trials of a render that have the same look (a fixed camera), each trial has its own
+# initial condition, camera randomness, look choice (for --look mixed) and look randomness (light
+# drift), so trial k is the same whatever the number of trials.
 _BACKGROUND_STREAM, _TRIAL_STREAM = 0, 1
-_INITIAL, _CAMERA = 0, 1
+_INITIAL, _CAMERA, _LOOK_PICK, _LOOK_DRAW = 0, 1, 2, 3
 CHANNELS = ("grey", "rgb")
 # Allowed ranges of the render settings (sanity bounds, not physics).
 TRIALS_RANGE = (1, 10_000)
@@ -53,6 +57,8 @@ class RigTrial:
         The state at t = 0 drawn for this trial.
     seed, fps, camera, channels
         Render settings.
+    look : str
+        Name of the look this trial was drawn in (see :mod:`kinecast.rigs.look`).
     """
 
     name: str
@@ -67,6 +73,7 @@ class RigTrial:
     fps: float
     camera: Camera = field(default_factory=Camera)
     channels: str = "rgb"
+    look: str = CLASSIC
 
     def recording(self, include_dropped: bool = False) -> Recording:
         """This trial as a :class:`~kinecast.frames.recording.Recording` (frames in [0, 1]).
@@ -92,7 +99,7 @@ def _check_int(name: str, value, lo: int, hi: int) -> int:
     return int(value)
 
 
-def check_settings(trials, frames, seed, size, fps, camera, channels) -> None:
+def check_settings(trials, frames, seed, size, fps, camera, channels, look=CLASSIC) -> None:
     """Raise :class:`KinecastError` on the first bad render setting."""
     _check_int("trials", trials, *TRIALS_RANGE)
     _check_int("frames", frames, *FRAMES_RANGE)
@@ -105,23 +112,50 @@ def check_settings(trials, frames, seed, size, fps, camera, channels) -> None:
     camera.check()
     if channels not in CHANNELS:
         raise KinecastError("channels", f"bad value {channels!r}: allowed {', '.join(CHANNELS)}")
+    check_look(look)
 
 
-def background_for(seed: int, size: int, camera: Camera) -> np.ndarray:
-    """The static background shared by every trial rendered with ``seed`` (a fixed camera)."""
-    rng = np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(_BACKGROUND_STREAM,)))
-    return cam.background(rng, size, camera.texture)
+def background_for(seed: int, size: int, camera: Camera, look: Look | None = None) -> np.ndarray:
+    """The static background shared by every trial rendered with ``seed`` in ``look`` (a fixed
+    camera); the classic look keeps the stream it had before looks existed."""
+    if look is None or look.name == CLASSIC:
+        rng = np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(_BACKGROUND_STREAM,)))
+        return cam.background(rng, size, camera.texture)
+    key = zlib.crc32(look.name.encode())   # a stable number per look name, whatever the registry order
+    rng = np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(_BACKGROUND_STREAM, key)))
+    return cam.background(rng, size, camera.texture, base=look.paint(rng, size))
+
+
+def trial_look(look: str, seed: int, index: int) -> Look:
+    """The look of trial ``index``: ``look`` itself, or for ``mixed`` one drawn from the trial's own
+    stream (so it does not depend on the number of trials)."""
+    rng = np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(_TRIAL_STREAM, index, _LOOK_PICK)))
+    return pick_look(look, rng)
+
+
+def empty_scene(rig: Rig, params: dict, seed: int, size: int, camera: Camera, look: Look) -> Canvas:
+    """A canvas holding the background and the rig's static scenery in ``look``, nothing moving."""
+    canvas = Canvas(background_for(seed, size, camera, look))
+    rig.scenery(canvas, params, look)
+    canvas.keep()
+    return canvas
 
 
 def render_trial(rig: Rig, params: dict, index: int, frames: int, seed: int, size: int, fps: float,
-                 camera: Camera, channels: str, backdrop: np.ndarray, progress: bool = False) -> RigTrial:
+                 camera: Camera, channels: str, look: str = CLASSIC, progress: bool = False) -> RigTrial:
     """Render trial ``index`` of a rig (settings already checked; see :func:`render_trials`)."""
     init_rng = np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(_TRIAL_STREAM, index, _INITIAL)))
     cam_rng = np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(_TRIAL_STREAM, index, _CAMERA)))
+    drawn = trial_look(look, seed, index)
     y0 = rig.initial(init_rng, params)
     times = cam.frame_times(cam_rng, frames, fps, camera.jitter)
     dropped = cam.dropped_mask(cam_rng, frames, camera.drop)
     gains = 1.0 + camera.flicker * cam_rng.standard_normal(frames)
+    if drawn.drift != (0.0, 0.0):
+        look_rng = np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(_TRIAL_STREAM, index,
+                                                                                 _LOOK_DRAW)))
+        gains = gains * drawn.gains(look_rng, times)
+    sensor = replace(camera, noise=math.hypot(camera.noise, drawn.noise)) if drawn.noise else camera
 
     # One integration for the exposure sub-samples and the capture times together.
     offsets = cam.exposure_offsets(camera, fps)
@@ -132,7 +166,7 @@ def render_trial(rig: Rig, params: dict, index: int, frames: int, seed: int, siz
     states = every[:-frames].reshape(frames, len(offsets), len(y0))
     truth_states = every[-frames:]
 
-    canvas = Canvas(backdrop)
+    canvas = empty_scene(rig, params, seed, size, camera, drawn)
     vignette = cam.vignette_gain(size, camera.vignette)
     out = np.empty((frames, size, size, 1 if channels == "grey" else 3), dtype=np.uint8)
     bar = tqdm(range(frames), desc=f"{rig.name} trial {index}", unit="frame", leave=False,
@@ -141,28 +175,30 @@ def render_trial(rig: Rig, params: dict, index: int, frames: int, seed: int, siz
         light = np.zeros((size, size, 3), dtype=np.float32)
         for state in states[i]:
             canvas.clear()
-            rig.draw(canvas, params, state)
+            rig.draw(canvas, params, state, drawn)
             light += canvas.image()
-        out[i] = cam.develop(light / len(offsets), cam_rng, camera, gains[i], vignette, channels == "grey")
+        out[i] = cam.develop(light / len(offsets), cam_rng, sensor, gains[i], vignette, channels == "grey")
     names = rig.state_names(params)
     return RigTrial(name=rig.name, index=index, frames=out, times=times, dropped=dropped,
                     truth=rig.columns(params, truth_states, size), params=dict(params),
                     initial={n: float(v) for n, v in zip(names, y0)}, seed=seed, fps=float(fps),
-                    camera=camera, channels=channels)
+                    camera=camera, channels=channels, look=drawn.name)
 
 
 def render_trials(name: str, trials: int = 1, frames: int = 60, seed: int = 0, size: int = 64,
                   fps: float = 30.0, camera: Camera = Camera(), channels: str = "rgb",
-                  params: dict | None = None, progress: bool = False) -> list[RigTrial]:
+                  params: dict | None = None, progress: bool = False,
+                  look: str = CLASSIC) -> list[RigTrial]:
     """Render trials of a synthetic rig in memory.
 
-    Every trial shares the rig, its parameters and the camera's static background; each draws its
-    own initial condition and camera randomness from ``seed``.
+    Every trial shares the rig, its parameters and the camera's static background (one per look);
+    each draws its own initial condition and camera randomness from ``seed``.
 
     Parameters
     ----------
     name : str
-        Rig name, a key of :data:`kinecast.rigs.RIGS` (``pendulum``, ``spring``, ``airtable``).
+        Rig name, a key of :data:`kinecast.rigs.RIGS` (``pendulum``, ``spring``, ``airtable``,
+        ``ball``).
     trials : int
         Number of trials.
     frames : int
@@ -181,6 +217,9 @@ def render_trials(name: str, trials: int = 1, frames: int = 60, seed: int = 0, s
         Overrides of the rig's physical parameters (see ``RIGS[name].defaults``).
     progress : bool
         Show a progress bar.
+    look : str
+        A key of :data:`kinecast.rigs.LOOKS` (default ``classic``), or ``mixed``: each trial draws
+        its own look from ``seed``.
 
     Returns
     -------
@@ -193,8 +232,7 @@ def render_trials(name: str, trials: int = 1, frames: int = 60, seed: int = 0, s
     ((4, 32, 32, 3), 'uint8', ['bob_x_px', 'bob_y_px'])
     """
     rig = get_rig(name)
-    check_settings(trials, frames, seed, size, fps, camera, channels)
+    check_settings(trials, frames, seed, size, fps, camera, channels, look)
     resolved = rig.resolve(params)
-    backdrop = background_for(seed, size, camera)
-    return [render_trial(rig, resolved, k, frames, seed, size, fps, camera, channels, backdrop, progress)
+    return [render_trial(rig, resolved, k, frames, seed, size, fps, camera, channels, look, progress)
             for k in range(trials)]

@@ -5,13 +5,16 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
-from typing import Callable, Mapping
+from typing import TYPE_CHECKING, Callable, Mapping
 
 import numpy as np
 
 from ..errors import KinecastError
 from .draw import Canvas
 from .integrate import Event, Rhs, integrate
+
+if TYPE_CHECKING:
+    from .look import Look
 
 # RK4 sub-steps per characteristic time of a rig (its swing period, decay time, ...). RK4's global
 # error scales as step⁴ (Butcher 2016), so 2000 steps per period keeps truth errors far below 1e-8.
@@ -43,9 +46,13 @@ class Rig:
     truth : callable
         ``truth(params, states, size)`` -> extra truth columns (e.g. positions in pixels).
     draw : callable
-        ``draw(canvas, params, state)`` paints one state.
+        ``draw(canvas, params, state, look)`` paints one state in a
+        :class:`~kinecast.rigs.look.Look` (its colours through ``look.object`` / ``look.fixture``,
+        an extended shape when ``look.rod``).
     event : callable, optional
         ``event(params)`` -> an :class:`~kinecast.rigs.integrate.Event` (walls), or None.
+    scenery : callable, optional
+        ``scenery(canvas, params, look)`` paints the static parts once per trial (e.g. a floor).
     """
 
     name: str
@@ -57,8 +64,9 @@ class Rig:
     rhs: Callable[[dict], Rhs]
     initial: Callable[[np.random.Generator, dict], np.ndarray]
     truth: Callable[[dict, np.ndarray, int], dict]
-    draw: Callable[[Canvas, dict, np.ndarray], None]
+    draw: Callable[[Canvas, dict, np.ndarray, "Look"], None]
     event: Callable[[dict], Event | None] = lambda params: None
+    scenery: Callable[[Canvas, dict, "Look"], None] = lambda canvas, params, look: None
 
     def resolve(self, params: Mapping[str, float] | None = None) -> dict:
         """The rig's defaults updated with ``params``; raise :class:`KinecastError` on a bad key

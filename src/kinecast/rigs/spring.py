@@ -11,6 +11,7 @@ import math
 import numpy as np
 
 from .draw import Canvas
+from .look import Look
 from .rig import Rig, require
 
 DEFAULTS = {
@@ -33,6 +34,8 @@ CORNER = 0.25                # weight corner radius, fraction of its half side
 WEIGHT_COLOUR = (0.3, 0.6, 0.95)
 WIRE_COLOUR = (0.75, 0.75, 0.75)
 CEILING_COLOUR = (0.45, 0.45, 0.45)
+# Rod look: the weight is a long flat block, this many times the square's side wide and tall.
+BLOCK_LENGTH, BLOCK_THICKNESS = 3.0, 0.6
 
 
 def _check(p: dict) -> None:
@@ -80,11 +83,12 @@ def _truth(p: dict, states: np.ndarray, size: int) -> dict:
     return {"weight_y_px": _weight_y(p, states[:, 0], size)}
 
 
-def _draw(canvas: Canvas, p: dict, y: np.ndarray) -> None:
+def _draw(canvas: Canvas, p: dict, y: np.ndarray, look: Look) -> None:
     size = canvas.width
     cx, ceiling, scale = geometry(p, size)
     wy = _weight_y(p, y[0], size)
     half = p["weight_m"] * scale / 2
+    wide, half = (half * BLOCK_LENGTH, half * BLOCK_THICKNESS) if look.rod else (half, half)
     top, bottom = ceiling, wy - half
     length = bottom - top
     lead = COIL_LEAD * length
@@ -92,9 +96,10 @@ def _draw(canvas: Canvas, p: dict, y: np.ndarray) -> None:
     ys = top + lead + (length - 2 * lead) * zig / zig[-1]
     xs = cx + COIL_HALF_WIDTH * size * np.where(zig % 2 == 0, 0.0, np.where(zig % 4 == 1, 1.0, -1.0))
     canvas.polyline(np.r_[cx, xs, cx], np.r_[top, ys, bottom + half * HOOK_DEPTH], WIRE_WIDTH * size,
-                    WIRE_COLOUR)
-    canvas.box(cx - CEILING_WIDTH * size / 2, -0.5, cx + CEILING_WIDTH * size / 2, ceiling, CEILING_COLOUR)
-    canvas.box(cx - half, wy - half, cx + half, wy + half, WEIGHT_COLOUR, corner=half * CORNER)
+                    look.fixture(WIRE_COLOUR))
+    canvas.box(cx - CEILING_WIDTH * size / 2, -0.5, cx + CEILING_WIDTH * size / 2, ceiling,
+               look.fixture(CEILING_COLOUR))
+    canvas.box(cx - wide, wy - half, cx + wide, wy + half, look.object(WEIGHT_COLOUR), corner=half * CORNER)
 
 
 SPRING = Rig(

@@ -10,7 +10,8 @@ Layout of ``out_dir/trial_000/`` (and ``trial_001/`` ...):
 ``truth.csv``
     Every frame: ``frame,time_s,dropped`` (0/1) and the rig's truth columns.
 ``rig.toml``
-    Rig name, trial, seed, fps, size, channels, camera options, physical parameters, initial state.
+    Rig name, trial, seed, fps, size, channels, look (the one this trial was drawn in), camera
+    options, physical parameters, initial state.
 ``dropped/frame_XXXX.png``
     The images the camera dropped, kept aside so that a fill can be scored against them.
 """
@@ -28,7 +29,8 @@ from ..errors import KinecastError
 from ..fileio import check_can_create
 from .camera import Camera
 from .catalog import get_rig
-from .render import RigTrial, background_for, check_settings, render_trial
+from .look import CLASSIC
+from .render import RigTrial, check_settings, render_trial
 
 FRAME_DIGITS = 4          # frame_0000.png; more digits when a trial has more frames
 DROPPED_DIR = "dropped"
@@ -56,7 +58,8 @@ def _toml_value(v) -> str:
 def rig_toml(trial: RigTrial) -> str:
     """The ``rig.toml`` text describing one trial."""
     head = {"rig": trial.name, "trial": trial.index, "seed": trial.seed, "fps": float(trial.fps),
-            "size": int(trial.frames.shape[1]), "frames": len(trial.times), "channels": trial.channels}
+            "size": int(trial.frames.shape[1]), "frames": len(trial.times), "channels": trial.channels,
+            "look": trial.look}
     lines = [NOTICE.rstrip("\n")] + [f"{k} = {_toml_value(v)}" for k, v in head.items()]
     for table, values in (("camera", trial.camera.as_dict()), ("physics", trial.params),
                           ("initial", trial.initial)):
@@ -119,12 +122,13 @@ def write_trial(trial: RigTrial, folder: Path) -> Path:
 
 def write_rig(name: str, out_dir: str | Path, trials: int = 1, frames: int = 60, seed: int = 0,
               size: int = 64, fps: float = 30.0, camera: Camera = Camera(), channels: str = "rgb",
-              params: dict | None = None, overwrite: bool = False, progress: bool = False) -> list[Path]:
+              params: dict | None = None, overwrite: bool = False, progress: bool = False,
+              look: str = CLASSIC) -> list[Path]:
     """Render trials of a rig and write them under ``out_dir`` (layout in the module docstring).
 
     Parameters
     ----------
-    name, trials, frames, seed, size, fps, camera, channels, params
+    name, trials, frames, seed, size, fps, camera, channels, params, look
         As for :func:`kinecast.rigs.render_trials` (the same settings give the same frames).
     out_dir : str or Path
         Folder to create. An existing non-empty folder is refused unless ``overwrite``.
@@ -146,15 +150,14 @@ def write_rig(name: str, out_dir: str | Path, trials: int = 1, frames: int = 60,
     ['trial_000', 'trial_001']
     """
     rig = get_rig(name)
-    check_settings(trials, frames, seed, size, fps, camera, channels)
+    check_settings(trials, frames, seed, size, fps, camera, channels, look)
     resolved = rig.resolve(params)
     out_dir = Path(out_dir)
     _check_out(out_dir, overwrite)
-    backdrop = background_for(seed, size, camera)
     written = []
     bar = tqdm(range(trials), desc=f"{name} trials", unit="trial",
                disable=None if progress and trials > 1 else True)  # None: shown on a terminal only
     for k in bar:
-        trial = render_trial(rig, resolved, k, frames, seed, size, fps, camera, channels, backdrop, progress)
+        trial = render_trial(rig, resolved, k, frames, seed, size, fps, camera, channels, look, progress)
         written.append(write_trial(trial, out_dir / f"trial_{k:03d}"))
     return written

@@ -1,9 +1,12 @@
 """Simple forecasts a learned model has to beat.
 
-Each baseline takes the context frames (K, C, H, W), K >= 2, float in [0, 1], and the number N of
-frames to forecast, and returns N frames (N, C, H, W). ``times`` is optional: the K context times
-followed by the N forecast times, in seconds. Without it the frames are evenly spaced; with it each
-step's displacement is scaled by the ratio of its interval to the last context interval.
+Every baseline has the same call: ``fn(context, n, times=None, background=None)``. It takes the
+context frames (K, C, H, W), K >= 2, float in [0, 1], and the number N of frames to forecast, and
+returns N frames (N, C, H, W). ``times`` is optional: the K context times followed by the N forecast
+times, in seconds. Without it the frames are evenly spaced; with it each step's displacement is
+scaled by the ratio of its interval to the last context interval. ``background`` is the static
+background (C, H, W) where known (None: the per-pixel median of the context); baselines that do not
+separate the object from the background ignore it.
 
 Examples
 --------
@@ -61,7 +64,36 @@ def _check(context, n: int, times) -> tuple[np.ndarray, np.ndarray]:
     return ctx, dt[k - 1:] / dt[k - 2]
 
 
-def persistence(context, n: int, times=None) -> np.ndarray:
+def _background(ctx: np.ndarray, background) -> np.ndarray:
+    """The caller's static background (checked against the frames), else the context's median."""
+    if background is None:
+        return median_background(ctx)
+    bg = np.asarray(background, np.float32)
+    if bg.shape != ctx.shape[1:]:
+        raise KinecastError("background", f"shape {bg.shape} does not match frames {ctx.shape[1:]}")
+    return bg
+
+
+def background_only(context, n: int, times=None, background=None) -> np.ndarray:
+    """Every forecast frame is the static background: a forecast that knows nothing of the object.
+
+    On a scene with one small object this scores well against persistence (which pays twice: the
+    object missing where it is and drawn where it was), so a model has to beat it before its MSE
+    means anything.
+
+    Parameters
+    ----------
+    context : array (K, C, H, W)
+    n : int
+    times : ignored apart from validation
+    background : array (C, H, W) or None
+        The static background; None uses the per-pixel median of the context.
+    """
+    ctx, _ = _check(context, n, times)
+    return np.repeat(_background(ctx, background)[None], int(n), axis=0)
+
+
+def persistence(context, n: int, times=None, background=None) -> np.ndarray:
     """Repeat the last context frame ``n`` times.
 
     Parameters
@@ -69,6 +101,7 @@ def persistence(context, n: int, times=None) -> np.ndarray:
     context : array (K, C, H, W)
     n : int
     times : ignored apart from validation (a still frame does not depend on time)
+    background : ignored (the common baseline call)
     """
     ctx, _ = _check(context, n, times)
     return np.repeat(ctx[-1:], int(n), axis=0)
@@ -109,7 +142,7 @@ def constant_velocity(context, n: int, times=None, background=None,
     ndarray (N, C, H, W)
     """
     ctx, scale = _check(context, n, times)
-    bg = median_background(ctx) if background is None else np.asarray(background, np.float32)
+    bg = _background(ctx, background)
     track = centroid_track(ctx[-2:], bg, threshold)
     if not np.all(np.isfinite(track)):
         return persistence(ctx, n)
@@ -157,7 +190,7 @@ def farneback_flow(frame_a, frame_b) -> np.ndarray:
     return np.ascontiguousarray(flow.transpose(2, 0, 1))
 
 
-def flow_warp(context, n: int, times=None) -> np.ndarray:
+def flow_warp(context, n: int, times=None, background=None) -> np.ndarray:
     """Advance the last frame along the Farnebäck flow between the last two context frames.
 
     The flow is measured on 8-bit grey versions of the last two frames. Each forecast step moves
@@ -172,6 +205,7 @@ def flow_warp(context, n: int, times=None) -> np.ndarray:
     context : array (K, C, H, W)
     n : int
     times : array (K + N,) or None
+    background : ignored (the common baseline call)
 
     Returns
     -------

@@ -1,7 +1,7 @@
 """``kinecast score``: score a run's forecast of held-out frames, with baselines, or any two frame sources.
 
-Writes to DIR: ``per_frame.csv`` (one row per method and frame), ``summary.json`` (every metric per
-method, valid horizons, calibration, periods), ``metrics.png`` (each metric against the horizon for
+Writes to DIR: ``per_frame.csv`` (one row per method and frame), ``summary.json`` (the verdict, every
+metric per method, valid and object horizons, calibration, periods), ``metrics.png`` (each metric against the horizon for
 all methods), and for a run ``forecast.mp4`` + ``forecast_sheet.png`` (truth | model | error | spread).
 """
 
@@ -18,7 +18,7 @@ from ..fileio import check_can_create, write_text
 
 CAUTION = ("Scores compare statistical extrapolations with held-out frames of this recording; they are "
            "not measurements. Not for safety-critical control; follow your lab's own safety rules.")
-METRICS = ("mse", "mae", "psnr", "ssim", "position_error_px")
+METRICS = ("mse", "mae", "psnr", "ssim", "object_ssim", "position_error_px", "matched_error_px")
 
 
 def configure(parser) -> None:
@@ -57,8 +57,10 @@ def write_scores(out: Path, result: dict, cfg, extra: dict) -> None:
         for i, t in enumerate(times):
             rows.append(f"{method},{i},{t:.6f}," + ",".join(f"{per[m][i]:.6g}" for m in METRICS))
     write_text(out / "per_frame.csv", "\n".join(rows) + "\n")
-    summary = {"caution": CAUTION, "frames_scored": int(len(times)), "methods": result["summary"],
-               "ssim_threshold": cfg.score.ssim_threshold, **extra}
+    summary = {"caution": CAUTION, **({"verdict": result["verdict"]} if "verdict" in result else {}),
+               "frames_scored": int(len(times)), "methods": result["summary"],
+               "ssim_threshold": cfg.score.ssim_threshold,
+               "position_threshold_px": cfg.score.position_threshold_px, **extra}
     for key in ("periods",):
         if key in result:
             summary[key] = result[key]
@@ -67,18 +69,20 @@ def write_scores(out: Path, result: dict, cfg, extra: dict) -> None:
         summary["band_coverage_per_frame"] = [None if not np.isfinite(c) else round(float(c), 4)
                                               for c in result["coverage"]]
     write_text(out / "summary.json", json.dumps(_finite(summary), indent=2) + "\n")
-    metric_curves(result["per_frame"], times, out / "metrics.png", threshold=cfg.score.ssim_threshold,
-                  overwrite=True)
+    shown = {method: {m: per[m] for m in METRICS} for method, per in result["per_frame"].items()}
+    metric_curves(shown, times, out / "metrics.png", threshold=cfg.score.ssim_threshold, overwrite=True)
 
 
 def table(result: dict) -> str:
     """The summary as a markdown table (printed and shown in the report)."""
-    head = "| method | mean MSE | mean SSIM | mean PSNR (dB) | position error (px) | valid horizon |"
-    lines = [head, "|---|---|---|---|---|---|"]
+    head = ("| method | mean MSE | mean SSIM | mean PSNR (dB) | position error (px) | valid horizon "
+            "(object SSIM) | object horizon |")
+    lines = [head, "|---|---|---|---|---|---|---|"]
     for method, s in result["summary"].items():
         lines.append(f"| {method} | {s['mean_mse']:.4g} | {s['mean_ssim']:.3f} | {s['mean_psnr']:.1f} | "
                      f"{s['mean_position_error_px']:.2f} | {s['valid_horizon_frames']} frames "
-                     f"({s['valid_horizon_s']:.2f} s) |")
+                     f"({s['valid_horizon_s']:.2f} s) | {s['object_horizon_frames']} frames "
+                     f"({s['object_horizon_s']:.2f} s) |")
     return "\n".join(lines)
 
 
@@ -131,6 +135,7 @@ def _run_model(args, cfg, out: Path) -> int:
     from ..forecast.render import comparison_columns, contact_sheet, panel_frames, write_frames
     from ..train.checkpoint import load_run
     from .evaluate import evaluate, holdout_split
+    from .verdict import verdict
 
     sets = [f'score.holdout="{args.holdout}"'] if args.holdout else []
     sets += [f"score.context={args.context}"] if args.context is not None else []
@@ -153,6 +158,7 @@ def _run_model(args, cfg, out: Path) -> int:
         m2, c2 = load_run(other, device)
         others[Path(other).name or other] = (m2, c2)
     result = evaluate(model, run_cfg, rec, cond_start, first, n, samples, others, device)
+    result["verdict"] = verdict({"all": result["summary"]})
     write_scores(out, result, run_cfg, {"run": str(args.run), "recording": str(args.path),
                                         "holdout": holdout, "context_frames": first - cond_start,
                                         "samples": samples})
@@ -163,6 +169,7 @@ def _run_model(args, cfg, out: Path) -> int:
     write_frames(panels, out / "forecast.mp4", 1.0 / rec.median_interval, overwrite=True)
     contact_sheet(panels, result["times"], run_cfg.forecast.contact_every, out / "forecast_sheet.png",
                   overwrite=True, label=False)
+    print(f"verdict ({result['verdict']['level']}): {result['verdict']['text']}\n")
     print(table(result))
     p = result["periods"]
     print(f"dominant period: truth {p['truth_track_s']:.3f} s, model track {p['model_track_s']:.3f} s, "

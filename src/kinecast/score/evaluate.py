@@ -14,11 +14,17 @@ import numpy as np
 from ..config import Config
 from ..errors import KinecastError
 from ..frames import Recording
-from .baselines import constant_velocity, flow_warp, persistence
-from .metrics import band_coverage, frame_metrics, valid_horizon
-from .tracks import centroid_track, dominant_period, track_period
+from .baselines import background_only, constant_velocity, flow_warp, persistence
+from .metrics import band_coverage, frame_metrics, leading_run, object_region, ssim
+from .tracks import centroid_track, dominant_period, median_background, object_errors, track_period
 
-BASELINES = {"persistence": persistence, "constant_velocity": constant_velocity, "flow_warp": flow_warp}
+# Every baseline is called as fn(context, n, times, background=...) (see baselines.py).
+BASELINES = {"background_only": background_only, "persistence": persistence,
+             "constant_velocity": constant_velocity, "flow_warp": flow_warp}
+# Per-frame scores averaged into the summary as mean_<name>; the other per-frame arrays are object
+# counts, summarised as shares.
+MEAN_KEYS = ("mse", "mae", "psnr", "ssim", "object_ssim", "position_error_px", "matched_error_px")
+COUNT_KEYS = ("true_objects", "missed_objects", "spurious_objects")
 
 
 def holdout_split(rec: Recording, holdout: str, context: int) -> tuple[int, int]:
@@ -37,34 +43,74 @@ def holdout_split(rec: Recording, holdout: str, context: int) -> tuple[int, int]
     return start, start - context
 
 
-def _summary_of(metrics: dict[str, np.ndarray], present: np.ndarray, times: np.ndarray, origin: float,
-                cfg: Config) -> dict:
-    """Means over the scored frames (infinite PSNR of exact frames left out) and the valid horizon.
+def _horizon(good: np.ndarray, judged: np.ndarray, times: np.ndarray, origin: float) -> tuple[int, float]:
+    """Forecast frames (and seconds) up to the first judged frame that is not good.
 
-    Frames without truth neither extend nor end the valid horizon: it is measured on the present
-    frames and reported in forecast frames up to the first present frame below the threshold.
+    Frames that are not judged neither extend nor end the horizon; with none judged it is 0.
     """
-    out = {f"mean_{k}": float(np.nanmean(np.where(np.isinf(v), np.nan, v))) if np.isfinite(v).any()
-           else math.nan for k, v in metrics.items()}
-    idx = np.flatnonzero(present)
+    idx = np.flatnonzero(judged)
     if len(idx) == 0:
-        return {**out, "valid_horizon_frames": 0, "valid_horizon_s": 0.0}
-    n_ok, _ = valid_horizon(metrics["ssim"][idx], times[idx], cfg.score.ssim_threshold, origin)
+        return 0, 0.0
+    n_ok, _ = leading_run(good[idx], times[idx], origin)
     frames = len(times) if n_ok == len(idx) else int(idx[n_ok])
-    seconds = float(times[frames - 1] - origin) if frames else 0.0
+    return frames, float(times[frames - 1] - origin) if frames else 0.0
+
+
+def summarize(per_frame: dict[str, np.ndarray], present: np.ndarray, times: np.ndarray, origin: float,
+              cfg: Config) -> dict:
+    """Summary of one method's per-frame scores (as from :func:`score_prediction`).
+
+    Means over the scored frames (infinite PSNR of exact frames left out), shares of missed and
+    spurious objects, and two horizons in forecast frames and seconds:
+
+    * ``valid_horizon``: SSIM over the object region (``object_ssim``) at or above
+      ``score.ssim_threshold``; frames where neither truth nor prediction differs from the
+      background (NaN) are not judged.
+    * ``object_horizon``: object position error at most ``score.position_threshold_px``; a frame
+      whose prediction shows no object (NaN error) ends it, frames whose truth shows none are not
+      judged.
+
+    Frames without truth neither extend nor end a horizon. Pass slices of the arrays to summarise
+    the first frames of a forecast only.
+    """
+    out = {}
+    for k in MEAN_KEYS:
+        v = np.where(np.isinf(per_frame[k]), np.nan, per_frame[k])
+        out[f"mean_{k}"] = float(np.nanmean(v)) if np.isfinite(v).any() else math.nan
+    true = np.nansum(per_frame["true_objects"])
+    for k in ("missed", "spurious"):
+        out[f"{k}_object_share"] = float(np.nansum(per_frame[f"{k}_objects"]) / true) if true else math.nan
+    fg_ssim, error = per_frame["object_ssim"], per_frame["position_error_px"]
+    frames, seconds = _horizon(fg_ssim >= cfg.score.ssim_threshold, present & np.isfinite(fg_ssim),
+                               times, origin)
     out.update(valid_horizon_frames=frames, valid_horizon_s=seconds)
+    seen = present & (np.nan_to_num(per_frame["true_objects"]) > 0)
+    frames, seconds = _horizon(error <= cfg.score.position_threshold_px, seen, times, origin)
+    out.update(object_horizon_frames=frames, object_horizon_s=seconds)
     return out
 
 
 def score_prediction(pred: np.ndarray, truth: np.ndarray, present: np.ndarray, times: np.ndarray,
                      origin: float, cfg: Config, background=None) -> tuple[dict, dict]:
-    """Per-frame metrics (NaN where truth is missing) and their summary for one method."""
-    metrics = {k: np.full(len(times), np.nan) for k in ("mse", "mae", "psnr", "ssim", "position_error_px")}
+    """Per-frame scores (NaN where truth is missing) and their :func:`summarize` for one method.
+
+    Per frame: ``mse``, ``mae``, ``psnr``, ``ssim`` (whole frame), ``object_ssim`` (SSIM over the
+    ``object_region``), ``position_error_px`` (centroid of all foreground), ``matched_error_px``
+    (mean over objects matched one to one, ``tracks.object_errors``) and the object counts
+    ``true_objects``, ``missed_objects``, ``spurious_objects``. ``background`` None uses the
+    per-pixel median of the present true frames for every object measure.
+    """
+    per_frame = {k: np.full(len(times), np.nan) for k in MEAN_KEYS + COUNT_KEYS}
     if present.any():
-        got = frame_metrics(pred[present], truth[present], background, window=cfg.score.ssim_window)
+        p, t = pred[present], truth[present]
+        bg = median_background(t) if background is None else background
+        got = frame_metrics(p, t, bg, window=cfg.score.ssim_window)
+        got["object_ssim"] = ssim(p, t, cfg.score.ssim_window, region=object_region(p, t, bg))
+        objects = object_errors(p, t, bg)
+        got.update({k: objects[k] for k in ("matched_error_px",) + COUNT_KEYS})
         for k, v in got.items():
-            metrics[k][present] = v
-    return metrics, _summary_of(metrics, present, times, origin, cfg)
+            per_frame[k][present] = v
+    return per_frame, summarize(per_frame, present, times, origin, cfg)
 
 
 def periods(frames: np.ndarray, times: np.ndarray, background) -> float:
@@ -77,9 +123,10 @@ def evaluate(model, cfg: Config, rec: Recording, cond_start: int, first: int, n:
     """Forecast slots ``first .. first+n-1`` of ``rec`` from the context ``cond_start .. first-1``.
 
     Scores the model, every baseline and any ``others`` ({name: (model, cfg)}) on the present
-    held-out frames. Returns a dict with ``times``, ``per_frame`` {method: {metric: (N,)}},
-    ``summary`` {method: {...}}, ``periods``, ``coverage`` (per frame, with samples > 1) and the
-    model's ``forecast`` (mean frames), ``truth`` and ``present`` arrays.
+    held-out frames. Returns a dict with ``times``, ``origin`` (time of the last context frame),
+    ``per_frame`` {method: {metric: (N,)}}, ``summary`` {method: {...}}, ``periods``, ``coverage``
+    (per frame, with samples > 1) and the model's ``forecast`` (mean frames), ``truth`` and
+    ``present`` arrays.
     """
     from ..forecast.core import predict_from
 
@@ -101,13 +148,13 @@ def evaluate(model, cfg: Config, rec: Recording, cond_start: int, first: int, n:
         extra[name] = fc
     ctx_times = np.concatenate([rec.times[cond_start:first], times])
     for name, fn in BASELINES.items():
-        kwargs = {"background": background} if name == "constant_velocity" and background is not None else {}
-        preds[name] = fn(ctx, n, ctx_times, **kwargs)
+        preds[name] = fn(ctx, n, ctx_times, background=background)
     per_frame, summary = {}, {}
     for name, pred in preds.items():
         per_frame[name], summary[name] = score_prediction(pred, truth, present, times, origin, cfg, background)
-    result = {"times": times, "per_frame": per_frame, "summary": summary, "forecast": preds["model"],
-              "truth": truth, "present": present, "samples": extra["model"].samples}
+    result = {"times": times, "origin": origin, "per_frame": per_frame, "summary": summary,
+              "forecast": preds["model"], "truth": truth, "present": present,
+              "samples": extra["model"].samples}
     if samples > 1 and present.any():
         cov = np.full(n, np.nan)
         cov[present] = band_coverage(extra["model"].samples[:, present], truth[present], cfg.score.band)

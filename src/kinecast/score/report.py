@@ -73,15 +73,20 @@ def _scores_section(folder: Path) -> str:
         methods = summary["methods"]
     except (ValueError, KeyError) as exc:
         raise KinecastError(summary_path, f"not a kinecast scores summary ({exc})") from None
-    cols = ["mean_mse", "mean_mae", "mean_psnr", "mean_ssim", "mean_position_error_px",
-            "valid_horizon_frames", "valid_horizon_s", "mean_band_coverage"]
+    cols = ["mean_mse", "mean_mae", "mean_psnr", "mean_ssim", "mean_object_ssim", "mean_position_error_px",
+            "valid_horizon_frames", "valid_horizon_s", "object_horizon_frames", "object_horizon_s",
+            "mean_band_coverage"]
     head = "".join(f"<th>{c.replace('mean_', '').replace('_', ' ')}</th>" for c in cols)
     rows = "".join(f"<tr><td>{html.escape(m)}</td>" + "".join(f"<td>{_fmt(s.get(c))}</td>" for c in cols)
                    + "</tr>" for m, s in methods.items())
     facts = {k: summary.get(k) for k in ("recording", "holdout", "context_frames", "samples",
-                                         "frames_scored", "ssim_threshold", "band") if k in summary}
+                                         "frames_scored", "ssim_threshold", "position_threshold_px",
+                                         "band") if k in summary}
     periods = summary.get("periods", {})
+    verdict = summary.get("verdict") or {}
     parts = [f"<h2>Scores: {html.escape(str(folder))}</h2>",
+             f"<p class='caution'><strong>Verdict ({html.escape(str(verdict['level']))}):</strong> "
+             f"{html.escape(str(verdict['text']))}</p>" if "text" in verdict and "level" in verdict else "",
              "<p>" + "; ".join(f"{k.replace('_', ' ')}: {_fmt(v)}" for k, v in facts.items()) + "</p>",
              f"<table><tr><th>method</th>{head}</tr>{rows}</table>"]
     if periods:

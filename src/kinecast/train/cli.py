@@ -52,4 +52,8 @@ def run(args, cfg) -> int:
     if summary:
         print(f"run written to {out}: {summary['steps']} steps in {summary['elapsed_s']:.0f} s, "
               f"best validation MSE {summary['best_val_mse']:.4g} ({summary['stop_reason']})")
+        verdict = summary.get("verdict") or {}
+        if verdict:
+            level = {"failed": "FAILED", "weak": "weak"}.get(verdict["level"], verdict["level"])
+            print(f"verdict on the held-out frames ({level}): {verdict['text']}")
     return 0

@@ -87,6 +87,8 @@ class Batch:
     times: torch.Tensor  # [W] seconds since the window start (batch mean, for one shared ODE solve)
     mask: torch.Tensor  # [B, W] True where a frame is present
     own_times: torch.Tensor  # [B, W] each window's own seconds since its start
+    which: tuple = ()  # recording index of each window
+    starts: tuple = ()  # first frame of each window in its recording
 
 
 class WindowSampler:
@@ -135,4 +137,5 @@ class WindowSampler:
         rel = np.stack([self.recs[i].times[s:s + window] - self.recs[i].times[s]
                         for i, s in zip(which, starts)])
         mask = np.stack([~self.recs[i].missing[s:s + window] for i, s in zip(which, starts)])
-        return Batch(frames, torch.from_numpy(rel.mean(axis=0)), torch.from_numpy(mask), torch.from_numpy(rel))
+        return Batch(frames, torch.from_numpy(rel.mean(axis=0)), torch.from_numpy(mask), torch.from_numpy(rel),
+                     tuple(which), tuple(starts))

@@ -22,7 +22,9 @@ from .. import config as cfgmod
 from ..errors import KinecastError
 from ..fileio import check_can_create
 from ..model import build_model, to_model_time
+from ..model.staged import autoencoder_terms, dynamics_terms
 from . import checkpoint as ck
+from . import stages as S
 from . import distributed as D
 from .data import WindowSampler, expand_paths, load_recordings, median_background, split_train_val
 from .schedule import Curriculum, kl_weight, learning_rate, progress
@@ -50,8 +52,12 @@ def _prepare_folder(run: Path, paths: list[Path], resume: bool, overwrite: bool)
     check_can_create(run)
 
 
-def validate(model, sampler: WindowSampler | None, window: int, cfg) -> float:
-    """Mean forecast MSE over held-out windows of ``window`` frames (present frames only)."""
+def validate(model, sampler: WindowSampler | None, window: int, cfg, background_only: bool = False) -> float:
+    """Mean forecast MSE over held-out windows of ``window`` frames (present frames only).
+
+    ``background_only`` scores the bare static background instead of the model's forecast (the
+    floor a model that draws nothing reaches).
+    """
     if sampler is None:
         return math.nan
     batch = sampler.fixed(window, VAL_WINDOWS)
@@ -63,12 +69,42 @@ def validate(model, sampler: WindowSampler | None, window: int, cfg) -> float:
     with torch.no_grad():  # one window at a time, at its own times: exact, and memory stays bounded
         for frames, times, mask in zip(batch.frames, batch.own_times, batch.mask):
             frames = frames[None].to(dev)
-            pred, _ = model.rollout(frames[:, :k], to_model_time(times, cfg).to(dev), samples=1,
-                                    mean_weights=True)
-            err = ((pred[0, 0] - frames[0]) ** 2).mean(dim=(1, 2, 3))[k:]
+            if background_only:
+                pred = model.background.expand_as(frames[0])
+            else:
+                pred = model.rollout(frames[:, :k], to_model_time(times, cfg).to(dev), samples=1,
+                                     mean_weights=True)[0][0, 0]
+            err = ((pred - frames[0]) ** 2).mean(dim=(1, 2, 3))[k:]
             m = mask[k:].to(dev).float()
             total, count = total + float((err * m).sum()), count + float(m.sum())
     return total / count if count else math.nan
+
+
+def _validate_and_keep(model, val_sampler, val_window: int, cfg, cur: Curriculum, run: Path, step: int) -> float:
+    """Validate; write the weights as the run's best when they are."""
+    model.eval()
+    val = validate(model, val_sampler, val_window, cfg)
+    model.train()
+    if cur.update(val):
+        ck.save_tensors(run / ck.WEIGHTS, model.state_dict(), {"step": step, "val_mse": val})
+    return val
+
+
+def _judge(model, run: Path, recs, cfg, window: int, device) -> dict:
+    """The verdict on ``recs`` (held-out trials) for the run's best weights (see score.verdict)."""
+    from ..score.verdict import judge_recordings
+
+    best = copy.deepcopy(model)
+    tensors, _ = ck.load_tensors(run / ck.WEIGHTS)
+    best.load_state_dict(tensors)
+    judged = judge_recordings(best.eval(), cfg, recs, window, device)
+    keep = ("level", "ok", "text", "beats", "mse_ratio", "judged_at")
+    out = {k: judged[k] for k in keep if k in judged}
+    out["judged_on"] = [str(r.source) for r in recs]
+    facts = ("mean_mse", "mean_position_error_px", "object_horizon_frames")
+    out["scores"] = {label: {m: {f: v[f] for f in facts if f in v} for m, v in methods.items()}
+                     for label, methods in judged["summaries"].items()}
+    return out
 
 
 def fit(paths, out, cfg: cfgmod.Config | None = None, *, resume: bool = False, overwrite: bool = False,
@@ -140,6 +176,10 @@ def fit(paths, out, cfg: cfgmod.Config | None = None, *, resume: bool = False, o
     opt = torch.optim.Adam(model.parameters(), lr=cfg.train.lr)
     cur = Curriculum(min(cfg.train.window_start, longest), longest, cfg.train.window_growth,
                      cfg.train.patience)
+    stage_state = S.StageState()
+    dyn_longest, period = S.dynamics_window(train_recs, background, cfg, sampler.longest_window())
+    dyn_longest = max(dyn_longest, k + 1)
+    targets = None  # encoded trajectories, made when the dynamics stage starts
     step, elapsed_before, faults, lr_scale, rows = 0, 0.0, 0, 1.0, []
     if resume:
         tensors, meta = resumed
@@ -149,6 +189,7 @@ def fit(paths, out, cfg: cfgmod.Config | None = None, *, resume: bool = False, o
         torch.set_rng_state(tensors["rng.torch"])
         sampler.rng.bit_generator.state = meta["sampler_rng"]
         cur = Curriculum(**meta["curriculum"])
+        stage_state = S.StageState(**meta.get("stages", {}))
         step, elapsed_before = meta["step"], meta["elapsed"]
         faults, lr_scale = meta["faults"], meta["lr_scale"]
         rows = [r for r in ck.read_log(run) if r.get("step", 0) <= step]
@@ -172,7 +213,8 @@ def fit(paths, out, cfg: cfgmod.Config | None = None, *, resume: bool = False, o
         tensors.update(opt_t)
         tensors["rng.torch"] = torch.get_rng_state()
         meta = {"step": step, "elapsed": elapsed_before + (time.time() - t0), "faults": faults,
-                "lr_scale": lr_scale, "curriculum": cur.state(), "optimizer": opt_meta,
+                "lr_scale": lr_scale, "curriculum": cur.state(), "stages": stage_state.state(),
+                "optimizer": opt_meta,
                 "sampler_rng": sampler.rng.bit_generator.state, "paths": [str(p) for p in paths],
                 "budget": cfg.train.budget, "steps": cfg.train.steps}
         # log first: a kill between the two writes then leaves extra rows (dropped on resume, which
@@ -190,25 +232,71 @@ def fit(paths, out, cfg: cfgmod.Config | None = None, *, resume: bool = False, o
     bar = tqdm(total=steps_total or int(budget_s), disable=not (show_progress and ctx.main),
                unit="step" if steps_total else "s", dynamic_ncols=True, initial=step if steps_total else 0)
     val = math.nan
+    bg_val = validate(model, val_sampler, val_window, cfg, background_only=True) if background is not None else math.nan
     stop_reason = "budget"
+    stage = None
     while True:
         elapsed = elapsed_before + time.time() - t0
         prog = progress(step, elapsed, steps_total, budget_s)
         stop = (steps_total and step >= steps_total) or (budget_s and elapsed >= budget_s) or cur.done
-        cur.follow(min(cfg.train.window_start, longest), prog, cfg.train.window_schedule)
+        new_stage, local = S.stage_at(prog, cfg.train)
+        if new_stage == S.JOINT:
+            cur.follow(min(cfg.train.window_start, longest), prog, cfg.train.window_schedule)
         stop, cur.window = D.sync_decision(ctx, bool(stop), cur.window)
         if stop:
             stop_reason = "early stop: validation stalled at the longest window" if cur.done else "budget"
             break
-        lr = learning_rate(cfg.train, step, prog, lr_scale)
+        if new_stage != stage:
+            stage = new_stage
+            S.set_trainable(model, stage)
+            if stage == S.DYNAMICS and not stage_state.escaped:
+                tqdm.write("kinecast: warning: the position encoder never clearly beat the bare background "
+                           f"({stage_state.restarts} restarts); the motion may not be learned")
+            if stage == S.DYNAMICS:
+                targets = S.EncodedTrajectories(model, sampler.frames, ctx.device)
+            if (stage == S.JOINT and cfg.train.recipe == "staged" and step > 0 and ctx.main
+                    and not stage_state.joint_checked):
+                stage_state.joint_checked = True  # the after-dynamics weights compete for "best"
+                val = _validate_and_keep(model, val_sampler, val_window, cfg, cur, run, step)
+                rows.append({"step": step, "time_s": round(elapsed, 3), "val_mse": val, "window": cur.window,
+                             "stage": S.NUMBER[stage]})
+        if stage == S.POSITIONS and stage_state.due_restart(local, cfg.train.escape_deadline):
+            stage_state = S.StageState(restarts=stage_state.restarts + 1)
+            S.restart_positions(model, opt, cfg, channels,
+                                cfg.train.seed + S.RESTART_SEED_STRIDE * stage_state.restarts)
+            tqdm.write(f"kinecast: the position encoder had not found the moving object by step {step}: "
+                       f"restart {stage_state.restarts} from a new seed")
+        lr = learning_rate(cfg.train, step, local if cfg.train.recipe == "staged" else prog, lr_scale)
+        if cfg.train.recipe == "staged" and stage != S.DYNAMICS:
+            peak = cfg.train.positions_lr if stage == S.POSITIONS else cfg.train.joint_lr
+            lr *= peak / cfg.train.lr if cfg.train.lr > 0 else 0.0
         beta = kl_weight(cfg.train, prog)
         for g in opt.param_groups:
             g["lr"] = lr
-        batch = sampler.draw(cfg.train.batch, cur.window)
-        t = to_model_time(batch.times, cfg).to(ctx.device)
-        terms = net(batch.frames.to(ctx.device), t, n_total_frames=total_frames, beta=beta,
-                    mask=batch.mask.to(ctx.device), decode_frames=cfg.train.decode_frames,
-                    agreement_frames=cfg.train.agreement_frames)
+        if stage == S.POSITIONS:
+            window = min(cfg.train.window_start, longest)
+            batch = sampler.draw(cfg.train.batch, window)
+            frames = batch.frames.flatten(0, 1)[batch.mask.flatten()].to(ctx.device)
+            beta = cfg.train.positions_kl * local if stage_state.escaped else 0.0
+            terms = autoencoder_terms(model, frames, sample=stage_state.escaped, beta=beta)
+            if stage_state.observe(float(terms["mse"]), float(terms["bg_mse"]), cfg.train.escape_ratio, step):
+                tqdm.write(f"kinecast: step {step}: the position encoder found the moving object "
+                           f"(reconstruction error {stage_state.ema_rec:.2g}, bare background "
+                           f"{stage_state.ema_bg:.2g}); sampling from now on")
+        elif stage == S.DYNAMICS:
+            window = S.grow(min(cfg.train.window_start, dyn_longest), dyn_longest, local)
+            batch = sampler.draw(cfg.train.batch, window)
+            mean, var = targets.gather(batch.which, batch.starts, window)
+            t = to_model_time(batch.times, cfg).to(ctx.device)
+            terms = dynamics_terms(model, batch.frames[:, :k].to(ctx.device), t, mean, var,
+                                   batch.mask.to(ctx.device), total_frames, 1.0, cfg.train.velocity_aux)
+        else:
+            window = cur.window
+            batch = sampler.draw(cfg.train.batch, window)
+            t = to_model_time(batch.times, cfg).to(ctx.device)
+            terms = net(batch.frames.to(ctx.device), t, n_total_frames=total_frames, beta=beta,
+                        mask=batch.mask.to(ctx.device), decode_frames=cfg.train.decode_frames,
+                        agreement_frames=cfg.train.agreement_frames)
         loss = terms["loss"]
         if fault_hook is not None and fault_hook(step):
             loss = loss * float("nan")
@@ -235,24 +323,23 @@ def fit(paths, out, cfg: cfgmod.Config | None = None, *, resume: bool = False, o
         else:
             bar.n = min(int(elapsed), int(budget_s))
         if step % LOG_EVERY == 0 or step == 1:
-            row = {"step": step, "time_s": round(elapsed, 3), "lr": lr, "beta": beta, "window": cur.window}
+            row = {"step": step, "time_s": round(elapsed, 3), "lr": lr, "beta": beta, "window": window,
+                   "stage": S.NUMBER[stage]}
             row.update({k_: float(v.detach()) for k_, v in terms.items() if torch.is_tensor(v) and v.dim() == 0})
             rows.append(row)
         if step % cfg.train.val_every == 0:
-            if ctx.main:
-                model.eval()
-                val = validate(model, val_sampler, val_window, cfg)
-                model.train()
-                rows.append({"step": step, "time_s": round(elapsed, 3), "val_mse": val, "window": cur.window})
-                if cur.update(val):
-                    ck.save_tensors(run / ck.WEIGHTS, model.state_dict(), {"step": step, "val_mse": val})
+            if ctx.main and stage == S.JOINT:
+                val = _validate_and_keep(model, val_sampler, val_window, cfg, cur, run, step)
+                rows.append({"step": step, "time_s": round(elapsed, 3), "val_mse": val, "window": cur.window,
+                             "stage": S.NUMBER[stage]})
+                if cur.done and not cur.best < bg_val:  # never stop a run that draws no better than nothing
+                    cur.done = False
             good = (copy.deepcopy(model.state_dict()), copy.deepcopy(opt.state_dict()))
         if ctx.main and step % cfg.train.checkpoint_every == 0:
             save_resume()
         left = (steps_total - step) if steps_total else max(0.0, budget_s - elapsed)
-        bar.set_postfix_str(f"loss {loss.item():.4g} nll {terms['nll'].item():.4g} "
-                            f"kl {(terms['kl_s0'] + terms['kl_v0']).item():.3g} val {val:.3g} "
-                            f"win {cur.window} left {left:.0f}{'' if steps_total else 's'}", refresh=False)
+        bar.set_postfix_str(f"{stage} loss {loss.item():.4g} val {val:.3g} win {cur.window} "
+                            f"left {left:.0f}{'' if steps_total else 's'}", refresh=False)
     bar.close()
 
     spread = D.replica_spread(ctx, model)
@@ -263,6 +350,7 @@ def fit(paths, out, cfg: cfgmod.Config | None = None, *, resume: bool = False, o
             ck.save_tensors(run / ck.WEIGHTS, model.state_dict(), {"step": step, "val_mse": val})
             cur.best = val if math.isfinite(val) else cur.best
         save_resume()
+        judged = _judge(model, run, val_recs or train_recs[-1:], cfg, longest, ctx.device)
         from ..plots import loss_curve
 
         loss_curve(rows, run / ck.LOSS_PLOT, overwrite=True)
@@ -272,7 +360,10 @@ def fit(paths, out, cfg: cfgmod.Config | None = None, *, resume: bool = False, o
                    "recordings": [str(p) for p in paths], "train_recordings": len(train_recs),
                    "val_recordings": len(val_recs), "time_scale": cfg.solver.time_scale,
                    "world_size": ctx.world, "replica_spread": spread, "device": str(ctx.device),
-                   "threads": torch.get_num_threads(),
+                   "threads": torch.get_num_threads(), "recipe": cfg.train.recipe,
+                   "positions_found": stage_state.escaped if cfg.train.recipe == "staged" else None,
+                   "positions_restarts": stage_state.restarts, "dynamics_window": dyn_longest,
+                   "tracked_period_s": period, "background_val_mse": bg_val, "verdict": judged,
                    "caution": "Forecasts are statistical extrapolations, not measurements; "
                               "not for safety-critical control."}
         ck.write_summary(run, summary)

@@ -1,0 +1,141 @@
+"""Keypoint position encoder and blob decoder: the latent position is K image coordinates.
+
+Encoder: a frame and its difference from the static background → a few conv layers at half
+resolution → K heat maps → a spatial softmax per map → K expected (x, y) positions in normalised
+image coordinates ([-1, 1] from the left/top edge to the right/bottom edge, pixel centres at
+``(2i + 1) / n − 1``). A small head on the pooled features gives each coordinate's log-variance.
+
+Decoder: a Gaussian blob of width ``blob_std`` at each keypoint, drawn on a half-resolution grid
+together with the background and the coordinate grid → dilated 3×3 convs (a receptive field of
+about half the frame, so an extended object such as a rod can be drawn around its keypoints) →
+sub-pixel output (pixel shuffle) to full resolution: residual logits over the background.
+
+Both are translation-equivariant by construction, which is why they place an object they have not
+seen at a given place correctly, where a dense head memorises the layouts of the training frames.
+
+References
+----------
+Levine, S., Finn, C., Darrell, T. and Abbeel, P. (2016). End-to-end training of deep visuomotor
+policies. JMLR 17 (the spatial softmax: expected image coordinates of a softmax over a feature map).
+Shi, W. et al. (2016). Real-time single image and video super-resolution using an efficient
+sub-pixel convolutional neural network. CVPR (pixel shuffle).
+
+Examples
+--------
+>>> enc = KeypointEncoder(1, 32, 16, 2)
+>>> m, lv = enc(torch.zeros(3, 1, 32, 32), torch.zeros(1, 32, 32))
+>>> m.shape, lv.shape
+(torch.Size([3, 4]), torch.Size([3, 4]))
+"""
+
+from __future__ import annotations
+
+import torch
+import torch.nn.functional as F
+from torch import nn
+
+from .convnets import INIT_LOGVAR, LOGVAR_MAX, LOGVAR_MIN, OUT_GAIN, Activation
+
+DILATIONS = (1, 2, 4)  # dilations of the decoder's 3×3 convs: receptive field ≈ 2·(1+2·Σd) px at full size
+UPSCALE = 2  # both nets work at 1/UPSCALE of the frame size (pixel shuffle back up in the decoder)
+
+__all__ = ["KeypointEncoder", "KeypointDecoder", "pixel_grid", "spatial_softmax", "draw_blobs"]
+
+
+def pixel_grid(n: int, device=None, dtype=torch.float32) -> torch.Tensor:
+    """Normalised coordinates of ``n`` pixel centres across [-1, 1]: ``(2i + 1) / n − 1``.
+
+    >>> pixel_grid(4).tolist()
+    [-0.75, -0.25, 0.25, 0.75]
+    """
+    return (2 * torch.arange(n, device=device, dtype=dtype) + 1) / n - 1
+
+
+def spatial_softmax(logits: torch.Tensor) -> torch.Tensor:
+    """Expected (x, y) of a softmax over each map: ``(B, K, H, W)`` → ``(B, K, 2)``.
+
+    x runs along W (left to right), y along H (top to bottom), in :func:`pixel_grid` units.
+    """
+    B, K, H, W = logits.shape
+    p = torch.softmax(logits.reshape(B, K, H * W), dim=-1).reshape(B, K, H, W)
+    x = (p.sum(dim=2) * pixel_grid(W, logits.device, logits.dtype)).sum(-1)
+    y = (p.sum(dim=3) * pixel_grid(H, logits.device, logits.dtype)).sum(-1)
+    return torch.stack([x, y], dim=-1)
+
+
+def draw_blobs(points: torch.Tensor, size: int, std: float) -> torch.Tensor:
+    """Unit-height Gaussian blobs: points ``(N, K, 2)`` (x, y normalised) → maps ``(N, K, size, size)``.
+
+    ``std`` is in normalised units (1.0 = half the frame width). Separable: the blob is the outer
+    product of a Gaussian in y and one in x.
+    """
+    g = pixel_grid(size, points.device, points.dtype)
+    gx = torch.exp(-0.5 * ((g - points[..., 0:1]) / std) ** 2)  # (N, K, W)
+    gy = torch.exp(-0.5 * ((g - points[..., 1:2]) / std) ** 2)  # (N, K, H)
+    return gy.unsqueeze(-1) * gx.unsqueeze(-2)
+
+
+def _half(size: int) -> int:
+    return max(2, size // UPSCALE)
+
+
+class KeypointEncoder(nn.Module):
+    """Frame (B, C, H, W) and background (C, H, W) → keypoint means and log-variances, each (B, 2K).
+
+    The output interleaves coordinates as ``[x1, y1, x2, y2, ...]``.
+    """
+
+    def __init__(self, channels: int, size: int, base: int, keypoints: int):
+        super().__init__()
+        c = max(8, base // 2)
+        self.size, self.half, self.k = size, _half(size), keypoints
+        self.trunk = nn.Sequential(
+            nn.Conv2d(2 * channels, c, 3, stride=UPSCALE, padding=1), Activation(),
+            nn.Conv2d(c, c, 3, padding=1), Activation(),
+            nn.Conv2d(c, c, 3, padding=2, dilation=2), Activation())
+        self.heat = nn.Conv2d(c, keypoints, 1)
+        self.logvar = nn.Linear(c, 2 * keypoints)
+        with torch.no_grad():
+            self.logvar.weight.zero_()
+            self.logvar.bias.fill_(INIT_LOGVAR)
+
+    def forward(self, x: torch.Tensor, background: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+        h = self.trunk(torch.cat([x, x - background.to(x)], dim=1))
+        points = spatial_softmax(self.heat(h))
+        logvar = self.logvar(h.mean(dim=(2, 3)))
+        return points.flatten(1), logvar.clamp(LOGVAR_MIN, LOGVAR_MAX)
+
+
+class KeypointDecoder(nn.Module):
+    """Keypoints (..., 2K) and background (C, H, W) → residual logits (..., C, size, size)."""
+
+    def __init__(self, keypoints: int, channels: int, size: int, base: int, blob_std: float):
+        super().__init__()
+        c = max(8, base // 2)
+        self.size, self.half, self.k, self.channels = size, _half(size), keypoints, channels
+        self.blob_std = float(blob_std)
+        layers: list[nn.Module] = []
+        c_in = keypoints + channels + 2
+        for d in DILATIONS:
+            layers += [nn.Conv2d(c_in, c, 3, padding=d, dilation=d), Activation()]
+            c_in = c
+        self.body = nn.Sequential(*layers)
+        self.out = nn.Conv2d(c, channels * UPSCALE * UPSCALE, 3, padding=1)
+        with torch.no_grad():
+            self.out.weight.mul_(OUT_GAIN)
+            self.out.bias.zero_()
+
+    def forward(self, s: torch.Tensor, background: torch.Tensor) -> torch.Tensor:
+        lead = s.shape[:-1]
+        pts = s.reshape(-1, self.k, 2)
+        n = pts.shape[0]
+        blobs = draw_blobs(pts, self.half, self.blob_std)
+        bg = F.interpolate(background[None].to(s), size=(self.half, self.half), mode="area")
+        g = pixel_grid(self.half, s.device, s.dtype)
+        grid = torch.stack([g.expand(self.half, -1), g[:, None].expand(-1, self.half)])[None]
+        x = torch.cat([blobs, bg.expand(n, -1, -1, -1), grid.expand(n, -1, -1, -1)], dim=1)
+        x = x.contiguous(memory_format=torch.channels_last)
+        h = F.pixel_shuffle(self.out(self.body(x)), UPSCALE)
+        if h.shape[-1] != self.size:  # odd sizes
+            h = F.interpolate(h, size=(self.size, self.size), mode="bilinear", align_corners=False)
+        return h.contiguous().view(*lead, *h.shape[1:])

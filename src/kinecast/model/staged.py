@@ -1,0 +1,123 @@
+"""Loss terms of the first two training stages: positions (a frame autoencoder) and dynamics on
+encoded trajectories. The third stage is the full ELBO, :meth:`LatentODE.forward`.
+
+Both functions take the model explicitly and return the same kind of dict as ``forward``: a
+``loss`` with gradients and detached terms for logging.
+
+*Positions.* Every frame is encoded to its latent position and decoded again over the static
+background. Deterministic (``sample=False``: the encoder's mean, no KL) until the reconstruction
+clearly beats the background alone — sampling from the first step drowns the small differences
+between frames in posterior noise and the decoder learns the mean frame — then sampled with a
+small KL weight so the encoder's variances say how sure it is of each coordinate.
+
+*Dynamics.* Encoder and decoder are frozen; the training frames' positions were encoded once
+(means m_t and variances σ²_t). From s0 ~ q(s0) and v0 ~ q(v0) (the velocity encoder) the field
+is integrated over a window and scored by the Gaussian log-density of the encoded means around
+the trajectory, each coordinate weighted by 1/σ²: coordinates the encoder does not use (σ² near
+the prior's 1) do not dominate. A finite-difference velocity from the first three encoded
+positions anchors v0 (second-order one-sided difference, a handbook formula).
+"""
+
+from __future__ import annotations
+
+import torch
+
+from .gauss import bernoulli_nll, gaussian_nll, kl_std_normal
+
+# Variance floor of the encoded positions in the dynamics loss, in (units per pixel)²: half a
+# pixel of the keypoint grid (2 / size per pixel). No position is trusted to better than that.
+VAR_FLOOR_PIXELS = 0.5
+
+
+def _pixel_nll(model, logits: torch.Tensor, frames: torch.Tensor) -> torch.Tensor:
+    if model.log_noise is None:
+        return bernoulli_nll(logits, frames)
+    return gaussian_nll(torch.sigmoid(logits), frames, model.log_noise.view(-1, 1, 1))
+
+
+def autoencoder_terms(model, frames: torch.Tensor, sample: bool, beta: float) -> dict:
+    """Frame autoencoder loss per pixel: frames [N, C, H, W] → position → frame.
+
+    Returns ``loss`` (NLL + beta·KL(q(s)‖N(0, I)) per pixel), ``nll``, ``kl_s0``, ``mse`` (of the
+    reconstruction) and ``bg_mse`` (of the background alone, for the escape test).
+    """
+    mean, logvar = model.encode_positions(frames)
+    s = mean + (0.5 * logvar).exp() * torch.randn_like(mean) if sample else mean
+    logits = model.decode_logits(s)
+    pixels = float(frames[0].numel())
+    nll = _pixel_nll(model, logits, frames).flatten(1).sum(1).mean() / pixels
+    kl = kl_std_normal(mean, logvar).sum(1).mean() / pixels if sample else nll.new_zeros(())
+    with torch.no_grad():
+        mse = ((torch.sigmoid(logits) - frames) ** 2).mean()
+        bg_mse = ((model.background - frames) ** 2).mean()
+    return {"loss": nll + beta * kl, "nll": nll.detach(), "kl_s0": kl.detach(), "mse": mse,
+            "bg_mse": bg_mse}
+
+
+@torch.no_grad()
+def encode_all(model, frames: torch.Tensor, chunk: int = 256) -> tuple[torch.Tensor, torch.Tensor]:
+    """Position means and variances of every frame [T, C, H, W] → ([T, q], [T, q])."""
+    means, variances = [], []
+    for part in frames.split(chunk):
+        m, lv = model.encode_positions(part)
+        means.append(m)
+        variances.append(lv.exp())
+    return torch.cat(means), torch.cat(variances)
+
+
+def fd_velocity(m: torch.Tensor, t: torch.Tensor) -> torch.Tensor:
+    """Velocity at t[0] from positions m[:, 0..2] at times t[0..2] (second-order one-sided
+    difference; for equal steps h it is (−3·m0 + 4·m1 − m2) / 2h)."""
+    h1, h2 = t[1] - t[0], t[2] - t[1]
+    a = -(2 * h1 + h2) / (h1 * (h1 + h2))
+    b = (h1 + h2) / (h1 * h2)
+    c = -h1 / (h2 * (h1 + h2))
+    return a * m[:, 0] + b * m[:, 1] + c * m[:, 2]
+
+
+def dynamics_terms(model, ctx: torch.Tensor, t: torch.Tensor, target_mean: torch.Tensor,
+                   target_var: torch.Tensor, mask: torch.Tensor, n_total_frames: int, beta: float,
+                   velocity_aux: float) -> dict:
+    """Dynamics loss per latent coordinate on encoded trajectories.
+
+    Parameters
+    ----------
+    ctx : Tensor [B, k, C, H, W]
+        The windows' first frames (for the velocity encoder).
+    t : Tensor [T]
+        Model times of the window, relative to its first frame.
+    target_mean, target_var : Tensor [B, T, q]
+        Encoded positions of every frame of the windows.
+    mask : Tensor [B, T] of bool
+        Present frames.
+    n_total_frames : int
+        Frames in the training set (the weight KL is scaled by T / n_total_frames).
+    beta : float
+        Weight of the KL terms.
+    velocity_aux : float
+        Weight of the finite-difference velocity term.
+    """
+    B, T, q = target_mean.shape
+    floor = (VAR_FLOOR_PIXELS * 2.0 / model.size) ** 2
+    var = target_var + floor
+    _, _, v_mean, v_logvar = model.encode_dist(ctx)
+    s0 = target_mean[:, 0] + target_var[:, 0].sqrt() * torch.randn_like(target_mean[:, 0])
+    v0 = v_mean + (0.5 * v_logvar).exp() * torch.randn_like(v_mean)
+    model.field.draw(B)
+    s = model.integrate(torch.cat([s0, v0], dim=1), t - t[0]).transpose(0, 1)[..., :q]
+    obs = mask.to(s.dtype)
+    per = T * q
+    nll = (0.5 * ((s - target_mean) ** 2 / var).sum(2) * obs).sum() / B / per
+    dt = t[1] - t[0]
+    aux = target_mean.new_zeros(())
+    if velocity_aux > 0 and T >= 3 and bool(mask[:, :3].all()):
+        v_fd = fd_velocity(target_mean, t)
+        aux = (0.5 * ((v_mean - v_fd) * dt) ** 2 / var[:, 0]).sum() / B / per
+    kl_v0 = kl_std_normal(v_mean, v_logvar).sum() / B / per
+    kl_w = model.field.kl() * (T / float(n_total_frames)) / per
+    loss = nll + velocity_aux * aux + beta * (kl_v0 + kl_w)
+    with torch.no_grad():
+        err = ((s - target_mean) ** 2).mean(2)
+        latent_mse = (err * obs).sum() / obs.sum().clamp_min(1.0)
+    return {"loss": loss, "nll": nll.detach(), "velocity_aux": aux.detach(), "kl_v0": kl_v0.detach(),
+            "kl_w": kl_w.detach(), "latent_mse": latent_mse}

@@ -1,0 +1,142 @@
+"""The staged recipe: which stage a step is in, what each stage trains, and the stages' own state.
+
+``train.recipe = "staged"`` splits one budget into three stages by progress (steps or seconds):
+
+1. *positions* (``train.positions_share``): position encoder + decoder as a frame autoencoder over
+   the static background, deterministic until it clearly beats the background alone (the escape
+   test), then sampled with the KL weight rising to ``train.positions_kl``. An encoder that has not
+   escaped by ``train.escape_deadline`` of the stage starts again from a new seed.
+2. *dynamics* (``train.dynamics_share``): encoder and decoder frozen; the field and the velocity
+   encoder fit the encoded trajectories (:func:`kinecast.model.staged.dynamics_terms`), with long
+   windows (two periods of the tracked object, at least :data:`DYNAMICS_MIN_WINDOW` frames).
+3. *joint*: the full ELBO end to end, as the ``end_to_end`` recipe does from its first step.
+
+Everything here is a function of the step's progress and of :class:`StageState`, which is saved in
+every checkpoint, so a resumed run takes the same path as an uninterrupted one.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import asdict, dataclass
+
+import numpy as np
+import torch
+
+from ..model import build_model
+from ..model.staged import encode_all
+from ..score import tracks
+
+POSITIONS, DYNAMICS, JOINT = "positions", "dynamics", "joint"
+NUMBER = {POSITIONS: 1, DYNAMICS: 2, JOINT: 3}  # the stage column of log.csv
+EMA = 0.9  # smoothing of the escape test's running errors (about the last 10 steps)
+ESCAPE_MIN_STEPS = 10  # positions steps before the escape test is trusted (EMA warm-up)
+DYNAMICS_MIN_WINDOW = 60  # frames: the dynamics stage's windows reach at least this long ...
+DYNAMICS_PERIODS = 2  # ... and at least this many periods of the tracked object
+RESTART_SEED_STRIDE = 1000  # restart r of the positions stage re-initialises with seed + r·stride
+
+
+def stage_at(prog: float, tc) -> tuple[str, float]:
+    """``(stage, progress within the stage in [0, 1])`` at overall progress ``prog``."""
+    if tc.recipe == "end_to_end":
+        return JOINT, prog
+    a, b = tc.positions_share, tc.dynamics_share
+    if prog < a:
+        return POSITIONS, prog / a
+    if prog < a + b:
+        return DYNAMICS, (prog - a) / b
+    rest = 1.0 - a - b
+    return JOINT, min(1.0, (prog - a - b) / rest) if rest > 0 else 1.0
+
+
+@dataclass
+class StageState:
+    """The positions stage's escape test and restarts (plain numbers: saved with checkpoints)."""
+
+    escaped: bool = False
+    escaped_step: int = -1
+    restarts: int = 0
+    steps: int = 0  # positions steps since the last (re)start
+    ema_rec: float = math.nan
+    ema_bg: float = math.nan
+    joint_checked: bool = False  # the weights were validated on entering the joint stage
+
+    def observe(self, mse: float, bg_mse: float, ratio: float, step: int) -> bool:
+        """Fold one batch's errors in; True when this step passes the escape test."""
+        self.steps += 1
+        self.ema_rec = mse if math.isnan(self.ema_rec) else EMA * self.ema_rec + (1 - EMA) * mse
+        self.ema_bg = bg_mse if math.isnan(self.ema_bg) else EMA * self.ema_bg + (1 - EMA) * bg_mse
+        if self.escaped or self.steps < ESCAPE_MIN_STEPS or not self.ema_rec < ratio * self.ema_bg:
+            return False
+        self.escaped, self.escaped_step = True, step
+        return True
+
+    def due_restart(self, local: float, deadline: float) -> bool:
+        """True when the encoder has not escaped by the deadline of its current attempt."""
+        return not self.escaped and local >= deadline * (self.restarts + 1)
+
+    def state(self) -> dict:
+        return asdict(self)
+
+
+def set_trainable(model, stage: str) -> None:
+    """Freeze what a stage does not train (frozen parameters get no gradient, so Adam skips them)."""
+    seen = {POSITIONS: (True, False), DYNAMICS: (False, True), JOINT: (True, True)}[stage]
+    for module in (model.pos_enc, model.decoder):
+        module.requires_grad_(seen[0])
+    for module in (model.vel_enc, model.field):
+        module.requires_grad_(seen[1])
+
+
+def restart_positions(model, opt, cfg, channels: int, seed: int) -> None:
+    """Give the position encoder and decoder fresh weights drawn with ``seed``; forget their
+    optimiser state."""
+    with torch.random.fork_rng():
+        torch.manual_seed(seed)
+        fresh = build_model(cfg, channels)
+    for name in ("pos_enc", "decoder"):
+        new, old = getattr(fresh, name), getattr(model, name)
+        old.load_state_dict(new.state_dict())
+        for p in old.parameters():
+            opt.state.pop(p, None)
+
+
+def dynamics_window(recs, background, cfg, longest: int) -> tuple[int, float]:
+    """Longest window of the dynamics stage and the tracked period it was sized from (s, or NaN)."""
+    if cfg.train.dynamics_window:
+        return min(longest, cfg.train.dynamics_window), math.nan
+    periods = []
+    for r in recs:
+        ok = ~r.missing
+        if ok.sum() >= 8:
+            periods.append(tracks.track_period(tracks.centroid_track(r.frames[ok], background), r.times[ok]))
+    period = float(np.nanmedian(periods)) if np.isfinite(periods).any() else math.nan
+    want = DYNAMICS_MIN_WINDOW
+    if math.isfinite(period):
+        dt = float(np.median(np.concatenate([np.diff(r.times) for r in recs])))
+        want = max(want, math.ceil(DYNAMICS_PERIODS * period / dt) + 1)
+    return min(longest, want), period
+
+
+def grow(start: int, longest: int, local: float, share: float = 0.5) -> int:
+    """Window length growing geometrically from ``start`` to ``longest`` over ``share`` of a stage."""
+    if longest <= start:
+        return longest
+    return min(longest, int(start * (longest / start) ** min(1.0, local / share)))
+
+
+class EncodedTrajectories:
+    """Every training frame's encoded position (means and variances), computed once per stage."""
+
+    def __init__(self, model, frames: list[torch.Tensor], device):
+        was = model.training
+        model.eval()
+        enc = [encode_all(model, f.to(device)) for f in frames]
+        model.train(was)
+        self.means = [m for m, _ in enc]
+        self.vars = [v for _, v in enc]
+
+    def gather(self, which, starts, window: int) -> tuple[torch.Tensor, torch.Tensor]:
+        m = torch.stack([self.means[i][s:s + window] for i, s in zip(which, starts)])
+        v = torch.stack([self.vars[i][s:s + window] for i, s in zip(which, starts)])
+        return m, v

@@ -1,0 +1,97 @@
+"""Keypoint encoder pieces and the dynamics stage, against closed forms.
+
+- The spatial softmax of the log of a Gaussian is that Gaussian, normalised; its expected position is
+  the Gaussian's centre (closed form; exact up to the truncation at the frame edge, negligible for a
+  narrow blob well inside the frame).
+- Drawn blobs are separable Gaussians: exp(−((x−cx)² + (y−cy)²) / 2σ²) (closed form).
+- The dynamics stage, given clean encoded trajectories of a harmonic oscillator x(t) = A·cos(ωt)
+  (closed form), learns a field whose free rollout keeps the period 2π/ω.
+- The second-order one-sided difference (−3·f0 + 4·f1 − f2)/2h is exact for quadratics (handbook
+  finite-difference formula; its error term is O(h²)·f''').
+"""
+
+import math
+
+import numpy as np
+import pytest
+import torch
+
+from kinecast.config import Config
+from kinecast.model import build_model
+from kinecast.model.keypoints import draw_blobs, pixel_grid, spatial_softmax
+from kinecast.model.staged import dynamics_terms, fd_velocity
+
+
+def _gauss_logits(n, cx, cy, sigma):
+    g = (2 * np.arange(n) + 1) / n - 1  # pixel centres in [-1, 1]
+    X, Y = np.meshgrid(g, g)
+    return -((X - cx) ** 2 + (Y - cy) ** 2) / (2 * sigma ** 2)
+
+
+@pytest.mark.parametrize("cx,cy", [(0.0, 0.0), (0.31, -0.42), (-0.55, 0.2)])
+def test_spatial_softmax_finds_the_centre_of_a_gaussian(cx, cy):
+    logits = torch.tensor(_gauss_logits(64, cx, cy, 0.08), dtype=torch.float64)[None, None]
+    xy = spatial_softmax(logits)[0, 0]
+    assert float(xy[0]) == pytest.approx(cx, abs=1e-6)
+    assert float(xy[1]) == pytest.approx(cy, abs=1e-6)
+
+
+def test_blobs_are_gaussians_at_the_points():
+    pts = torch.tensor([[[0.25, -0.5]]], dtype=torch.float64)
+    maps = draw_blobs(pts, 32, 0.1)[0, 0].numpy()
+    expected = np.exp(_gauss_logits(32, 0.25, -0.5, 0.1))
+    np.testing.assert_allclose(maps, expected, rtol=1e-12, atol=1e-12)
+    assert pixel_grid(2).tolist() == [-0.5, 0.5]
+
+
+def test_keypoint_latent_is_image_coordinates():
+    cfg = Config()
+    cfg.data.size = 32
+    model = build_model(cfg, 1)
+    s_mean, _, v_mean, _ = model.encode_dist(torch.rand(2, 3, 1, 32, 32))
+    assert s_mean.shape == (2, 2 * cfg.model.keypoints) == v_mean.shape
+    assert (s_mean.abs() <= 1).all()  # expected pixel coordinates stay inside the frame
+
+
+def test_fd_velocity_is_exact_for_a_quadratic_on_uneven_steps():
+    t = torch.tensor([0.0, 0.1, 0.25], dtype=torch.float64)
+    m = (3.0 + 2.0 * t - 4.0 * t ** 2)[None, :, None]  # velocity at 0 is 2
+    assert float(fd_velocity(m, t)[0, 0]) == pytest.approx(2.0, abs=1e-12)
+    even = torch.tensor([0.0, 0.1, 0.2], dtype=torch.float64)
+    f = torch.sin(even)[None, :, None]
+    assert float(fd_velocity(f, even)[0, 0]) == pytest.approx(
+        float((-3 * f[0, 0] + 4 * f[0, 1] - f[0, 2]) / 0.2), abs=1e-12)
+
+
+def test_dynamics_stage_recovers_an_oscillator_period():
+    torch.manual_seed(0)
+    cfg = Config()
+    cfg.data.size = 16
+    cfg.model.keypoints = 1
+    cfg.model.enc_channels = cfg.model.dec_channels = 8
+    cfg.model.hidden = 32
+    model = build_model(cfg, 1)
+    omega = math.pi  # period 2 model units = 20 frames at 0.1 units per frame
+    t = torch.arange(40) * 0.1
+    opt = torch.optim.Adam(list(model.field.parameters()) + list(model.vel_enc.parameters()), lr=1e-2)
+    ctx = torch.zeros(8, 3, 1, 16, 16)
+    for step in range(400):
+        amp = 0.3 + 0.5 * torch.rand(8, 1, 1)
+        phase = torch.zeros(8, 1, 1)
+        x = amp * torch.cos(omega * t[None, :, None] + phase)
+        target = torch.cat([x, torch.zeros_like(x)], dim=2)  # y stays at 0
+        var = torch.full_like(target, 1e-4)
+        terms = dynamics_terms(model, ctx, t, target, var, torch.ones(8, 40, dtype=torch.bool), 4000,
+                               1.0, 1.0)
+        opt.zero_grad()
+        terms["loss"].backward()
+        opt.step()
+    model.field.draw(1, mean=True)
+    long_t = torch.arange(100) * 0.1
+    with torch.no_grad():
+        s = model.integrate(torch.tensor([[0.6, 0.0, 0.0, 0.0]]), long_t)[:, 0, 0].numpy()
+    # period from the upward zero crossings (linear interpolation between samples)
+    crossings = [long_t[i] - s[i] * 0.1 / (s[i + 1] - s[i]) for i in range(len(s) - 1)
+                 if s[i] < 0 <= s[i + 1]]
+    period = float(np.mean(np.diff(np.array(crossings, dtype=float))))
+    assert period == pytest.approx(2 * math.pi / omega, rel=0.03)
