@@ -38,7 +38,7 @@ from .common import BEAT_FACTOR, NOMINAL_FPS, Profile, pick_device
 
 TRAIN_SEED, EVAL_SEED = 1, 2
 LEARNED = ("second_order", "first_order")
-BASELINES = ("persistence", "constant_velocity", "flow_warp")
+BASELINES = ("background_only", "persistence", "constant_velocity", "flow_warp")
 METRICS = ("mse", "ssim", "position_error_px")
 HORIZONS = (1, 2, 3)                 # multiples of the training window W
 TTQ_RIG = "pendulum"

@@ -306,9 +306,9 @@ def _(t, w):
 @case("fill: weights of another model size")
 def _(t, w):
     run = run_copy(t, w)
-    set_key(run, "latent_dim", "8")           # config says 8, the weights were saved with 4
+    set_key(run, "keypoints", "3")            # config says 3, the weights were saved with 2
     return ["fill", str(run), str(w.trial), "--out", str(t / "filled")], ck.WEIGHTS, \
-        r"do not match the run's config.toml \(tensor .* has shape \(8, .* builds \(16, "
+        r"do not match the run's config.toml \(tensor .* has shape \(2, .* builds \(3, "
 
 
 @case("forecast: weights of another model size")

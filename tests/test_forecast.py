@@ -13,6 +13,7 @@ import numpy as np
 import pytest
 import torch
 
+from kinecast.model.latent_ode import latent_size
 from kinecast import config as C
 from kinecast.cli import main
 from kinecast.forecast import core
@@ -46,7 +47,7 @@ def test_forecast_times_and_shapes_regular(trained):
     assert fc.context_start == rec.n_frames - cfg.model.velocity_frames
     np.testing.assert_allclose(fc.times, last + dt * np.arange(1, 11), rtol=0, atol=1e-9)
     assert fc.mean.shape == (10, 1, 32, 32) and fc.samples.shape == (3, 10, 1, 32, 32)
-    assert fc.latents.shape == (3, 10, 2 * cfg.model.latent_dim)
+    assert fc.latents.shape == (3, 10, 2 * latent_size(cfg.model))
     assert np.all(fc.spread >= 0) and fc.spread.max() > 0  # sampled futures differ
     one = core.forecast(model, cfg, rec, n_frames=10, samples=1)
     assert np.all(one.spread == 0)

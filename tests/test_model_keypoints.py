@@ -95,3 +95,13 @@ def test_dynamics_stage_recovers_an_oscillator_period():
                  if s[i] < 0 <= s[i + 1]]
     period = float(np.mean(np.diff(np.array(crossings, dtype=float))))
     assert period == pytest.approx(2 * math.pi / omega, rel=0.03)
+
+
+def test_keypoint_overlap_is_the_gaussian_kernel_of_pair_distances():
+    from kinecast.model.staged import keypoint_overlap
+
+    # closed form: exp(-d² / 2w²) per pair; three points → three pairs
+    pts = torch.tensor([[0.0, 0.0, 0.3, 0.4, 0.0, 0.0]])  # pair distances 0.5, 0, 0.5
+    w = 0.25
+    expected = 1.0 + 2 * math.exp(-0.25 / (2 * w ** 2))
+    assert float(keypoint_overlap(pts, w)) == pytest.approx(expected, rel=1e-6)

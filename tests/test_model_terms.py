@@ -25,6 +25,7 @@ def _small_cfg(**model):
     cfg.model.enc_channels = cfg.model.dec_channels = 8
     cfg.model.hidden = 16
     cfg.model.latent_dim = 3
+    cfg.model.encoder = "dense"
     for k, v in model.items():
         setattr(cfg.model, k, v)
     return cfg
@@ -80,15 +81,16 @@ def test_elbo_assembly_per_pixel():
     # Source: negative ELBO = −Σ_t log p(x_t|s_t) + KL(s0) + KL(v0) + (T/N_total)·KL(W), here per pixel,
     # recomputed with torch.distributions from the model's own encoder outputs and reconstruction.
     torch.manual_seed(0)
-    for likelihood in ("bernoulli", "gaussian"):
-        m = build_model(_small_cfg(likelihood=likelihood, agreement_weight=0.5), 1)
+    for likelihood, encoder in (("bernoulli", "dense"), ("gaussian", "dense"), ("bernoulli", "keypoints")):
+        m = build_model(_small_cfg(likelihood=likelihood, agreement_weight=0.5, encoder=encoder), 1)
+        q = m.q
         x = torch.rand(2, 5, 1, 16, 16)
         t = torch.linspace(0, 0.4, 5)
         out = m(x, t, n_total_frames=50, beta=0.3, sample=False)
         s_mean, s_logvar, v_mean, v_logvar = m.encode_dist(x)
         pix = 5 * 16 * 16
         _, latents = m.rollout(x, t)  # the same means and mean weights, through the rollout path
-        logits = m.decode_logits(latents[0, ..., :3])
+        logits = m.decode_logits(latents[0, ..., :q])
         torch.testing.assert_close(torch.sigmoid(logits), out["recon"])
         if likelihood == "bernoulli":
             nll = -Bernoulli(logits=logits, validate_args=False).log_prob(x).sum() / 2 / pix
@@ -102,8 +104,8 @@ def test_elbo_assembly_per_pixel():
         torch.testing.assert_close(out["kl_v0"], kl_v)
         torch.testing.assert_close(out["kl_w"], kl_w)
         # agreement: −log N(encoder mean on frames 1.. | s_t, I) up to a constant, per pixel
-        enc_mean, _ = m.pos_enc(x[:, 1:].reshape(-1, 1, 16, 16))
-        s_later = latents[0, :, 1:, :3].reshape(-1, 3)
+        enc_mean, _ = m.encode_positions(x[:, 1:].reshape(-1, 1, 16, 16))
+        s_later = latents[0, :, 1:, :q].reshape(-1, q)
         agreement = -Normal(s_later, 1.0).log_prob(enc_mean).sum() / 2 / pix \
             - 0.5 * torch.log(torch.tensor(2 * torch.pi)) * enc_mean.numel() / 2 / pix
         assert float(out["agreement"]) > 0

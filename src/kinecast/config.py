@@ -128,6 +128,8 @@ class TrainConfig:
     # forecast MSE 0.00093 after the dynamics stage, 0.0033 fifty steps into the joint stage)
     joint_lr: float = _opt(3e-4, "staged: peak learning rate of the joint stage (fine-tuning; the dynamics "
                            "stage and the end_to_end recipe use train.lr)", lo=0.0)
+    keypoint_repulsion: float = _opt(0.0, "staged: weight of a term that keeps keypoints apart in the positions "
+                                     "stage (for several similar objects)", lo=0.0)
     positions_kl: float = _opt(0.1, "staged: KL weight reached by the end of the positions stage", lo=0.0)
     escape_deadline: float = _opt(0.4, "staged: share of the positions stage after which an encoder that has "
                                   "not beaten the background restarts from a new seed", lo=0.05, hi=1.0)

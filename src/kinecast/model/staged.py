@@ -35,11 +35,23 @@ def _pixel_nll(model, logits: torch.Tensor, frames: torch.Tensor) -> torch.Tenso
     return gaussian_nll(torch.sigmoid(logits), frames, model.log_noise.view(-1, 1, 1))
 
 
-def autoencoder_terms(model, frames: torch.Tensor, sample: bool, beta: float) -> dict:
+def keypoint_overlap(points: torch.Tensor, width: float) -> torch.Tensor:
+    """Mean over frames of Σ_{i<j} exp(−|p_i − p_j|² / 2·width²) for keypoints ``points`` (N, 2K):
+    1 for each pair of keypoints on the same spot, 0 for pairs far apart."""
+    p = points.reshape(points.shape[0], -1, 2)
+    d2 = ((p[:, :, None] - p[:, None]) ** 2).sum(-1)
+    k = p.shape[1]
+    upper = torch.triu(torch.ones(k, k, dtype=torch.bool, device=p.device), diagonal=1)
+    return torch.exp(-d2[:, upper] / (2 * width ** 2)).sum(1).mean()
+
+
+def autoencoder_terms(model, frames: torch.Tensor, sample: bool, beta: float, repulsion: float = 0.0) -> dict:
     """Frame autoencoder loss per pixel: frames [N, C, H, W] → position → frame.
 
-    Returns ``loss`` (NLL + beta·KL(q(s)‖N(0, I)) per pixel), ``nll``, ``kl_s0``, ``mse`` (of the
-    reconstruction) and ``bg_mse`` (of the background alone, for the escape test).
+    Returns ``loss`` (NLL + beta·KL(q(s)‖N(0, I)) per pixel, plus ``repulsion`` × the keypoints'
+    :func:`keypoint_overlap` at twice the blob width, which spreads keypoints over several objects),
+    ``nll``, ``kl_s0``, ``mse`` (of the reconstruction), ``bg_mse`` (of the background alone, for
+    the escape test) and ``overlap``.
     """
     mean, logvar = model.encode_positions(frames)
     s = mean + (0.5 * logvar).exp() * torch.randn_like(mean) if sample else mean
@@ -50,8 +62,11 @@ def autoencoder_terms(model, frames: torch.Tensor, sample: bool, beta: float) ->
     with torch.no_grad():
         mse = ((torch.sigmoid(logits) - frames) ** 2).mean()
         bg_mse = ((model.background - frames) ** 2).mean()
-    return {"loss": nll + beta * kl, "nll": nll.detach(), "kl_s0": kl.detach(), "mse": mse,
-            "bg_mse": bg_mse}
+    overlap = nll.new_zeros(())
+    if model.keypoints and model.q > 2:
+        overlap = keypoint_overlap(mean, 2 * model.cfg.blob_std)
+    return {"loss": nll + beta * kl + repulsion * overlap, "nll": nll.detach(), "kl_s0": kl.detach(),
+            "mse": mse, "bg_mse": bg_mse, "overlap": overlap.detach()}
 
 
 @torch.no_grad()

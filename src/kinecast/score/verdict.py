@@ -7,7 +7,8 @@ object has no position, counts as infinitely far off, and so never beats anythin
 
 Levels:
 
-* ``failed``: the model does not beat drawing the bare background over the longest span;
+* ``failed``: the model does not beat drawing the bare background over the longest span (its MSE
+  must also be below :data:`FLOOR_MARGIN` × the background's);
 * ``weak``: it does, but not persistence or the optical-flow warp over the shortest span;
 * ``good``: otherwise.
 
@@ -39,6 +40,13 @@ CAUTION = ("Forecasts are statistical extrapolations from the frames shown, not 
 # The floor every model must clear, and the baselines it must also beat over the shortest span to be
 # called good (the strongest simple forecasts of short-term motion).
 FLOOR = "background_only"
+# To beat the floor a model's MSE must be below this × the bare background's, not merely below it:
+# a forecast that draws a blurred mean of the motion (a model that learned nothing) already scores
+# a little under the background, because the temporal mean is the best constant predictor under
+# squared error (least squares). Our choice from measured 5-minute fits at 64 px: runs that had not
+# found the object scored 0.93-1.11× the background (pendulum, air table), runs that track it
+# 0.46-0.59× (pendulum, spring).
+FLOOR_MARGIN = 0.8
 SHORT_RIVALS = ("persistence", "flow_warp")
 # A method that shows no object for more than this share of the true objects (per-object matching)
 # has no position to compare: its position error counts as infinite.
@@ -59,12 +67,13 @@ def _position(summary: dict) -> float:
     return float(error)
 
 
-def beats(model: dict, other: dict) -> bool:
-    """True when ``model`` has both the lower mean MSE and the lower mean position error."""
+def beats(model: dict, other: dict, margin: float = 1.0) -> bool:
+    """True when ``model`` has both the lower mean MSE (below ``margin`` × the other's) and the
+    lower mean position error."""
     a, b = model.get("mean_mse", math.nan), other.get("mean_mse", math.nan)
     if not (np.isfinite(a) and np.isfinite(b)):
         return False
-    return bool(a < b and _position(model) < _position(other))
+    return bool(a < margin * b and _position(model) < _position(other))
 
 
 def _span(label: str) -> str:
@@ -111,7 +120,9 @@ def _numbers(methods: dict) -> str:
 def _text(level: str, summaries: dict, short: str, long: str, missing: list[str]) -> str:
     if level == "failed":
         s = summaries[long]
-        return (f"The model does not beat drawing the bare background: it has not learned the motion; "
+        return (f"The model does not beat drawing the bare background by a clear margin "
+                f"({1 - FLOOR_MARGIN:.0%} lower MSE): "
+                f"it has not learned the motion; "
                 f"its forecasts are not usable ({_span(long)}: model MSE {_ratio(s['model'], s[FLOOR]):.2f}× "
                 f"the bare background's; {_drawn(s['model'])}).")
     numbers = _numbers(summaries[short])
@@ -153,7 +164,8 @@ def verdict(summaries: dict[str, dict[str, dict]]) -> dict:
         if "model" not in summaries[label] or FLOOR not in summaries[label]:
             raise KinecastError("verdict", f"scores {label!r} lack the model or the {FLOOR} baseline")
     short, long = labels[0], labels[-1]
-    beaten = {label: [m for m in methods if m in BASELINES and beats(methods["model"], methods[m])]
+    beaten = {label: [m for m in methods if m in BASELINES
+                      and beats(methods["model"], methods[m], FLOOR_MARGIN if m == FLOOR else 1.0)]
               for label, methods in summaries.items()}
     missing = [m for m in SHORT_RIVALS if m in summaries[short] and m not in beaten[short]]
     level = "failed" if FLOOR not in beaten[long] else ("weak" if missing else "good")

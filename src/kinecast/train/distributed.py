@@ -74,6 +74,26 @@ def any_rank(ctx: Context, flag: bool) -> bool:
     return bool(t.item())
 
 
+def mean_over_ranks(ctx: Context, values: list[float]) -> list[float]:
+    """Each value averaged over the ranks (so decisions made from them agree everywhere)."""
+    if not ctx.active:
+        return values
+    t = torch.tensor(values, dtype=torch.float64, device=ctx.device)
+    dist.all_reduce(t, op=dist.ReduceOp.SUM)
+    return (t / ctx.world).tolist()
+
+
+def average_gradients(ctx: Context, model: torch.nn.Module) -> None:
+    """Average the gradients over the ranks, for steps taken outside DistributedDataParallel's
+    forward (the staged recipe's positions and dynamics stages)."""
+    if not ctx.active:
+        return
+    for p in model.parameters():
+        if p.grad is not None:
+            dist.all_reduce(p.grad, op=dist.ReduceOp.SUM)
+            p.grad.div_(ctx.world)
+
+
 def replica_spread(ctx: Context, model: torch.nn.Module) -> float:
     """Largest difference of any parameter between ranks (0.0 when the replicas agree exactly)."""
     with torch.no_grad():

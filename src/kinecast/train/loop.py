@@ -90,13 +90,14 @@ def _validate_and_keep(model, val_sampler, val_window: int, cfg, cur: Curriculum
     return val
 
 
-def _judge(model, run: Path, recs, cfg, window: int, device) -> dict:
+def _judge(run: Path, recs, cfg, window: int, device) -> dict:
     """The verdict on ``recs`` (held-out trials) for the run's best weights (see score.verdict)."""
     from ..score.verdict import judge_recordings
 
-    best = copy.deepcopy(model)
+    best = build_model(cfg, ck.channels_of(cfg))
     tensors, _ = ck.load_tensors(run / ck.WEIGHTS)
     best.load_state_dict(tensors)
+    best.to(device)
     judged = judge_recordings(best.eval(), cfg, recs, window, device)
     keep = ("level", "ok", "text", "beats", "mse_ratio", "judged_at")
     out = {k: judged[k] for k in keep if k in judged}
@@ -278,8 +279,10 @@ def fit(paths, out, cfg: cfgmod.Config | None = None, *, resume: bool = False, o
             batch = sampler.draw(cfg.train.batch, window)
             frames = batch.frames.flatten(0, 1)[batch.mask.flatten()].to(ctx.device)
             beta = cfg.train.positions_kl * local if stage_state.escaped else 0.0
-            terms = autoencoder_terms(model, frames, sample=stage_state.escaped, beta=beta)
-            if stage_state.observe(float(terms["mse"]), float(terms["bg_mse"]), cfg.train.escape_ratio, step):
+            terms = autoencoder_terms(model, frames, sample=stage_state.escaped, beta=beta,
+                                      repulsion=cfg.train.keypoint_repulsion)
+            errors = D.mean_over_ranks(ctx, [float(terms["mse"]), float(terms["bg_mse"])])
+            if stage_state.observe(*errors, cfg.train.escape_ratio, step):
                 tqdm.write(f"kinecast: step {step}: the position encoder found the moving object "
                            f"(reconstruction error {stage_state.ema_rec:.2g}, bare background "
                            f"{stage_state.ema_bg:.2g}); sampling from now on")
@@ -304,6 +307,8 @@ def fit(paths, out, cfg: cfgmod.Config | None = None, *, resume: bool = False, o
         bad = not torch.isfinite(loss)
         if not bad:
             loss.backward()
+            if stage != S.JOINT:  # DistributedDataParallel averages the joint stage's gradients itself
+                D.average_gradients(ctx, model)
             gnorm = torch.nn.utils.clip_grad_norm_(model.parameters(), cfg.train.grad_clip or math.inf)
             bad = not torch.isfinite(gnorm)
         if D.any_rank(ctx, bad):
@@ -350,7 +355,7 @@ def fit(paths, out, cfg: cfgmod.Config | None = None, *, resume: bool = False, o
             ck.save_tensors(run / ck.WEIGHTS, model.state_dict(), {"step": step, "val_mse": val})
             cur.best = val if math.isfinite(val) else cur.best
         save_resume()
-        judged = _judge(model, run, val_recs or train_recs[-1:], cfg, longest, ctx.device)
+        judged = _judge(run, val_recs or train_recs[-1:], cfg, longest, ctx.device)
         from ..plots import loss_curve
 
         loss_curve(rows, run / ck.LOSS_PLOT, overwrite=True)

@@ -33,6 +33,10 @@ EMA = 0.9  # smoothing of the escape test's running errors (about the last 10 st
 ESCAPE_MIN_STEPS = 10  # positions steps before the escape test is trusted (EMA warm-up)
 DYNAMICS_MIN_WINDOW = 60  # frames: the dynamics stage's windows reach at least this long ...
 DYNAMICS_PERIODS = 2  # ... and at least this many periods of the tracked object
+# An attempt is restarted at its deadline only while its reconstruction is still this close to the bare
+# background's error (it has found nothing). One that is part way (e.g. one of two pucks found: 0.35-0.4
+# on the air table) keeps going: a restart threw such progress away there.
+STUCK_RATIO = 0.8
 RESTART_SEED_STRIDE = 1000  # restart r of the positions stage re-initialises with seed + r·stride
 
 
@@ -72,8 +76,10 @@ class StageState:
         return True
 
     def due_restart(self, local: float, deadline: float) -> bool:
-        """True when the encoder has not escaped by the deadline of its current attempt."""
-        return not self.escaped and local >= deadline * (self.restarts + 1)
+        """True when the encoder has found nothing (error still near the background's) by the
+        deadline of its current attempt."""
+        stuck = not self.ema_rec < STUCK_RATIO * self.ema_bg
+        return not self.escaped and stuck and local >= deadline * (self.restarts + 1)
 
     def state(self) -> dict:
         return asdict(self)
