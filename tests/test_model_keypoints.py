@@ -19,7 +19,8 @@ import torch
 from kinecast.config import Config
 from kinecast.model import build_model
 from kinecast.model.keypoints import draw_blobs, pixel_grid, spatial_softmax
-from kinecast.model.staged import dynamics_terms, fd_velocity
+from kinecast.model.latent_ode import fd_velocity
+from kinecast.model.staged import dynamics_terms
 
 
 def _gauss_logits(n, cx, cy, sigma):
@@ -105,3 +106,17 @@ def test_keypoint_overlap_is_the_gaussian_kernel_of_pair_distances():
     w = 0.25
     expected = 1.0 + 2 * math.exp(-0.25 / (2 * w ** 2))
     assert float(keypoint_overlap(pts, w)) == pytest.approx(expected, rel=1e-6)
+
+
+def test_initial_velocity_starts_as_the_finite_difference_of_the_position_readings():
+    # v0 = (−3·s0 + 4·s1 − s2) / 2h from the position encoder's readings of the context frames,
+    # plus the velocity encoder's correction, which starts at zero (handbook difference formula)
+    torch.manual_seed(0)
+    cfg = Config()
+    cfg.data.size = 16
+    model = build_model(cfg, 1)
+    ctx = torch.rand(2, 3, 1, 16, 16)
+    _, _, v_mean, _ = model.encode_dist(ctx, torch.tensor([0.0, 0.1, 0.2]))
+    s, _ = model.encode_positions(ctx.flatten(0, 1))
+    s = s.view(2, 3, -1)
+    torch.testing.assert_close(v_mean, (-3 * s[:, 0] + 4 * s[:, 1] - s[:, 2]) / 0.2)

@@ -322,7 +322,7 @@ def keypoint_phase_figure(pixels: np.ndarray, times: np.ndarray) -> Figure:
         dots = ax.scatter(pos, vel, c=times, cmap="viridis", s=12, zorder=2,
                           marker="os^Dv<>p"[j % 8], label=f"keypoint {j}")
     fig.colorbar(dots, ax=ax, label="time (s)")
-    ax.set_xlabel("position along each keypoint's main direction of motion (px, recording pixels)")
+    ax.set_xlabel("position along its main direction of motion (px)")
     ax.set_ylabel("velocity along that direction (px/s)")
     ax.set_title("keypoint phase portrait", fontsize=10)
     ax.legend(fontsize=8)

@@ -84,10 +84,11 @@ def predict_from(model, cfg: Config, rec: Recording, ctx_start: int, times: np.n
     k = cfg.model.velocity_frames
     ctx = torch.from_numpy(rec.frames[ctx_start:ctx_start + k][None]).to(device)
     t = to_model_time(np.asarray(times, dtype=np.float64) - rec.times[ctx_start], cfg).to(device)
+    ctx_t = to_model_time(rec.times[ctx_start:ctx_start + k] - rec.times[ctx_start], cfg).to(device)
     stochastic = samples > 1
     with torch.no_grad():
         frames, latents = model.rollout(ctx, t, samples=samples, mean_weights=not stochastic,
-                                        sample_init=stochastic)
+                                        sample_init=stochastic, ctx_t=ctx_t)
     s = frames[:, 0].float().cpu().numpy()
     return Forecast(np.asarray(times, dtype=np.float64), s.mean(axis=0),
                     s.std(axis=0) if stochastic else np.zeros_like(s[0]), s,

@@ -38,6 +38,19 @@ def _reparam(mean: torch.Tensor, logvar: torch.Tensor, generator: torch.Generato
     return mean + (0.5 * logvar).exp() * eps
 
 
+def fd_velocity(m: torch.Tensor, t: torch.Tensor) -> torch.Tensor:
+    """Velocity at t[0] from positions m[:, 0..2] at times t[0..2] (second-order one-sided
+    difference, a handbook formula; for equal steps h it is (−3·m0 + 4·m1 − m2) / 2h). With only
+    two positions, the first-order difference (m1 − m0) / (t1 − t0)."""
+    if m.shape[1] < 3 or len(t) < 3:
+        return (m[:, 1] - m[:, 0]) / (t[1] - t[0])
+    h1, h2 = t[1] - t[0], t[2] - t[1]
+    a = -(2 * h1 + h2) / (h1 * (h1 + h2))
+    b = (h1 + h2) / (h1 * h2)
+    c = -h1 / (h2 * (h1 + h2))
+    return a * m[:, 0] + b * m[:, 1] + c * m[:, 2]
+
+
 class LatentODE(nn.Module):
     """Latent ODE model; build it with :func:`build_model`.
 
@@ -71,6 +84,11 @@ class LatentODE(nn.Module):
             self.decoder = Decoder(q, channels, size, model_cfg.dec_channels)
         # the velocity encoder also reads the position encoder's means of the k context frames
         self.vel_enc = GaussEncoder((2 * k - 1) * channels, size, model_cfg.enc_channels, q, extra_dim=k * q)
+        self.velocity_from_positions = model_cfg.velocity_from_positions and self.variant != "first_order"
+        if self.velocity_from_positions:  # the encoder's mean starts as no correction to the finite difference
+            with torch.no_grad():
+                self.vel_enc.head.weight[:q].zero_()
+                self.vel_enc.head.bias[:q].zero_()
         self.field = DynamicsField(q, model_cfg.hidden, model_cfg.hidden_layers,
                                    second_order=self.variant != "first_order",
                                    bayesian=self.variant != "deterministic",
@@ -128,8 +146,12 @@ class LatentODE(nn.Module):
             return self.pos_enc(x, self.background)
         return self.pos_enc(x)
 
-    def encode_dist(self, ctx: torch.Tensor):
-        """Means and log-variances of q(s0) and q(v0) from ``ctx`` [B, k, C, H, W] (first k used)."""
+    def encode_dist(self, ctx: torch.Tensor, ctx_t: torch.Tensor | None = None):
+        """Means and log-variances of q(s0) and q(v0) from ``ctx`` [B, k, C, H, W] (first k used).
+
+        ``ctx_t`` [k]: model times of the context frames (default: one median frame interval,
+        ``solver.units_per_frame``, apart); used by ``model.velocity_from_positions``.
+        """
         self._check_frames(ctx, "encode", self.k)
         ctx = ctx[:, :self.k].contiguous()  # convs on broadcast (expanded) views are very slow
         B = ctx.shape[0]
@@ -138,6 +160,10 @@ class LatentODE(nn.Module):
         s_logvar = pos_logvar.reshape(B, self.k, self.q)[:, 0]
         stacked = torch.cat([ctx.flatten(1, 2), (ctx[:, 1:] - ctx[:, :-1]).flatten(1, 2)], dim=1)
         v_mean, v_logvar = self.vel_enc(stacked, pos_mean.reshape(B, self.k * self.q))
+        if self.velocity_from_positions:
+            if ctx_t is None:
+                ctx_t = torch.arange(self.k, dtype=ctx.dtype, device=ctx.device) * self.solver_cfg.units_per_frame
+            v_mean = v_mean + fd_velocity(pos_mean.reshape(B, self.k, self.q), ctx_t[:self.k].to(ctx))
         return s_mean, s_logvar, v_mean, v_logvar
 
     def encode(self, ctx: torch.Tensor, sample: bool, generator: torch.Generator | None = None
@@ -231,7 +257,7 @@ class LatentODE(nn.Module):
         obs_f = obs.to(frames.dtype)
         n_obs = obs_f.sum().clamp_min(1.0)
 
-        s_mean, s_logvar, v_mean, v_logvar = self.encode_dist(frames)
+        s_mean, s_logvar, v_mean, v_logvar = self.encode_dist(frames, t[:self.k] - t[0])
         if sample:
             state0 = torch.cat([_reparam(s_mean, s_logvar), _reparam(v_mean, v_logvar)], dim=1)
         else:
@@ -282,7 +308,8 @@ class LatentODE(nn.Module):
 
     # --------------------------------------------------------------------------- rollout
     def rollout(self, ctx: torch.Tensor, t: torch.Tensor, samples: int = 1, mean_weights: bool = True,
-                sample_init: bool = False, generator: torch.Generator | None = None):
+                sample_init: bool = False, generator: torch.Generator | None = None,
+                ctx_t: torch.Tensor | None = None):
         """Decode frames at model times ``t`` (relative to ``ctx[:, 0]``; any order, may be < 0).
 
         Parameters
@@ -300,6 +327,8 @@ class LatentODE(nn.Module):
             Draw s0, v0 from the encoder's posterior; False uses its means.
         generator : torch.Generator, optional
             Noise source for reproducible samples.
+        ctx_t : Tensor [k], optional
+            Model times of the context frames relative to the first (see :meth:`encode_dist`).
 
         Returns
         -------
@@ -310,7 +339,7 @@ class LatentODE(nn.Module):
             raise ValueError(f"rollout: samples must be at least 1, got {samples}")
         self._check_frames(ctx, "rollout", self.k)
         B = ctx.shape[0]
-        s_mean, s_logvar, v_mean, v_logvar = self.encode_dist(ctx)
+        s_mean, s_logvar, v_mean, v_logvar = self.encode_dist(ctx, ctx_t)
         state0 = torch.cat([s_mean, v_mean], 1).repeat(samples, 1)
         if sample_init:
             logvar = torch.cat([s_logvar, v_logvar], 1).repeat(samples, 1)

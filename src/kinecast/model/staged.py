@@ -23,6 +23,7 @@ from __future__ import annotations
 import torch
 
 from .gauss import bernoulli_nll, gaussian_nll, kl_std_normal
+from .latent_ode import fd_velocity
 
 # Variance floor of the encoded positions in the dynamics loss, in (units per pixel)²: half a
 # pixel of the keypoint grid (2 / size per pixel). No position is trusted to better than that.
@@ -80,16 +81,6 @@ def encode_all(model, frames: torch.Tensor, chunk: int = 256) -> tuple[torch.Ten
     return torch.cat(means), torch.cat(variances)
 
 
-def fd_velocity(m: torch.Tensor, t: torch.Tensor) -> torch.Tensor:
-    """Velocity at t[0] from positions m[:, 0..2] at times t[0..2] (second-order one-sided
-    difference; for equal steps h it is (−3·m0 + 4·m1 − m2) / 2h)."""
-    h1, h2 = t[1] - t[0], t[2] - t[1]
-    a = -(2 * h1 + h2) / (h1 * (h1 + h2))
-    b = (h1 + h2) / (h1 * h2)
-    c = -h1 / (h2 * (h1 + h2))
-    return a * m[:, 0] + b * m[:, 1] + c * m[:, 2]
-
-
 def dynamics_terms(model, ctx: torch.Tensor, t: torch.Tensor, target_mean: torch.Tensor,
                    target_var: torch.Tensor, mask: torch.Tensor, n_total_frames: int, beta: float,
                    velocity_aux: float) -> dict:
@@ -115,7 +106,7 @@ def dynamics_terms(model, ctx: torch.Tensor, t: torch.Tensor, target_mean: torch
     B, T, q = target_mean.shape
     floor = (VAR_FLOOR_PIXELS * 2.0 / model.size) ** 2
     var = target_var + floor
-    _, _, v_mean, v_logvar = model.encode_dist(ctx)
+    _, _, v_mean, v_logvar = model.encode_dist(ctx, t[:model.k] - t[0])
     s0 = target_mean[:, 0] + target_var[:, 0].sqrt() * torch.randn_like(target_mean[:, 0])
     v0 = v_mean + (0.5 * v_logvar).exp() * torch.randn_like(v_mean)
     model.field.draw(B)

@@ -72,8 +72,8 @@ def validate(model, sampler: WindowSampler | None, window: int, cfg, background_
             if background_only:
                 pred = model.background.expand_as(frames[0])
             else:
-                pred = model.rollout(frames[:, :k], to_model_time(times, cfg).to(dev), samples=1,
-                                     mean_weights=True)[0][0, 0]
+                t = to_model_time(times, cfg).to(dev)
+                pred = model.rollout(frames[:, :k], t, samples=1, mean_weights=True, ctx_t=t[:k])[0][0, 0]
             err = ((pred - frames[0]) ** 2).mean(dim=(1, 2, 3))[k:]
             m = mask[k:].to(dev).float()
             total, count = total + float((err * m).sum()), count + float(m.sum())
