@@ -136,8 +136,8 @@ class TrainConfig:
     keypoint_repulsion: float = _opt(0.0, "staged: weight of a term that keeps keypoints apart in the positions "
                                      "stage (for several similar objects)", lo=0.0)
     positions_kl: float = _opt(0.1, "staged: KL weight reached by the end of the positions stage", lo=0.0)
-    escape_deadline: float = _opt(0.4, "staged: share of the positions stage after which an encoder that has "
-                                  "not beaten the background restarts from a new seed", lo=0.05, hi=1.0)
+    escape_deadline: float = _opt(0.4, "staged: share of the positions stage after which an attempt that has "
+                                  "found nothing (error still >= 0.8x the background's) restarts from a new seed", lo=0.05, hi=1.0)
     dynamics_window: int = _opt(0, "staged: longest window of the dynamics stage in frames; 0 = at least "
                                 "60 frames and 2 periods of the tracked object (capped by the recordings)",
                                 lo=0)
