@@ -60,6 +60,7 @@ def test_positions_stage_finds_the_moving_object(rig, tmp_path):
     saved = json.loads((tmp_path / "run" / ck.SUMMARY).read_text())
     assert saved["recipe"] == "staged" and saved["verdict"]["level"] in ("good", "weak", "failed")
     assert saved["dynamics_window"] >= 9
+    assert 0 < saved["positions_found_step"] < 0.75 * 400  # inside the positions stage
 
 
 def test_a_scene_where_nothing_moves_is_not_claimed_found(rig, tmp_path, capsys):

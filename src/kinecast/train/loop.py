@@ -90,15 +90,12 @@ def _validate_and_keep(model, val_sampler, val_window: int, cfg, cur: Curriculum
     return val
 
 
-def _judge(run: Path, recs, cfg, window: int, device) -> dict:
+def _judge(run: Path, recs, window: int, device) -> dict:
     """The verdict on ``recs`` (held-out trials) for the run's best weights (see score.verdict)."""
     from ..score.verdict import judge_recordings
 
-    best = build_model(cfg, ck.channels_of(cfg))
-    tensors, _ = ck.load_tensors(run / ck.WEIGHTS)
-    best.load_state_dict(tensors)
-    best.to(device)
-    judged = judge_recordings(best.eval(), cfg, recs, window, device)
+    best, cfg = ck.load_run(run, device)  # the run's own config.toml and best weights
+    judged = judge_recordings(best, cfg, recs, window, device)
     keep = ("level", "ok", "text", "beats", "mse_ratio", "judged_at")
     out = {k: judged[k] for k in keep if k in judged}
     out["judged_on"] = [str(r.source) for r in recs]
@@ -355,7 +352,7 @@ def fit(paths, out, cfg: cfgmod.Config | None = None, *, resume: bool = False, o
             ck.save_tensors(run / ck.WEIGHTS, model.state_dict(), {"step": step, "val_mse": val})
             cur.best = val if math.isfinite(val) else cur.best
         save_resume()
-        judged = _judge(run, val_recs or train_recs[-1:], cfg, longest, ctx.device)
+        judged = _judge(run, val_recs or train_recs[-1:], longest, ctx.device)
         from ..plots import loss_curve
 
         loss_curve(rows, run / ck.LOSS_PLOT, overwrite=True)
@@ -367,6 +364,7 @@ def fit(paths, out, cfg: cfgmod.Config | None = None, *, resume: bool = False, o
                    "world_size": ctx.world, "replica_spread": spread, "device": str(ctx.device),
                    "threads": torch.get_num_threads(), "recipe": cfg.train.recipe,
                    "positions_found": stage_state.escaped if cfg.train.recipe == "staged" else None,
+                   "positions_found_step": stage_state.escaped_step,
                    "positions_restarts": stage_state.restarts, "dynamics_window": dyn_longest,
                    "tracked_period_s": period, "background_val_mse": bg_val, "verdict": judged,
                    "caution": "Forecasts are statistical extrapolations, not measurements; "
