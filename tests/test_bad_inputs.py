@@ -550,17 +550,22 @@ def test_writing_verbs_leave_inputs_alone_and_refuse_a_second_write(world, tmp_p
     (The snapshot is the same one the matrix uses, so this also shows it does see new files.)"""
     run = run_copy(tmp_path, world)
     rec = good_copy(tmp_path, world)
+    gappy = good_copy(tmp_path, world, "gappy")          # fill writes only where a frame was dropped
+    (gappy / "frame_0010.png").unlink()
+    stamps = gappy / "timestamps.csv"
+    stamps.write_text("".join(ln for ln in stamps.read_text().splitlines(keepends=True)
+                              if not ln.startswith("frame_0010.png,")))
     out = tmp_path / "out"
     out.mkdir()
     commands = {
         "rig": ["rig", "spring", "--out", str(out / "rig"), "--frames", "4", "--size", "16"],
         "forecast": ["forecast", str(run), str(rec), "--frames", "3", "--out", str(out / "c.gif")],
-        "fill": ["fill", str(run), str(rec), "--out", str(out / "filled")],
+        "fill": ["fill", str(run), str(gappy), "--out", str(out / "filled")],
         "score": ["score", str(run), str(rec), "--holdout", "last:6", "--out", str(out / "scores")],
         "report": ["report", str(run), "--scores", str(out / "scores"), "--out", str(out / "r.html")],
         "config": ["config", "--out", str(out / "c.toml")],
     }
-    inputs = snapshot(run, rec)
+    inputs = snapshot(run, rec, gappy)
     threads = torch.get_num_threads()
     try:
         for verb, argv in commands.items():
@@ -569,14 +574,14 @@ def test_writing_verbs_leave_inputs_alone_and_refuse_a_second_write(world, tmp_p
             after = snapshot(out)
             assert set(after) > set(before), f"{verb} wrote nothing"
             assert all(after[k] == v for k, v in before.items()), f"{verb} changed an earlier output"
-            assert snapshot(run, rec) == inputs, f"{verb} changed an input"
+            assert snapshot(run, rec, gappy) == inputs, f"{verb} changed an input"
             capsys.readouterr()
             assert main(argv) == EXIT_BAD_INPUT, verb
             err = capsys.readouterr().err.splitlines()
             assert len(err) == 1 and "already exists" in err[0], (verb, err)
             assert snapshot(out) == after, f"{verb} changed its output on a refused second run"
         assert main(commands["forecast"] + ["--overwrite"]) == 0
-        assert snapshot(run, rec) == inputs
+        assert snapshot(run, rec, gappy) == inputs
     finally:
         torch.set_num_threads(threads)
 

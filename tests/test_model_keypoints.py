@@ -6,6 +6,12 @@
 - Drawn blobs are separable Gaussians: exp(−((x−cx)² + (y−cy)²) / 2σ²) (closed form).
 - The dynamics stage, given clean encoded trajectories of a harmonic oscillator x(t) = A·cos(ωt)
   (closed form), learns a field whose free rollout keeps the period 2π/ω.
+- The foreground coverage term is the soft k-means distortion of the foreground mass; k-means' fixed
+  points put each centre at the centroid of the mass assigned to it (Lloyd 1982, "Least squares
+  quantization in PCM", IEEE Trans. Inf. Theory 28), and the centroid of a symmetric blob is its
+  centre (closed form). The robust noise scale 1.4826·MAD is a handbook constant (σ of a Gaussian).
+- A shared per-object field is one function applied to each object's own state: swapping two objects'
+  states swaps their accelerations (permutation equivariance, by definition).
 - The second-order one-sided difference (−3·f0 + 4·f1 − f2)/2h is exact for quadratics (handbook
   finite-difference formula; its error term is O(h²)·f''').
 """
@@ -64,13 +70,15 @@ def test_fd_velocity_is_exact_for_a_quadratic_on_uneven_steps():
         float((-3 * f[0, 0] + 4 * f[0, 1] - f[0, 2]) / 0.2), abs=1e-12)
 
 
-def test_dynamics_stage_recovers_an_oscillator_period():
+@pytest.mark.parametrize("per_keypoint", [False, True])
+def test_dynamics_stage_recovers_an_oscillator_period(per_keypoint):
     torch.manual_seed(0)
     cfg = Config()
     cfg.data.size = 16
     cfg.model.keypoints = 1
     cfg.model.enc_channels = cfg.model.dec_channels = 8
     cfg.model.hidden = 32
+    cfg.model.field_per_keypoint = per_keypoint
     model = build_model(cfg, 1)
     omega = math.pi  # period 2 model units = 20 frames at 0.1 units per frame
     t = torch.arange(40) * 0.1
@@ -120,3 +128,94 @@ def test_initial_velocity_starts_as_the_finite_difference_of_the_position_readin
     s, _ = model.encode_positions(ctx.flatten(0, 1))
     s = s.view(2, 3, -1)
     torch.testing.assert_close(v_mean, (-3 * s[:, 0] + 4 * s[:, 1] - s[:, 2]) / 0.2)
+
+
+def _two_blob_frame(n, centres, sigma):
+    g = (2 * np.arange(n) + 1) / n - 1
+    X, Y = np.meshgrid(g, g)
+    img = sum(np.exp(-((X - cx) ** 2 + (Y - cy) ** 2) / (2 * sigma ** 2)) for cx, cy in centres)
+    return torch.tensor(img, dtype=torch.float32)
+
+
+def test_foreground_weights_ignore_a_global_lighting_change_and_noise():
+    from kinecast.model.staged import foreground_weights
+
+    gen = torch.Generator().manual_seed(0)
+    bg = torch.full((1, 32, 32), 0.3)
+    still = bg + 0.05 + 0.005 * torch.randn(1, 32, 32, generator=gen)  # brighter, noisy, no object
+    assert float(foreground_weights(still[None], bg, 16).sum()) < 0.05
+    obj = bg + 0.6 * _two_blob_frame(32, [(0.4, -0.3)], 0.08)[None] + 0.05
+    w = foreground_weights(obj[None], bg, 16)[0]
+    g = pixel_grid(16)
+    # within 3σ of the blob plus one cell of the 16-cell grid (2/16: area pooling spreads an edge)
+    near = ((g[None, :] - 0.4) ** 2 + (g[:, None] + 0.3) ** 2) < (3 * 0.08 + 2 / 16) ** 2
+    assert float(w.sum()) == pytest.approx(1.0, abs=1e-5)
+    assert float(w[near].sum()) > 0.98
+
+
+def test_coverage_pulls_a_keypoint_onto_each_object():
+    from kinecast.model.staged import foreground_weights, keypoint_coverage
+
+    centres = [(-0.5, -0.4), (0.45, 0.35)]
+    bg = torch.zeros(1, 64, 64)
+    frame = _two_blob_frame(64, centres, 0.06)[None]
+    w = foreground_weights(frame[None], bg, 32)
+    pts = torch.tensor([[-0.48, -0.40, -0.52, -0.41]], requires_grad=True)  # both on the first blob
+    opt = torch.optim.Adam([pts], lr=0.02)
+    for _ in range(400):
+        opt.zero_grad()
+        keypoint_coverage(pts, w, 0.12).backward()
+        opt.step()
+    found = sorted(pts.detach().view(2, 2).tolist())
+    # each keypoint at its blob's centre to within half a pixel of the 64 px frame (1/64 units)
+    for (x, y), (cx, cy) in zip(found, sorted(centres)):
+        assert abs(x - cx) < 1 / 64 and abs(y - cy) < 1 / 64
+
+
+def test_shared_field_swaps_accelerations_with_the_objects():
+    from kinecast.model.field import DynamicsField
+
+    torch.manual_seed(0)
+    f = DynamicsField(6, 16, 2, True, True, 1.0, -2.0, group=2)
+    y = torch.randn(4, 12)
+    perm = [2, 3, 0, 1, 4, 5]  # swap objects 1 and 2 (x, y of each)
+    y_swapped = torch.cat([y[:, :6][:, perm], y[:, 6:][:, perm]], dim=1)
+    f.draw(4, generator=torch.Generator().manual_seed(1))
+    a = f(torch.tensor(0.0), y)[:, 6:]
+    f.draw(4, generator=torch.Generator().manual_seed(1))
+    a_swapped = f(torch.tensor(0.0), y_swapped)[:, 6:]
+    torch.testing.assert_close(a_swapped, a[:, perm])
+    f.draw(4, mean=True)
+    torch.testing.assert_close(f(torch.tensor(0.0), y_swapped)[:, 6:], f(torch.tensor(0.0), y)[:, 6:][:, perm])
+
+
+def test_without_the_correction_v0_is_exactly_the_finite_difference():
+    # model.velocity_correction = false: v0 = (−3·s0 + 4·s1 − s2) / 2h whatever the velocity
+    # encoder's weights (handbook difference formula); the encoder then gives only the spread
+    torch.manual_seed(0)
+    cfg = Config()
+    cfg.data.size = 16
+    cfg.model.velocity_correction = False
+    model = build_model(cfg, 1)
+    with torch.no_grad():
+        model.vel_enc.head.weight.normal_()
+        model.vel_enc.head.bias.normal_()
+    ctx = torch.rand(2, 3, 1, 16, 16)
+    _, _, v_mean, v_logvar = model.encode_dist(ctx, torch.tensor([0.0, 0.1, 0.2]))
+    s, _ = model.encode_positions(ctx.flatten(0, 1))
+    s = s.view(2, 3, -1)
+    torch.testing.assert_close(v_mean, (-3 * s[:, 0] + 4 * s[:, 1] - s[:, 2]) / 0.2)
+    assert torch.isfinite(v_logvar).all()
+
+
+def test_a_log_variance_past_its_bound_can_come_back():
+    # value: the clamp to [LOGVAR_MIN, LOGVAR_MAX]; gradient: that of the identity (the straight-through
+    # estimator, Bengio, Léonard and Courville 2013), so a loss that wants a smaller variance can
+    # still lower a log-variance that went past the top
+    from kinecast.model.convnets import LOGVAR_MAX, LOGVAR_MIN, bounded_logvar
+
+    x = torch.tensor([LOGVAR_MIN - 3.0, 0.5, LOGVAR_MAX + 4.0], requires_grad=True)
+    y = bounded_logvar(x)
+    torch.testing.assert_close(y.detach(), x.detach().clamp(LOGVAR_MIN, LOGVAR_MAX))
+    y.sum().backward()
+    torch.testing.assert_close(x.grad, torch.ones(3))

@@ -90,12 +90,13 @@ def test_loss_curve_from_csv_subset_and_scales(tmp_path):
     log = write_log(tmp_path / "train_log.csv", rows)
     fig = P.loss_curve_figure(log)
     titles = [ax.get_title() for ax in fig.axes]
-    assert titles == ["objective", "KL divergences and agreement", "frame error (MSE)", "learning rate",
-                      "KL weight β"]
+    assert titles == ["training objective", "KL divergences and agreement", "frame error", "learning rate",
+                      "KL weight"]
     scales = dict(zip(titles, (ax.get_yscale() for ax in fig.axes)))
-    assert scales["objective"] == "linear"  # nll is negative here: no log scale
-    assert scales["KL divergences and agreement"] == "log"
-    assert scales["KL weight β"] == "linear"  # beta starts at 0
+    assert scales["training objective"] == "linear"  # nll is negative here: no log scale
+    assert scales["KL divergences and agreement"] == "log"  # kl_w spans 5 to 0.125: over a decade
+    assert scales["KL weight"] == "linear"  # beta starts at 0
+    assert scales["learning rate"] == "linear"  # constant: less than a decade
     val = fig.axes[2].get_lines()[0]
     assert len(val.get_xdata()) == 4  # validation rows only (steps 0, 10, 20, 30)
     read_png(P.loss_curve(log, tmp_path / "loss.png"))
@@ -107,7 +108,7 @@ def test_loss_curve_from_row_records():
     rows += [{"step": s, "val_mse": 0.1 / s, "window": 8} for s in (10, 20, 30)]  # sparse rows
     fig = P.loss_curve_figure(rows)
     titles = [ax.get_title() for ax in fig.axes]
-    assert titles == ["objective", "frame error (MSE)", "learning rate", "window (frames)"]
+    assert titles == ["training objective", "frame error", "learning rate", "training window"]
     np.testing.assert_array_equal(fig.axes[1].get_lines()[0].get_xdata(), [10, 20, 30])
     with pytest.raises(KinecastError, match="non-number"):
         P.loss_curve_figure([{"step": 1, "loss": "high"}])
@@ -134,7 +135,8 @@ def test_metric_curves_panels_lines_and_threshold(tmp_path):
     }
     fig = P.metric_curves_figure(per_method, t, threshold=0.8)
     labels = [ax.get_ylabel() for ax in fig.axes if ax.get_visible()]
-    assert labels == ["MSE", "PSNR (dB)", "SSIM", "position error (px)"]
+    assert labels == [P.METRIC_LABELS[m] for m in ("mse", "psnr", "ssim", "pos_err_px")]
+    assert "(dB)" in labels[1] and "(px)" in labels[3]
     ssim_ax = fig.axes[2]
     dashed = [ln for ln in ssim_ax.get_lines() if ln.get_linestyle() == "--"]
     assert len(dashed) == 1 and set(dashed[0].get_ydata()) == {0.8}
@@ -171,3 +173,74 @@ def test_plots_refuse_to_overwrite_and_unknown_suffix(tmp_path):
     assert sorted(p.name for p in tmp_path.iterdir()) == ["loss.png"]
     read_png(P.loss_curve({"loss": [1.0, 0.5]}, target, overwrite=True))
     assert P.loss_curve({"loss": [1.0, 0.5]}, tmp_path / "loss.svg").read_text().lstrip().startswith("<?xml")
+
+
+# --- readable at a glance: words instead of log keys, units on every axis, plain ticks -------------
+# (the checks read the labels back from the matplotlib Figure; "no offset or ×10ⁿ tick notation" and
+# "legend outside the data" are common practice for figures read by non-specialists)
+
+RAW_KEYS = {c for _, _, names in P.LOG_PANELS for c in names}
+
+
+def test_loss_plot_speaks_plain_language_with_units_and_plain_ticks():
+    steps = np.arange(60)
+    rows = [{"step": s, "loss": 0.5225 + 4e-4 * np.exp(-s / 20), "nll": 0.52 + 3e-4 * np.exp(-s / 20),
+             "kl_s0": 0.01 * np.exp(-s / 10) + 1e-4, "kl_v0": 0.02, "kl_w": 0.003, "agreement": 0.001,
+             "mse": 0.01 * np.exp(-s / 30), "lr": 3e-3, "beta": min(1.0, s / 30), "window": 8 + s // 10}
+            for s in steps]
+    fig = P.loss_curve_figure(rows)
+    fig.canvas.draw()
+    shown = [t.get_text() for ax in fig.axes for t in ax.get_legend().get_texts()]
+    assert not RAW_KEYS & set(shown), shown  # kl_s0, nll, beta, ... never reach the reader
+    for words in ("frame fit (negative log-likelihood per pixel)", "start-position KL", "start-velocity KL",
+                  "field-weight KL", "KL weight"):
+        assert words in shown, words
+    for ax in fig.axes:
+        assert ax.get_ylabel() and ax.get_xlabel() == "training step"
+        assert ax.yaxis.get_offset_text().get_text() == ""  # the objective spans 0.5200-0.5229: no offset
+        labels = [t.get_text() for t in ax.get_yticklabels() + ax.get_xticklabels()]
+        assert not [x for x in labels if "10^" in x or "×" in x or "e-" in x or "$" in x], labels
+    legend, axes_box = fig.axes[0].get_legend(), fig.axes[0].get_window_extent()
+    assert not legend.get_window_extent().overlaps(axes_box)  # the legend sits below, off the curves
+
+
+def test_metric_plot_horizon_from_zero_units_and_legend_off_the_curves():
+    dt = 0.05
+    times = 2.0 + dt * np.arange(1, 21)  # the recording's clock; the last given frame is at 2.0 s
+    per_method = {"model": {"mse": times / 100, "position_error_px": times, "object_ssim": 1 - times / 10},
+                  "persistence": {"mse": times / 50, "position_error_px": 2 * times,
+                                  "object_ssim": 1 - times / 5}}
+    fig = P.metric_curves_figure(per_method, times, threshold=0.8)
+    fig.canvas.draw()
+    for ax in fig.axes:
+        assert ax.get_xlim()[0] == 0.0 and ax.get_xlabel() == "forecast horizon (s)"
+        np.testing.assert_allclose(ax.get_lines()[0].get_xdata(), times - 2.0, atol=1e-12)
+        assert ax.get_legend() is None
+    assert "(px)" in fig.axes[2].get_ylabel() and "squared" in fig.axes[0].get_ylabel()
+    (legend,) = fig.legends
+    texts = [t.get_text() for t in legend.get_texts()]
+    assert "last frame held (baseline)" in texts and "persistence" not in texts
+    assert any(ln.get_linestyle() == "--" for ln in fig.axes[1].get_lines())  # threshold on object SSIM
+    for ax in fig.axes:
+        assert not legend.get_window_extent().overlaps(ax.get_window_extent())
+    # a known origin (the last context frame) is used as given
+    fig = P.metric_curves_figure(per_method, times, origin=1.9)
+    np.testing.assert_allclose(fig.axes[0].get_lines()[0].get_xdata(), times - 1.9, atol=1e-12)
+
+
+def test_contact_rows_colour_bars_have_units_and_spread_scale_fits_the_data():
+    rng = np.random.default_rng(2)
+    truth = rng.random((12, 3, 8, 8)).astype(np.float32)
+    pred = np.clip(truth + 0.05, 0, 1)
+    spread = (0.04 * rng.random((12, 3, 8, 8))).astype(np.float32)  # far below the old fixed 0.5
+    fig = P.truth_vs_prediction_figure(truth, pred, np.arange(12) / 10.0, every=4, spread=spread)
+    n = 3  # frames 0, 4, 8
+    error_row = [fig.axes[2 * n + c].images[0] for c in range(n)]
+    spread_row = [fig.axes[3 * n + c].images[0] for c in range(n)]
+    shown = spread[[0, 4, 8]].mean(axis=1)  # the tiles show the channel mean
+    for img in spread_row:  # one scale for the whole row, topped by the largest spread shown
+        assert img.get_clim() == (0.0, pytest.approx(float(shown.max()), rel=1e-6))
+    assert all(img.get_clim() == (0.0, 1.0) for img in error_row)  # the error keeps the fixed 0-1 scale
+    for row in (error_row, spread_row):  # one colour bar per row, beside its last frame, with its unit
+        assert "intensity" in row[-1].colorbar.ax.get_ylabel()
+    assert P.spread_scale(np.zeros((1, 1, 2, 2))) == P.MIN_SPREAD_SCALE  # one sample: no spread

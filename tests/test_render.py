@@ -257,7 +257,12 @@ def test_comparison_columns():
     cols = R.comparison_columns(pred, truth, spread=np.zeros_like(pred))
     assert [c[0] for c in cols] == ["truth", "prediction", "abs. error", "spread (std)"]
     np.testing.assert_allclose(cols[2][1], np.abs(truth - pred))
-    assert cols[2][2] == 1.0 and cols[3][2] == 0.5  # largest possible |error| and std on [0, 1]
+    assert cols[2][2] == 1.0  # largest possible |error| on [0, 1]
+    # the spread scale fits the spread shown: none here, so one 8-bit grey level (its floor)
+    assert cols[3][2] == pytest.approx(1 / 255)
+    spread = np.zeros_like(pred)
+    spread[1, :, 2, 3] = 0.2
+    assert R.comparison_columns(pred, truth, spread=spread)[3][2] == pytest.approx(0.2)
     assert [c[0] for c in R.comparison_columns(pred)] == ["prediction"]
 
 

@@ -114,7 +114,12 @@ def test_load_run_forecast_fill_and_resume_never_unpickle(world, tmp_path, no_un
     trial = rig / "trial_001"
     assert main(["forecast", str(run), str(trial), "--frames", "3", "--out", str(tmp_path / "c.gif")]) == 0
     assert (tmp_path / "c.gif").is_file() and (tmp_path / "c_forecast.npz").is_file()
-    assert main(["fill", str(run), str(trial), "--out", str(tmp_path / "filled")]) == 0
+    gappy = Path(shutil.copytree(trial, tmp_path / "gappy"))   # fill needs a dropped frame to fill
+    (gappy / "frame_0010.png").unlink()
+    stamps = gappy / "timestamps.csv"
+    stamps.write_text("".join(ln for ln in stamps.read_text().splitlines(keepends=True)
+                              if not ln.startswith("frame_0010.png,")))
+    assert main(["fill", str(run), str(gappy), "--out", str(tmp_path / "filled")]) == 0
     assert len(list((tmp_path / "filled").glob("frame_*.png"))) == 20
     copy = Path(shutil.copytree(run, tmp_path / "run"))
     assert main(["fit", "--resume", str(copy), "--set", "train.steps=6", "--quiet"]) == 0

@@ -16,6 +16,7 @@ from skimage.metrics import peak_signal_noise_ratio, structural_similarity
 from kinecast import config as C
 from kinecast.cli import main
 from kinecast.frames import read_recording
+from kinecast.plots import method_label
 from kinecast.rigs import write_rig
 from kinecast.train import fit
 
@@ -91,5 +92,14 @@ def test_report_is_one_self_contained_page(setup, tmp_path):
     assert "video/mp4" in page and "image/png" in page
     assert "not measurements" in page and "safety-critical" in page
     assert "[model]" in page  # the config is shown
-    for method in METHODS:
-        assert f"<td>{method}</td>" in page
+    for method in METHODS:  # methods in words ("last frame held (baseline)"), not summary.json keys
+        assert f"<td>{method_label(method)}</td>" in page
+    # section titles in words, numbers with units, raw keys only under "Technical details"
+    assert "Scores: " not in page and "<h2>Forecast scores on trial_001</h2>" in page
+    for unit in ("dB", "px", "s"):
+        assert re.search(rf"<td>[\d.]+ {unit}</td>", page), unit
+    assert "the last 20 frames" in page and re.search(r"\(\d+(\.\d+)? s\)", page)  # horizons in s
+    technical = page.index("<h2>Technical details</h2>")
+    for raw in ("world_size", "replica_spread", "threads"):
+        assert technical < page.index(f"<td>{raw}</td>"), raw
+    assert "replica spread" not in page and "world size" not in page  # no half-translated keys

@@ -55,7 +55,10 @@ def test_positions_stage_finds_the_moving_object(rig, tmp_path):
     rows = ck.read_log(tmp_path / "run")
     first = [r for r in rows if r.get("stage") == S.NUMBER[S.POSITIONS] and "bg_mse" in r]
     late = first[-5:]
-    assert np.mean([r["mse"] for r in late]) < 0.3 * np.mean([r["bg_mse"] for r in late])
+    # after the switch the encoder is sampled and the coverage term keeps a keypoint on every part of
+    # what moves (rod and bob): the error may rise above the switch point (0.3) but must stay well
+    # under the bare background's (measured on this clip: 0.26 without the coverage term, 0.40 with)
+    assert np.mean([r["mse"] for r in late]) < 0.5 * np.mean([r["bg_mse"] for r in late])
     # the run says what it found and judged
     saved = json.loads((tmp_path / "run" / ck.SUMMARY).read_text())
     assert saved["recipe"] == "staged" and saved["verdict"]["level"] in ("good", "weak", "failed")

@@ -29,7 +29,7 @@ try:  # Python 3.11+
 except ModuleNotFoundError:  # pragma: no cover - Python 3.10
     import tomli as tomllib  # type: ignore[no-redef]
 
-from .errors import KinecastError
+from .errors import KinecastError, closest, did_you_mean
 
 
 def _opt(default: Any, help: str, choices: tuple | None = None, lo: float | None = None,
@@ -79,12 +79,21 @@ class ModelConfig:
     hidden_layers: int = _opt(2, "hidden layers of the acceleration field", lo=1, hi=8)
     field_activation: str = _opt("tanh", "hidden activation of the acceleration field (relu forms the "
                                  "steep walls of impacts)", choices=("tanh", "relu", "softplus"))
+    field_per_keypoint: bool = _opt(False, "keypoint encoder, second order: one acceleration field shared by "
+                                    "the keypoints (each keypoint's own position and velocity in, its own "
+                                    "acceleration out) instead of one over all coordinates at once")
     velocity_frames: int = _opt(3, "frames stacked by the velocity encoder", lo=2, hi=16)
     # True: on the ball rig the position error over the first 20 forecast frames fell from 4.1 to
     # 2.7 px (sideways velocity no longer guessed wrong), pendulum 1.07 → 1.02 px (one run each)
     velocity_from_positions: bool = _opt(True, "second order: v0 = the finite-difference velocity of the position "
                                          "encoder's readings of the context frames + the velocity encoder's "
                                          "correction (else the velocity encoder alone)")
+    # False: the correction came from a conv net with a dense head that learned the training trials'
+    # velocities; on held-out air-table trials it turned the right finite difference into a wrong
+    # v0 (4 of 4 trials worse). Pendulum 0.79 -> 0.64 px @60 and 0.26 -> 0.11x the background's MSE,
+    # spring 2.23 -> 2.29 px (bench/recipe.py, seed 0, classic look, one run each)
+    velocity_correction: bool = _opt(False, "with model.velocity_from_positions: the velocity encoder adds a learned "
+                                     "correction to the finite difference (else it gives only the spread)")
     prior_std: float = _opt(1.0, "std of the Gaussian prior on the field's weights", lo=1e-6)
     init_logstd: float = _opt(-5.0, "initial log-std of the field's weight posterior", lo=-20.0, hi=2.0)
     likelihood: str = _opt("bernoulli", "pixel likelihood", choices=("bernoulli", "gaussian"))
@@ -135,6 +144,12 @@ class TrainConfig:
                            "stage and the end_to_end recipe use train.lr)", lo=0.0)
     keypoint_repulsion: float = _opt(0.0, "staged: weight of a term that keeps keypoints apart in the positions "
                                      "stage (for several similar objects)", lo=0.0)
+    # 1.0: on the air table the two keypoints then sat one on each puck (within ~0.5 px on held-out
+    # trials) where without it both found the same puck; pendulum 1.02 -> 0.79 px @60, spring
+    # 0.65 -> 0.29x the background's MSE (bench/recipe.py, seed 0, one run each)
+    keypoint_coverage: float = _opt(1.0, "staged: weight of a term that puts a keypoint near every part of "
+                                    "the frame that differs from the background, in the positions stage "
+                                    "(one keypoint per object when there are several)", lo=0.0)
     positions_kl: float = _opt(0.1, "staged: KL weight reached by the end of the positions stage", lo=0.0)
     escape_deadline: float = _opt(0.4, "staged: share of the positions stage after which an attempt that has "
                                   "found nothing (error still >= 0.8x the background's) restarts from a new seed", lo=0.05, hi=1.0)
@@ -183,7 +198,8 @@ class ForecastConfig:
 
     frames: int = _opt(30, "frames to forecast", lo=1)
     samples: int = _opt(1, "futures drawn (encoder noise and weight draws); 1 = mean weights", lo=1, hi=1000)
-    fps: float = _opt(0.0, "output frame rate; 0 = the recording's", lo=0.0)
+    fps: float = _opt(0.0, "forecast frames per second of recording time (the clip plays at the recording's "
+                      "rate, so 4x the recording's gives 4x slow motion); 0 = the recording's", lo=0.0)
     upscale: int = _opt(4, "pixel upscaling of rendered clips", lo=1, hi=16)
     contact_every: int = _opt(5, "every n-th frame on the contact sheet", lo=1)
 
@@ -216,19 +232,35 @@ class Config:
 
 
 SECTIONS = tuple(f.name for f in fields(Config))
-_BUDGET = re.compile(r"^(?:(\d+(?:\.\d+)?)h)?(?:(\d+(?:\.\d+)?)m)?(?:(\d+(?:\.\d+)?)s?)?$")
+_NUMBER = r"(\d+(?:\.\d+)?)"
+_UNIT_END = r"(?![a-z])"  # a unit word ends here ("5min" is minutes, not "5m" followed by "in")
+# hours, minutes, seconds in that order, each optional, spaces allowed: 90s, 5 min, 1h30m, 1 h 30 min
+_BUDGET = re.compile(rf"^(?:{_NUMBER}\s*(?:h|hr|hrs|hours?){_UNIT_END})?\s*"
+                     rf"(?:{_NUMBER}\s*(?:m|min|mins|minutes?){_UNIT_END})?\s*"
+                     rf"(?:{_NUMBER}\s*(?:s|sec|secs|seconds?){_UNIT_END})?$")
+_BUDGET_FORMS = "a duration like 90s, 5m, 5min, 5 min, 300s, 1h or 1h30m, or 0 for none"
 
 
 def parse_budget(text: str, key: str = "train.budget") -> float:
-    """Seconds in a budget like ``90s``, ``5m``, ``1h30m`` or ``120``; ``0`` means no budget.
+    """Seconds in a budget like ``90s``, ``5m``, ``5 min``, ``1h30m``; ``0`` means no budget.
+
+    A bare number other than 0 is refused: it has no unit (it once meant seconds, which surprised
+    users who meant minutes).
 
     >>> parse_budget("1h30m")
     5400.0
     """
-    s = str(text).strip().lower()
+    if not isinstance(text, str):  # a TOML number (budget = 5): the unit is missing
+        raise KinecastError(key, f"bad value {text!r}: a number has no unit; write {_BUDGET_FORMS} "
+                                 "(in quotes in a TOML file)")
+    s = text.strip().lower()
+    if re.fullmatch(_NUMBER, s):
+        if float(s) == 0:
+            return 0.0
+        raise KinecastError(key, f"bad value {text!r}: a bare number has no unit; write {_BUDGET_FORMS}")
     m = _BUDGET.match(s)
     if not s or not m or not any(m.groups()):
-        raise KinecastError(key, f"bad value {text!r}: allowed a duration like 90s, 5m, 1h30m or 0")
+        raise KinecastError(key, f"bad value {text!r}: allowed {_BUDGET_FORMS}")
     h, mi, se = (float(g) if g else 0.0 for g in m.groups())
     return h * 3600 + mi * 60 + se
 
@@ -253,6 +285,8 @@ def _check(section: str, f: dataclasses.Field, value: Any) -> Any:
             raise bad("a finite number")
         value = float(value)
     elif kind is str:
+        if key == "train.budget":
+            parse_budget(value, key)  # its own message: a bare number is refused naming the forms
         if not isinstance(value, str):
             raise bad("a string")
     elif kind is list:
@@ -268,8 +302,6 @@ def _check(section: str, f: dataclasses.Field, value: Any) -> Any:
     if kind in (int, float) and ((lo is not None and value < lo) or (hi is not None and value > hi)):
         rng = f"from {lo} to {hi}" if hi is not None else f"at least {lo}"
         raise bad(f"a number {rng}")
-    if key == "train.budget":
-        parse_budget(value, key)
     if key == "score.holdout" and not re.match(r"^(last:\d+|trial:.+)$", value):
         raise bad("last:N or trial:NAME")
     return value
@@ -282,15 +314,17 @@ def from_dict(tree: dict, base: Config | None = None, source: str = "config") ->
         raise KinecastError(source, "expected a table of sections")
     for section, values in tree.items():
         if section not in SECTIONS:
-            raise KinecastError(source, f"unknown section [{section}]: allowed {', '.join(SECTIONS)}")
+            raise KinecastError(source, f"unknown section [{section}]{did_you_mean(section, SECTIONS)}: "
+                                        f"allowed {', '.join(SECTIONS)}")
         if not isinstance(values, dict):
             raise KinecastError(f"{source}: {section}", "expected a table of keys")
         sub = getattr(cfg, section)
         known = {f.name: f for f in fields(sub)}
         for key, value in values.items():
             if key not in known:
-                raise KinecastError(f"{section}.{key}",
-                                    f"unknown key in {source}: allowed {', '.join(known)}")
+                every = [f"{s}.{f.name}" for s in SECTIONS for f in fields(getattr(cfg, s))]
+                raise KinecastError(f"{section}.{key}", f"unknown key in {source}"
+                                    f"{did_you_mean(f'{section}.{key}', every)}: allowed {', '.join(known)}")
             setattr(sub, key, _check(section, known[key], value))
     return cfg
 
@@ -369,7 +403,10 @@ def apply_overrides(cfg: Config, overrides: list[str] | tuple[str, ...]) -> Conf
         key, sep, raw = item.partition("=")
         section, dot, name = key.strip().partition(".")
         if not sep or not dot or not name:
-            raise KinecastError(f"--set {item}", "expected section.key=value")
+            names = {f.name: f"{s}.{f.name}" for s in SECTIONS for f in fields(getattr(Config(), s))}
+            close = closest(key.strip(), names)  # e.g. hidden=3 -> model.hidden=3
+            hint = f" (did you mean {names[close]}={raw.strip()}?)" if close and sep else ""
+            raise KinecastError(f"--set {item}", f"expected section.key=value{hint}")
         value = _parse_override_value(raw.strip())
         sub = getattr(Config(), section, None)
         if isinstance(getattr(sub, name, None), str) and not isinstance(value, str):

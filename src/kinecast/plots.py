@@ -5,6 +5,9 @@ function builds a :class:`matplotlib.figure.Figure`; the function of the same na
 writes it atomically (PNG, SVG or PDF by extension) and returns the path. An existing file is
 refused unless ``overwrite`` is passed.
 
+Every axis is labelled in words with its unit, ticks are plain numbers (no offset or ×10ⁿ notation),
+and legends sit outside the curves.
+
 Forecast scores describe statistical extrapolations, not measurements.
 """
 
@@ -18,10 +21,11 @@ from typing import Mapping, NamedTuple, Sequence
 import numpy as np
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
+from matplotlib.ticker import FuncFormatter, LogLocator, NullFormatter, ScalarFormatter
 
 from .errors import KinecastError
 from .fileio import write_with
-from .forecast.render import time_format
+from .forecast.render import MIN_SPREAD_SCALE, spread_scale, time_format
 
 PLOT_SUFFIXES = (".png", ".svg", ".pdf")
 DPI = 110
@@ -29,18 +33,87 @@ PANEL_INCHES = (4.2, 3.0)   # width, height of one panel
 FRAME_INCHES = 1.2          # side of one frame in the quick-look rows
 MAX_QUICK_COLUMNS = 16      # more frames than this in one row stop being a quick look
 NOTE = "forecasts are statistical extrapolations, not measurements"
-# training-log columns, grouped into panels (title, columns); 'step' (or 'time_s') is the x axis
+LEGEND_FONT = 7
+LOG_SPAN = 10.0             # a panel goes on a log scale only when its values span a decade or more
+FEW_DECADES = 1000.0        # below this span, log ticks at 1, 2 and 5 per decade; above, at 1 only
+COLOUR_BAR_BOX = (1.08, 0.0, 0.08, 1.0)  # x, y, width, height of a colour bar, in its frame's units
+INTENSITY = "intensity, 0 to 1"  # frames are intensities scaled to [0, 1] (frames/preprocess.py)
+# training-log columns, grouped into panels (title, y-axis label, columns); 'step' (or 'time_s') is the
+# x axis. The loss terms are per pixel of the frames and, for the likelihood and KL terms, in nats
+# (natural-log units), as model/latent_ode.py and model/staged.py compute them.
 LOG_PANELS = (
-    ("objective", ("loss", "nll")),
-    ("KL divergences and agreement", ("kl_s0", "kl_v0", "kl_w", "agreement")),
-    ("frame error (MSE)", ("mse", "val_mse")),
-    ("learning rate", ("lr",)),
-    ("KL weight β", ("beta",)),
-    ("window (frames)", ("window",)),
+    ("training objective", "nats per pixel", ("loss", "nll")),
+    ("KL divergences and agreement", "per pixel (KL in nats)", ("kl_s0", "kl_v0", "kl_w", "agreement")),
+    ("frame error", f"mean squared error\n({INTENSITY}, squared)", ("mse", "val_mse")),
+    ("learning rate", "learning rate (no unit)", ("lr",)),
+    ("KL weight", "weight on the KL terms (no unit)", ("beta",)),
+    ("training window", "window length (frames)", ("window",)),
 )
-METRIC_ORDER = ("mse", "mae", "psnr", "ssim", "pos_err_px")
-METRIC_LABELS = {"mse": "MSE", "mae": "MAE", "psnr": "PSNR (dB)", "ssim": "SSIM",
-                 "pos_err_px": "position error (px)"}
+# what a reader sees for each training-log column (the CSV keeps the short names)
+TERM_LABELS = {
+    "loss": "total loss (what training minimises)",
+    "nll": "frame fit (negative log-likelihood per pixel)",
+    "kl_s0": "start-position KL",
+    "kl_v0": "start-velocity KL",
+    "kl_w": "field-weight KL",
+    "agreement": "encoder-trajectory agreement",
+    "mse": "training frames",
+    "val_mse": "validation frames",
+    "lr": "learning rate",
+    "beta": "KL weight",
+    "window": "frames per training window",
+}
+METRIC_ORDER = ("mse", "mae", "psnr", "ssim", "object_ssim", "pos_err_px", "position_error_px",
+                "matched_error_px")
+METRIC_LABELS = {
+    "mse": f"mean squared error\n({INTENSITY}, squared)",
+    "mae": f"mean absolute error\n({INTENSITY})",
+    "psnr": "peak signal-to-noise ratio (dB)",
+    "ssim": "structural similarity, SSIM\n(no unit; 1 = identical)",
+    "object_ssim": "SSIM around the objects\n(no unit; 1 = identical)",
+    "pos_err_px": "object position error (px)",
+    "position_error_px": "object position error (px)",
+    "matched_error_px": "matched-object position error (px)",
+}
+# what a reader sees for each scoring method (summary.json and per_frame.csv keep the short names)
+METHOD_LABELS = {
+    "model": "model forecast",
+    "prediction": "prediction",
+    "background_only": "background only (baseline)",
+    "persistence": "last frame held (baseline)",
+    "constant_velocity": "constant velocity (baseline)",
+    "flow_warp": "optical-flow warp (baseline)",
+}
+
+
+def term_label(column: str) -> str:
+    """The words shown for a training-log column (unknown columns: underscores become spaces)."""
+    return TERM_LABELS.get(column, column.replace("_", " "))
+
+
+def method_label(method: str) -> str:
+    """The words shown for a scoring method (another run keeps its folder name)."""
+    return METHOD_LABELS.get(method, method)
+
+
+def _plain_number(value: float, _pos=None) -> str:
+    """A tick label as a plain decimal (0.0003, 0.5, 2000): no exponent, at most 4 significant digits."""
+    return np.format_float_positional(value, precision=4, fractional=False, trim="-")
+
+
+def _readable_ticks(ax) -> None:
+    """Plain-number ticks on both axes: no offset, no scientific notation; log axes at 1-2-5 steps."""
+    for axis, scale, limits in ((ax.xaxis, ax.get_xscale(), ax.get_xlim()),
+                                (ax.yaxis, ax.get_yscale(), ax.get_ylim())):
+        if scale == "log":
+            span = max(limits) / min(limits)
+            axis.set_major_locator(LogLocator(base=10.0, subs=(1.0, 2.0, 5.0) if span < FEW_DECADES else (1.0,)))
+            axis.set_major_formatter(FuncFormatter(_plain_number))
+            axis.set_minor_formatter(NullFormatter())
+        else:
+            fmt = ScalarFormatter(useOffset=False)
+            fmt.set_scientific(False)
+            axis.set_major_formatter(fmt)
 
 
 class PCA(NamedTuple):
@@ -163,27 +236,29 @@ def loss_curve_figure(log: str | Path | Mapping[str, np.ndarray] | Sequence[Mapp
         raise KinecastError(source, "training log has no rows")
     if len({len(v) for v in cols.values()}) > 1:
         raise KinecastError(source, "columns have different lengths")
-    panels = [(t, [c for c in names if c in cols and np.isfinite(cols[c]).any()])
-              for t, names in LOG_PANELS]
-    panels = [(t, names) for t, names in panels if names]
+    panels = [(t, unit, [c for c in names if c in cols and np.isfinite(cols[c]).any()])
+              for t, unit, names in LOG_PANELS]
+    panels = [(t, unit, names) for t, unit, names in panels if names]
     if not panels:
-        known = ", ".join(c for _, names in LOG_PANELS for c in names)
+        known = ", ".join(c for _, _, names in LOG_PANELS for c in names)
         raise KinecastError(source, f"no plottable columns: expected some of {known}")
     xname = "step" if "step" in cols else ("time_s" if "time_s" in cols else None)
     n = len(next(iter(cols.values())))
     x = cols[xname] if xname else np.arange(n, dtype=np.float64)
     fig, axes = _new_figure(len(panels))
-    for ax, (title, names) in zip(axes, panels):
+    for ax, (title, unit, names) in zip(axes, panels):
         finite = np.concatenate([cols[c][np.isfinite(cols[c])] for c in names])
         for c in names:
             ok = np.isfinite(cols[c])
             sparse = ok.sum() < 0.5 * n  # e.g. validation rows only
-            ax.plot(x[ok], cols[c][ok], marker="o" if sparse else None, ms=3, label=c)
-        if finite.size and (finite > 0).all():
+            ax.plot(x[ok], cols[c][ok], marker="o" if sparse else None, ms=3, label=term_label(c))
+        if finite.size and (finite > 0).all() and finite.max() >= LOG_SPAN * finite.min():
             ax.set_yscale("log")
         ax.set_title(title, fontsize=10)
-        ax.set_xlabel({"step": "step", "time_s": "time (s)"}.get(xname, "log row"))
-        ax.legend(fontsize=8)
+        ax.set_xlabel({"step": "training step", "time_s": "training time (s)"}.get(xname, "log row"))
+        ax.set_ylabel(unit, fontsize=8)
+        _readable_ticks(ax)
+        ax.legend(fontsize=LEGEND_FONT, loc="upper center", bbox_to_anchor=(0.5, -0.2), frameon=False)
         ax.grid(alpha=0.3)
     return fig
 
@@ -211,15 +286,35 @@ def loss_curve(log_csv_or_dict: str | Path | Mapping[str, np.ndarray] | Sequence
     return _save(loss_curve_figure(log_csv_or_dict), path, overwrite)
 
 
+def forecast_horizon(times: np.ndarray, origin: float | None = None) -> np.ndarray:
+    """Seconds since the last frame the forecast was given: ``times - origin``.
+
+    Without ``origin`` the last given frame is taken to lie one median frame interval before the first
+    scored frame (as ``kinecast score --pred/--truth`` assumes); a single time gives horizon 0.
+    """
+    times = np.asarray(times, dtype=np.float64)
+    if origin is None:
+        step = float(np.median(np.diff(times))) if len(times) > 1 else 0.0
+        origin = float(times[0]) - step if len(times) else 0.0
+    return times - origin
+
+
+def _threshold_panel(metrics: list[str]) -> str:
+    """The valid horizon is judged on the objects' SSIM when it is scored, else on the whole frame's."""
+    return "object_ssim" if "object_ssim" in metrics else "ssim"
+
+
 def metric_curves_figure(per_method: Mapping[str, Mapping[str, np.ndarray]], times: np.ndarray,
-                         threshold: float | None = None) -> Figure:
+                         threshold: float | None = None, origin: float | None = None) -> Figure:
     """One panel per metric against the forecast horizon (see :func:`metric_curves`)."""
     times = np.asarray(times, dtype=np.float64)
+    horizon = forecast_horizon(times, origin)
     present = {m for scores in per_method.values() for m in scores}
     metrics = [m for m in METRIC_ORDER if m in present] + sorted(present - set(METRIC_ORDER))
     if not metrics:
         raise ValueError("metric_curves needs at least one metric")
     fig, axes = _new_figure(len(metrics))
+    legend: dict[str, object] = {}
     for ax, metric in zip(axes, metrics):
         for method, scores in per_method.items():
             if metric not in scores:
@@ -227,19 +322,28 @@ def metric_curves_figure(per_method: Mapping[str, Mapping[str, np.ndarray]], tim
             y = np.asarray(scores[metric], dtype=np.float64)
             if y.shape != times.shape:
                 raise ValueError(f"{method}/{metric}: {y.shape} values for {times.shape} times")
-            ax.plot(times, np.where(np.isfinite(y), y, np.nan), label=method)  # PSNR of a perfect frame is inf
-        if metric == "ssim" and threshold is not None:
-            ax.axhline(threshold, ls="--", color="0.35", lw=1, label=f"threshold {threshold:g}")
+            colour = f"C{list(per_method).index(method) % 10}"  # one colour per method in every panel
+            line, = ax.plot(horizon, np.where(np.isfinite(y), y, np.nan), color=colour,
+                            label=method_label(method))  # PSNR of a perfect frame is inf: a gap
+            legend.setdefault(line.get_label(), line)
+        if metric == _threshold_panel(metrics) and threshold is not None:
+            line = ax.axhline(threshold, ls="--", color="0.35", lw=1,
+                              label=f"valid-horizon threshold (SSIM {threshold:g})")
+            legend.setdefault(line.get_label(), line)
+        ax.set_xlim(left=0.0)
         ax.set_xlabel("forecast horizon (s)")
-        ax.set_ylabel(METRIC_LABELS.get(metric, metric))
+        ax.set_ylabel(METRIC_LABELS.get(metric, metric.replace("_", " ")), fontsize=8)
+        _readable_ticks(ax)
         ax.grid(alpha=0.3)
-        ax.legend(fontsize=8)
+    fig.legend(list(legend.values()), list(legend), loc="outside lower center", fontsize=LEGEND_FONT,
+               ncols=min(3, len(legend)), frameon=False)
     fig.suptitle(NOTE, fontsize=8, color="0.3")
     return fig
 
 
 def metric_curves(per_method: Mapping[str, Mapping[str, np.ndarray]], times: np.ndarray,
-                  out: str | Path, threshold: float | None = None, overwrite: bool = False) -> Path:
+                  out: str | Path, threshold: float | None = None, overwrite: bool = False,
+                  origin: float | None = None) -> Path:
     """Plot per-frame scores against the forecast horizon: one panel per metric, one line per method.
 
     Parameters
@@ -248,20 +352,25 @@ def metric_curves(per_method: Mapping[str, Mapping[str, np.ndarray]], times: np.
         ``{method: {metric: (T,) array}}``; metrics like mse, mae, psnr, ssim, pos_err_px, whichever
         are present. Non-finite values (the infinite PSNR of a perfect frame) leave gaps.
     times : ndarray, shape (T,)
-        Forecast horizon of each frame in seconds.
+        Time of each scored frame in seconds (the recording's clock).
     out : str or Path
         ``.png``, ``.svg`` or ``.pdf``.
     threshold : float, optional
-        The SSIM level that ends the valid horizon, drawn dashed on the SSIM panel.
+        The SSIM level that ends the valid horizon, drawn dashed on the object-SSIM panel (or the SSIM
+        panel when object SSIM is not scored).
     overwrite : bool
         Replace an existing file.
+    origin : float, optional
+        Time of the last frame the forecast was given; the x axis is ``times - origin``, from 0.
+        Default: one median frame interval before the first scored frame (see
+        :func:`forecast_horizon`).
 
     Returns
     -------
     Path
     """
     path = _check_out(out, overwrite)
-    return _save(metric_curves_figure(per_method, times, threshold), path, overwrite)
+    return _save(metric_curves_figure(per_method, times, threshold, origin), path, overwrite)
 
 
 def phase_portrait_figure(latents: np.ndarray, times: np.ndarray) -> Figure:
@@ -325,7 +434,8 @@ def keypoint_phase_figure(pixels: np.ndarray, times: np.ndarray) -> Figure:
     ax.set_xlabel("position along its main direction of motion (px)")
     ax.set_ylabel("velocity along that direction (px/s)")
     ax.set_title("keypoint phase portrait", fontsize=10)
-    ax.legend(fontsize=8)
+    ax.legend(fontsize=LEGEND_FONT, loc="upper center", bbox_to_anchor=(0.5, -0.2), frameon=False,
+              ncols=min(4, pixels.shape[1]))
     ax.grid(alpha=0.3)
     return fig
 
@@ -340,18 +450,19 @@ def keypoint_phase(pixels: np.ndarray, times: np.ndarray, out: str | Path, overw
     return _save(keypoint_phase_figure(pixels, times), path, overwrite)
 
 
-def _show(ax, frame: np.ndarray, cmap: str) -> None:
-    """An image (RGB as is, grey in 'gray') or, for any other map, the channel mean on [0, 1]."""
+def _show(ax, frame: np.ndarray, cmap: str, vmax: float = 1.0):
+    """An image (RGB as is, grey in 'gray') or, for any other map, the channel mean on [0, vmax]."""
     if frame.shape[0] == 3 and cmap == "gray":
-        ax.imshow(np.clip(frame.transpose(1, 2, 0), 0, 1), interpolation="nearest")
+        image = ax.imshow(np.clip(frame.transpose(1, 2, 0), 0, 1), interpolation="nearest")
     else:
-        ax.imshow(frame.mean(axis=0), cmap=cmap, vmin=0.0, vmax=1.0, interpolation="nearest")
+        image = ax.imshow(frame.mean(axis=0), cmap=cmap, vmin=0.0, vmax=vmax, interpolation="nearest")
     ax.set_xticks([])
     ax.set_yticks([])
+    return image
 
 
 def truth_vs_prediction_figure(truth: np.ndarray | None, pred: np.ndarray, times: np.ndarray,
-                               every: int) -> Figure:
+                               every: int, spread: np.ndarray | None = None) -> Figure:
     """Rows of frames (see :func:`truth_vs_prediction`)."""
     pred, times = np.asarray(pred, dtype=np.float32), np.asarray(times, dtype=np.float64)
     if pred.ndim != 4 or len(times) != len(pred):
@@ -364,27 +475,47 @@ def truth_vs_prediction_figure(truth: np.ndarray | None, pred: np.ndarray, times
     if len(picks) > MAX_QUICK_COLUMNS:
         raise KinecastError(f"every={every}", f"{len(picks)} columns is too many for a quick look: use "
                                               f"every >= {math.ceil(len(pred) / MAX_QUICK_COLUMNS)}")
-    rows = [("prediction", pred, "gray")]
+    if spread is not None and np.shape(spread) != pred.shape:
+        raise ValueError(f"spread {np.shape(spread)} and pred {pred.shape} differ in shape")
+    # (row name, frames, colour map, top of the colour scale, colour-bar label or None)
+    rows = [("prediction", pred, "gray", 1.0, None)]
     if truth is not None:
         truth = np.asarray(truth, dtype=np.float32)
-        rows = [("truth", truth, "gray"), rows[0], ("abs. error\n(0 to 1)", np.abs(truth - pred), "magma")]
-    fig = Figure(figsize=(FRAME_INCHES * len(picks), FRAME_INCHES * len(rows) + 0.4), layout="constrained")
+        rows = [("truth", truth, "gray", 1.0, None), rows[0],
+                ("abs. error", np.abs(truth - pred), "magma", 1.0, f"|truth - prediction|\n({INTENSITY})")]
+    if spread is not None:
+        spread = np.asarray(spread, dtype=np.float32)
+        rows.append(("spread", spread, "viridis", spread_scale(spread[picks]),
+                     f"std. of sampled\nfutures ({INTENSITY})"))
+    bars = any(unit for *_, unit in rows)  # room for the colour bars beside the last column
+    fig = Figure(figsize=(FRAME_INCHES * (len(picks) + bars), FRAME_INCHES * len(rows) + 0.4),
+                 layout="constrained")
     FigureCanvasAgg(fig)
     axes = fig.subplots(len(rows), len(picks), squeeze=False)
     fmt = time_format(times)
-    for r, (name, frames, cmap) in enumerate(rows):
+    for r, (name, frames, cmap, vmax, unit) in enumerate(rows):
         for c, i in enumerate(picks):
-            _show(axes[r, c], frames[i], cmap)
+            image = _show(axes[r, c], frames[i], cmap, vmax)
             if r == 0:
                 axes[r, c].set_title(fmt.format(times[i]), fontsize=8)
         axes[r, 0].set_ylabel(name, fontsize=8)
+        if unit:
+            # beside the row's last frame, so that every row keeps the same frame size and columns
+            bar = fig.colorbar(image, cax=axes[r, -1].inset_axes(COLOUR_BAR_BOX))
+            bar.set_label(unit, fontsize=6)
+            bar.ax.tick_params(labelsize=6)
+            bar.ax.yaxis.set_major_formatter(FuncFormatter(_plain_number))
     fig.suptitle(NOTE, fontsize=7, color="0.3")
     return fig
 
 
 def truth_vs_prediction(truth: np.ndarray | None, pred: np.ndarray, times: np.ndarray,
-                        out: str | Path, every: int, overwrite: bool = False) -> Path:
-    """Rows of every ``every``-th frame: truth, prediction and absolute error (0..1, 'magma').
+                        out: str | Path, every: int, overwrite: bool = False,
+                        spread: np.ndarray | None = None) -> Path:
+    """Rows of every ``every``-th frame: truth, prediction, absolute error and spread, with colour bars.
+
+    The absolute error is drawn on the fixed scale 0 to 1 ('magma'); the spread ('viridis') on 0 to the
+    largest spread among the frames shown, so that a small spread is still visible.
 
     Parameters
     ----------
@@ -400,10 +531,12 @@ def truth_vs_prediction(truth: np.ndarray | None, pred: np.ndarray, times: np.nd
         Column stride; at most 16 columns.
     overwrite : bool
         Replace an existing file.
+    spread : ndarray, optional
+        ``(T, C, H, W)`` per-pixel standard deviation of sampled futures; adds the spread row.
 
     Returns
     -------
     Path
     """
     path = _check_out(out, overwrite)
-    return _save(truth_vs_prediction_figure(truth, pred, times, every), path, overwrite)
+    return _save(truth_vs_prediction_figure(truth, pred, times, every, spread), path, overwrite)

@@ -3,7 +3,9 @@
 Writes OUT (mp4, gif, or a folder of PNGs, by its extension) plus, beside it, ``<name>_sheet.png``
 (every n-th frame), ``<name>_latents.csv`` and ``<name>_phase.png`` (the latent trajectory) and
 ``<name>_forecast.npz`` (times, mean, spread, samples). When the recording has frames at the
-forecast times, the clip shows truth | prediction | absolute error (| spread).
+forecast times, the clip shows truth | prediction | absolute error (| spread); at output times
+with no recorded frame (e.g. between frames with ``--fps 4x``) the truth and error panels say so
+instead of comparing the prediction with nothing.
 """
 
 from __future__ import annotations
@@ -27,9 +29,13 @@ def configure(parser) -> None:
     parser.add_argument("path", metavar="PATH", help="recording to condition on")
     parser.add_argument("--frames", type=int, metavar="N", help="frames to forecast (forecast.frames)")
     parser.add_argument("--from", dest="start", metavar="TIME|FRAME",
-                        help="start point: a time like 2.5s or a frame number; default: the end")
+                        help="first forecast frame: a time like 2.5s or a frame number, at most one "
+                             "interval past the last recorded frame; default: the end")
     parser.add_argument("--samples", type=int, metavar="K", help="futures to draw (forecast.samples)")
-    parser.add_argument("--fps", metavar="F", help="output frame rate, e.g. 60 or 4x the recording's")
+    parser.add_argument("--fps", metavar="F",
+                        help="forecast frames per second of recording time, e.g. 60, or 4x the "
+                             "recording's rate; the clip always plays at the recording's rate, so "
+                             "4x gives 4x slow motion")
     parser.add_argument("--out", required=True, metavar="OUT", help="clip.mp4, clip.gif or a folder/")
     parser.add_argument("--overwrite", action="store_true", help="replace existing outputs")
     parser.add_argument("--device", choices=("auto", "cpu", "cuda"), help="compute device (train.device)")
@@ -79,7 +85,10 @@ def at_least_one(option: str, given: int | None, default: int) -> int:
 
 
 def parse_fps(text: str | None, rec, default: float) -> float:
-    """``60`` → 60 fps; ``4x`` → 4 × the recording's median rate; None → ``default``."""
+    """Forecast frames per second of recording time (not the clip's playback rate).
+
+    ``60`` → 60; ``4x`` → 4 × the recording's median rate; None → ``default``.
+    """
     if not text:
         return default
     try:
@@ -94,7 +103,11 @@ def parse_fps(text: str | None, rec, default: float) -> float:
 
 
 def parse_start(text: str | None, rec) -> int | None:
-    """``2.5s`` → the first slot at or after 2.5 s; ``75`` → slot 75; None → the end."""
+    """``2.5s`` → the first slot at or after 2.5 s; ``75`` → slot 75; None → the end.
+
+    A time past the end is refused by :func:`core.slot_at_time`, a frame number past it by
+    :func:`core.context_start_for` (one line naming the recording).
+    """
     if text is None:
         return None
     try:
@@ -106,8 +119,9 @@ def parse_start(text: str | None, rec) -> int | None:
 
 
 def truth_at(rec, times: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Recorded frames at ``times`` (within 1% of an interval) and a mask of where they exist."""
-    tol = 0.01 * rec.median_interval
+    """Recorded frames at ``times`` (within ``core.TIME_MATCH`` of an interval) and a mask of where
+    they exist; frames without one are zero in ``truth``, and the panels show no error there."""
+    tol = core.TIME_MATCH * rec.median_interval
     idx = np.clip(np.searchsorted(rec.times, times), 0, rec.n_frames - 1)
     best = np.where(np.abs(rec.times[np.maximum(idx - 1, 0)] - times) < np.abs(rec.times[idx] - times),
                     np.maximum(idx - 1, 0), idx)
@@ -157,7 +171,7 @@ def run(args, cfg) -> int:
     fc = core.forecast(model, cfg, rec, n, parse_start(args.start, rec), fps, samples, device)
     truth, have = truth_at(rec, fc.times)
     cols = comparison_columns(fc.mean, truth if have.any() else None, fc.spread if samples > 1 else None)
-    panels = panel_frames(cols, fc.times, upscale=cfg.forecast.upscale)
+    panels = panel_frames(cols, fc.times, upscale=cfg.forecast.upscale, recorded=have)
     play_fps = 1.0 / rec.median_interval  # play at the recording's rate: --fps 4x gives slow motion
     write_frames(panels, out, play_fps, overwrite=args.overwrite)
     contact_sheet(panels, fc.times, cfg.forecast.contact_every, side["sheet"], overwrite=args.overwrite,

@@ -19,6 +19,10 @@ from ..errors import KinecastError
 from ..frames import Recording
 from ..model import to_model_time
 
+# A requested time this fraction of the median interval from a slot's time is that slot (float
+# rounding of timestamps; the same 1% that matches forecast times to recorded frames).
+TIME_MATCH = 0.01
+
 
 @dataclass
 class Forecast:
@@ -58,7 +62,10 @@ def context_start_for(rec: Recording, k: int, start: int | None) -> int:
     start = rec.n_frames if start is None else start
     if rec.n_frames < k:
         raise KinecastError(rec.source, f"has {rec.n_frames} frames; the model needs at least {k} to start from")
-    if not 0 < start <= rec.n_frames:
+    if start > rec.n_frames:
+        raise KinecastError(rec.source, f"start frame {start} is past the end of the recording: allowed "
+                                        f"1..{rec.n_frames} ({rec.n_frames} is just after the last frame)")
+    if start < 1:
         raise KinecastError(rec.source, f"start frame {start} is outside 1..{rec.n_frames}")
     for s in range(start - k, -1, -1):
         if not rec.missing[s:s + k].any():
@@ -67,11 +74,20 @@ def context_start_for(rec: Recording, k: int, start: int | None) -> int:
 
 
 def slot_at_time(rec: Recording, when: float) -> int:
-    """The first slot at or after ``when`` seconds."""
-    idx = int(np.searchsorted(rec.times, when - 1e-9))
-    if idx == 0 or idx > rec.n_frames:
-        raise KinecastError(rec.source, f"time {when} s is outside {rec.times[0]:.3f}..{rec.times[-1]:.3f} s")
-    return idx
+    """The first slot at or after ``when`` seconds.
+
+    The latest allowed time is one median interval past the last frame: slot ``n_frames``, where a
+    forecast from the end of the recording starts. A later time is refused, never moved back.
+    """
+    tol = TIME_MATCH * rec.median_interval
+    end = rec.times[-1] + rec.median_interval
+    if when > end + tol:
+        raise KinecastError(rec.source, f"start time {when:g} s is past the end of the recording: allowed "
+                                        f"up to {end:.3f} s (one interval after the last frame)")
+    if not when > rec.times[0] + tol:  # also NaN
+        raise KinecastError(rec.source, f"start time {when:g} s is not after the first frame "
+                                        f"({rec.times[0]:.3f} s): a forecast needs frames before it")
+    return int(np.searchsorted(rec.times, when - tol))
 
 
 def predict_from(model, cfg: Config, rec: Recording, ctx_start: int, times: np.ndarray,
@@ -129,14 +145,16 @@ def forecast(model, cfg: Config, rec: Recording, n_frames: int, start: int | Non
              fps: float = 0.0, samples: int = 1, device="cpu") -> Forecast:
     """Forecast ``n_frames`` from the ``k`` present frames before slot ``start``.
 
-    Output times continue from the last conditioning frame at the recording's median interval, or
-    at ``fps`` frames per second when given.
+    The first output frame is at slot ``start``'s time (one median interval after the last frame
+    when ``start`` is the end of the recording, the default); the others follow at the recording's
+    median interval, or at ``fps`` frames per second of recording time when given.
     """
     k = cfg.model.velocity_frames
     cs = context_start_for(rec, k, start)
-    t_last = rec.times[cs + k - 1]
+    start = rec.n_frames if start is None else start
+    t0 = rec.times[start] if start < rec.n_frames else rec.times[-1] + rec.median_interval
     dt = 1.0 / fps if fps > 0 else rec.median_interval
-    times = t_last + dt * np.arange(1, n_frames + 1)
+    times = t0 + dt * np.arange(n_frames)
     return predict_from(model, cfg, rec, cs, times, samples, device)
 
 

@@ -38,7 +38,7 @@ from ..fileio import atomic_path, write_bytes
 
 # --- fixed facts ---------------------------------------------------------------------------------
 ERROR_SCALE = 1.0   # |truth - prediction| of intensities in [0, 1] is at most 1
-SPREAD_SCALE = 0.5  # std of any variable in [0, 1] is at most 1/2 (Popoviciu's inequality)
+MIN_SPREAD_SCALE = 1 / 255  # one 8-bit grey level: the smallest spread scale worth a colour ramp
 MP4_CRF = 18        # x264 constant-rate factor; ~18 is commonly called visually lossless (common practice)
 FRAME_PATTERN = "frame_{:0{w}d}.png"
 FRAME_DIGITS = 4    # at least frame_0000.png; more digits when a clip is longer
@@ -53,6 +53,9 @@ GAP = 4             # space between panels and between contact-sheet tiles
 PAD = 4             # inner margin of text
 MIN_PANEL_WIDTH = 96  # narrowest panel; fits a ten-letter title at TEXT_SCALE
 BACKGROUND = 28     # grey level of bands and gaps
+NO_RECORD_GREY = 96  # neutral fill where there is no recorded frame: unlike black truth or the bands
+NO_RECORD_TEXT = "no recorded frame"
+TRUTH_TITLE, ERROR_TITLE = "truth", "abs. error"  # the columns made from recorded frames
 
 
 class Layout(NamedTuple):
@@ -287,18 +290,24 @@ def comparison_columns(pred: np.ndarray, truth: np.ndarray | None = None,
     """The usual columns: truth | prediction | abs. error | spread (those that can be made).
 
     The absolute error is drawn on the fixed scale [0, ERROR_SCALE] in 'magma', the spread
-    (per-pixel std of sampled futures) on [0, SPREAD_SCALE] in 'viridis'.
+    (per-pixel std of sampled futures) on [0, :func:`spread_scale`] (the largest spread shown) in
+    'viridis'.
     """
     cols: list[tuple] = []
     if truth is not None:
-        cols.append(("truth", truth))
+        cols.append((TRUTH_TITLE, truth))
     cols.append(("prediction", pred))
     if truth is not None:
         err = np.abs(np.asarray(truth, np.float32) - np.asarray(pred, np.float32))
-        cols.append(("abs. error", err, ERROR_SCALE, "magma"))
+        cols.append((ERROR_TITLE, err, ERROR_SCALE, "magma"))
     if spread is not None:
-        cols.append(("spread (std)", spread, SPREAD_SCALE, "viridis"))
+        cols.append(("spread (std)", spread, spread_scale(spread), "viridis"))
     return cols
+
+
+def spread_scale(spread: np.ndarray) -> float:
+    """Top of the spread colour scale: the largest spread shown (channel mean), at least one grey level."""
+    return max(float(np.asarray(spread, dtype=np.float64).mean(axis=1).max()), MIN_SPREAD_SCALE)
 
 
 def panel_layout(n_columns: int, frame_hw: tuple[int, int], upscale: int, heat: bool) -> Layout:
@@ -313,7 +322,8 @@ def panel_layout(n_columns: int, frame_hw: tuple[int, int], upscale: int, heat: 
     return Layout(height, n_columns * pw + (n_columns - 1) * GAP, boxes, panels)
 
 
-def panel_frames(columns: Sequence[tuple], times: np.ndarray, upscale: int = 1) -> np.ndarray:
+def panel_frames(columns: Sequence[tuple], times: np.ndarray, upscale: int = 1,
+                 recorded: np.ndarray | None = None) -> np.ndarray:
     """Side-by-side panels, each with its title, and the time written under every frame.
 
     Parameters
@@ -327,6 +337,10 @@ def panel_frames(columns: Sequence[tuple], times: np.ndarray, upscale: int = 1) 
         Seconds; written as ``t = 1.23 s``.
     upscale : int
         Nearest-neighbour magnification.
+    recorded : ndarray of bool, shape (T,), optional
+        Where False (no recorded frame at that time, e.g. between frames in slow motion), the
+        columns made from recorded frames (titled ``TRUTH_TITLE`` and ``ERROR_TITLE``) show
+        ``NO_RECORD_TEXT`` on a neutral grey panel instead of any image or error.
 
     Returns
     -------
@@ -357,10 +371,25 @@ def panel_frames(columns: Sequence[tuple], times: np.ndarray, upscale: int = 1) 
     out = np.broadcast_to(template, (t_count,) + template.shape).copy()
     for (y0, x0, y1, x1), part in zip(lay.boxes, parts):
         out[:, y0:y1, x0:x1] = upscale_frames(part, upscale)
+    if recorded is not None:
+        _blank_unrecorded(out, lay.boxes, [str(c[0]) for c in columns], np.asarray(recorded, bool))
     fmt = time_format(times)
     for k in range(t_count):
         _text(out[k], (lay.height - BAND, 0, lay.height, lay.width), fmt.format(times[k]))
     return out
+
+
+def _blank_unrecorded(out: np.ndarray, boxes: list[tuple[int, int, int, int]], titles: list[str],
+                      recorded: np.ndarray) -> None:
+    """Replace the truth and error images of frames without a recorded frame by a labelled grey panel."""
+    if recorded.shape != (len(out),):
+        raise ValueError(f"recorded must have shape ({len(out)},), got {recorded.shape}")
+    y0, x0, y1, x1 = boxes[0]
+    tile = np.full((y1 - y0, x1 - x0, 3), NO_RECORD_GREY, np.uint8)
+    _text(tile, (0, 0, y1 - y0, x1 - x0), NO_RECORD_TEXT, align="center")
+    for (y0, x0, y1, x1), title in zip(boxes, titles):
+        if title in (TRUTH_TITLE, ERROR_TITLE):
+            out[~recorded, y0:y1, x0:x1] = tile
 
 
 def _scale_bar(img: np.ndarray, box: tuple[int, int, int, int], vmax: float, cmap: str) -> None:

@@ -77,7 +77,19 @@ class GaussEncoder(nn.Module):
         if extra is not None:
             h = torch.cat([h, extra], dim=1)
         mean, logvar = self.head(h).chunk(2, dim=1)
-        return mean, logvar.clamp(LOGVAR_MIN, LOGVAR_MAX)
+        return mean, bounded_logvar(logvar)
+
+
+def bounded_logvar(x: torch.Tensor) -> torch.Tensor:
+    """``x`` clamped to [LOGVAR_MIN, LOGVAR_MAX] in value, with the gradient of ``x`` itself.
+
+    A plain clamp has zero gradient outside the range: a log-variance pushed past the top once
+    (one large step) stayed there for good, its samples 20× too wide, and the rollouts that
+    followed diverged (air-table rig, dynamics stage). With the gradient passed straight through,
+    the loss can bring it back (the straight-through estimator, Bengio, Léonard and Courville 2013,
+    arXiv:1308.3432).
+    """
+    return x + (x.clamp(LOGVAR_MIN, LOGVAR_MAX) - x).detach()
 
 
 def _decoder_channels(base: int, stages: int) -> list[int]:

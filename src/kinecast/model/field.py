@@ -3,6 +3,11 @@
 Second order: the state is ``y = [s, v]`` (each of size q); ``ds/dt = v`` and ``dv/dt = f_W(s, v)``.
 First order: the state is ``z`` (size 2q) and ``dz/dt = f_W(z)``.
 
+*Shared per object* (``group = g > 0``, second order only): s is q / g objects of g coordinates
+each (keypoints: g = 2, image x and y); one MLP maps each object's own ``[s_j, v_j]`` to its own
+acceleration ``a_j``. Several similar objects (pucks on a table) then share what one of them teaches
+the field, where a field over all coordinates at once memorises the training layouts.
+
 Weights follow q(W) = N(μ, σ²) per weight, prior N(0, prior_std²). :meth:`DynamicsField.draw` picks
 the weights for one pass: one independent draw per sequence (batched weight tensors, evaluated
 with ``torch.baddbmm``), or the posterior means for a deterministic forecast.
@@ -46,6 +51,9 @@ class DynamicsField(nn.Module):
         Prior standard deviation, and the initial log σ of every weight.
     activation : str
         Hidden activation, a key of :data:`ACTIVATIONS` (``relu`` forms the steep walls of impacts).
+    group : int
+        0: one MLP over the whole state. g > 0 (second order): one MLP shared by the q / g objects
+        of g coordinates each, ``[s_j, v_j]`` (2g) → ``a_j`` (g).
 
     Examples
     --------
@@ -53,17 +61,26 @@ class DynamicsField(nn.Module):
     >>> f.draw(3)
     >>> f(torch.tensor(0.0), torch.zeros(3, 4)).shape
     torch.Size([3, 4])
+    >>> g = DynamicsField(4, 16, 2, True, True, 1.0, -5.0, group=2)
+    >>> g.draw(3)
+    >>> g(torch.tensor(0.0), torch.zeros(3, 8)).shape
+    torch.Size([3, 8])
     """
 
     def __init__(self, q: int, hidden: int, hidden_layers: int, second_order: bool, bayesian: bool,
-                 prior_std: float, init_logstd: float, activation: str = "tanh"):
+                 prior_std: float, init_logstd: float, activation: str = "tanh", group: int = 0):
         super().__init__()
+        if group and (not second_order or q % group):
+            raise ValueError(f"DynamicsField: a shared per-object field needs second order and q ({q}) "
+                             f"a multiple of the group size ({group})")
         self.act = ACTIVATIONS[activation]
         self.q = q
         self.second_order = second_order
         self.bayesian = bayesian
         self.prior_std = float(prior_std)
-        sizes = [2 * q] + [hidden] * hidden_layers + [q if second_order else 2 * q]
+        self.group = int(group)
+        width = self.group or q  # position coordinates seen by one evaluation of the MLP
+        sizes = [2 * width] + [hidden] * hidden_layers + [width if second_order else 2 * width]
         self.w_mu = nn.ParameterList()
         self.b_mu = nn.ParameterList()
         self.w_logstd = nn.ParameterList()
@@ -108,24 +125,33 @@ class DynamicsField(nn.Module):
             return list(self.w_mu) + list(self.b_mu)
         return [x for pair in self._weights for x in pair]
 
+    def _objects(self, x: torch.Tensor) -> torch.Tensor:
+        """(n, 2q) → (n, G, MLP input): one row per object, or one row of the whole state."""
+        if not self.group:
+            return x.unsqueeze(1)
+        n, g = x.shape[0], self.group
+        s, v = x[:, :self.q].reshape(n, -1, g), x[:, self.q:].reshape(n, -1, g)
+        return torch.cat([s, v], dim=2)
+
     def mlp(self, x: torch.Tensor) -> torch.Tensor:
-        """The MLP on a batch ``x`` of shape (n, 2q) with the current weights."""
+        """The MLP on a batch ``x`` of shape (n, 2q) with the current weights (per object if grouped)."""
         n_layers = len(self.w_mu)
+        n = x.shape[0]
+        x = self._objects(x)
         if self._weights is None:
             for i, (w, b) in enumerate(zip(self.w_mu, self.b_mu)):
-                x = torch.addmm(b, x, w)
+                x = torch.matmul(x, w) + b
                 if i < n_layers - 1:
                     x = self.act(x)
-            return x
-        if x.shape[0] != self._weights[0][0].shape[0]:
-            raise ValueError(f"DynamicsField: state batch {x.shape[0]} but weights drawn for "
+            return x.reshape(n, -1)
+        if n != self._weights[0][0].shape[0]:
+            raise ValueError(f"DynamicsField: state batch {n} but weights drawn for "
                              f"{self._weights[0][0].shape[0]} sequences")
-        x = x.unsqueeze(1)
         for i, (w, b) in enumerate(self._weights):
             x = torch.baddbmm(b, x, w)
             if i < n_layers - 1:
                 x = self.act(x)
-        return x.squeeze(1)
+        return x.reshape(n, -1)
 
     def forward(self, t: torch.Tensor, y: torch.Tensor) -> torch.Tensor:
         """dy/dt at state ``y`` (n, 2q); autonomous, so ``t`` is unused."""

@@ -34,7 +34,7 @@ import torch
 import torch.nn.functional as F
 from torch import nn
 
-from .convnets import INIT_LOGVAR, LOGVAR_MAX, LOGVAR_MIN, OUT_GAIN, Activation
+from .convnets import INIT_LOGVAR, OUT_GAIN, Activation, bounded_logvar
 
 DILATIONS = (1, 2, 4)  # dilations of the decoder's 3×3 convs: receptive field ≈ 2·(1+2·Σd) px at full size
 UPSCALE = 2  # both nets work at 1/UPSCALE of the frame size (pixel shuffle back up in the decoder)
@@ -103,7 +103,7 @@ class KeypointEncoder(nn.Module):
         h = self.trunk(torch.cat([x, x - background.to(x)], dim=1))
         points = spatial_softmax(self.heat(h))
         logvar = self.logvar(h.mean(dim=(2, 3)))
-        return points.flatten(1), logvar.clamp(LOGVAR_MIN, LOGVAR_MAX)
+        return points.flatten(1), bounded_logvar(logvar)
 
 
 class KeypointDecoder(nn.Module):

@@ -85,6 +85,7 @@ class LatentODE(nn.Module):
         # the velocity encoder also reads the position encoder's means of the k context frames
         self.vel_enc = GaussEncoder((2 * k - 1) * channels, size, model_cfg.enc_channels, q, extra_dim=k * q)
         self.velocity_from_positions = model_cfg.velocity_from_positions and self.variant != "first_order"
+        self.velocity_correction = model_cfg.velocity_correction
         if self.velocity_from_positions:  # the encoder's mean starts as no correction to the finite difference
             with torch.no_grad():
                 self.vel_enc.head.weight[:q].zero_()
@@ -93,7 +94,9 @@ class LatentODE(nn.Module):
                                    second_order=self.variant != "first_order",
                                    bayesian=self.variant != "deterministic",
                                    prior_std=model_cfg.prior_std, init_logstd=model_cfg.init_logstd,
-                                   activation=model_cfg.field_activation)
+                                   activation=model_cfg.field_activation,
+                                   group=2 if (self.keypoints and model_cfg.field_per_keypoint
+                                               and self.variant != "first_order") else 0)
         if model_cfg.likelihood == "gaussian":
             self.log_noise = nn.Parameter(torch.full((channels,), math.log(INIT_NOISE_STD)))
         else:
@@ -163,7 +166,8 @@ class LatentODE(nn.Module):
         if self.velocity_from_positions:
             if ctx_t is None:
                 ctx_t = torch.arange(self.k, dtype=ctx.dtype, device=ctx.device) * self.solver_cfg.units_per_frame
-            v_mean = v_mean + fd_velocity(pos_mean.reshape(B, self.k, self.q), ctx_t[:self.k].to(ctx))
+            v_fd = fd_velocity(pos_mean.reshape(B, self.k, self.q), ctx_t[:self.k].to(ctx))
+            v_mean = v_mean + v_fd if self.velocity_correction else v_fd
         return s_mean, s_logvar, v_mean, v_logvar
 
     def encode(self, ctx: torch.Tensor, sample: bool, generator: torch.Generator | None = None

@@ -21,13 +21,20 @@ positions anchors v0 (second-order one-sided difference, a handbook formula).
 from __future__ import annotations
 
 import torch
+import torch.nn.functional as F
 
 from .gauss import bernoulli_nll, gaussian_nll, kl_std_normal
+from .keypoints import pixel_grid
 from .latent_ode import fd_velocity
 
 # Variance floor of the encoded positions in the dynamics loss, in (units per pixel)²: half a
 # pixel of the keypoint grid (2 / size per pixel). No position is trusted to better than that.
 VAR_FLOOR_PIXELS = 0.5
+# Foreground threshold of the coverage term in robust σ of the frame's difference from the
+# background: a Gaussian exceeds 5σ with probability ~3e-7 (normal table), so a frame of pure sensor
+# noise has no foreground (at 3σ, the bench's first runs, one or two noise pixels per frame passed
+# and took all of a still frame's weight)
+NOISE_SIGMAS = 5.0
 
 
 def _pixel_nll(model, logits: torch.Tensor, frames: torch.Tensor) -> torch.Tensor:
@@ -46,13 +53,51 @@ def keypoint_overlap(points: torch.Tensor, width: float) -> torch.Tensor:
     return torch.exp(-d2[:, upper] / (2 * width ** 2)).sum(1).mean()
 
 
-def autoencoder_terms(model, frames: torch.Tensor, sample: bool, beta: float, repulsion: float = 0.0) -> dict:
+def foreground_weights(frames: torch.Tensor, background: torch.Tensor, size: int) -> torch.Tensor:
+    """Where each frame differs from the static background: frames [N, C, H, W] → weights [N, size, size]
+    summing to 1 per frame (0 for a frame with no clear difference).
+
+    |frame − background| summed over channels, area-averaged to ``size``, minus the frame's median
+    (a global lighting change) and :data:`NOISE_SIGMAS` scaled median absolute deviations of it
+    (sensor noise; the MAD × 1.4826 estimates a Gaussian's σ, a handbook robust-statistics constant).
+    """
+    d = (frames - background.to(frames)).abs().sum(1, keepdim=True)
+    d = F.interpolate(d, size=(size, size), mode="area").flatten(1)
+    med = d.median(dim=1, keepdim=True).values
+    mad = (d - med).abs().median(dim=1, keepdim=True).values * 1.4826
+    w = torch.relu(d - med - NOISE_SIGMAS * mad)
+    total = w.sum(1, keepdim=True)
+    w = torch.where(total > 0, w / total.clamp_min(1e-12), torch.zeros_like(w))
+    return w.view(-1, size, size)
+
+
+def keypoint_coverage(points: torch.Tensor, weights: torch.Tensor, width: float) -> torch.Tensor:
+    """Mean over frames of Σ_p w_p · softmin_j(d²_pj) — the soft k-means distortion of the foreground
+    weights ``weights`` [N, h, w] around the keypoints ``points`` [N, 2K] (normalised units).
+
+    Small when every part of what moves has a keypoint near it: with two keypoints on one of two
+    pucks, the other puck's pixels pull the nearer keypoint over to it. ``width`` sets the softness
+    of the assignment (responsibilities ∝ exp(−d² / 2·width²), as in soft k-means, common practice).
+    """
+    N, h, w = weights.shape
+    p = points.reshape(N, -1, 2)
+    gy, gx = torch.meshgrid(pixel_grid(h, points.device, points.dtype),
+                            pixel_grid(w, points.device, points.dtype), indexing="ij")
+    pix = torch.stack([gx, gy], dim=-1).reshape(1, h * w, 1, 2)
+    d2 = ((pix - p[:, None]) ** 2).sum(-1)  # [N, h·w, K]
+    resp = torch.softmax(-d2 / (2 * width ** 2), dim=2)
+    return ((resp * d2).sum(2) * weights.reshape(N, -1)).sum(1).mean()
+
+
+def autoencoder_terms(model, frames: torch.Tensor, sample: bool, beta: float, repulsion: float = 0.0,
+                      coverage: float = 0.0) -> dict:
     """Frame autoencoder loss per pixel: frames [N, C, H, W] → position → frame.
 
     Returns ``loss`` (NLL + beta·KL(q(s)‖N(0, I)) per pixel, plus ``repulsion`` × the keypoints'
-    :func:`keypoint_overlap` at twice the blob width, which spreads keypoints over several objects),
+    :func:`keypoint_overlap` at twice the blob width, which spreads keypoints over several objects,
+    plus ``coverage`` × their :func:`keypoint_coverage` of the foreground at the encoder's resolution),
     ``nll``, ``kl_s0``, ``mse`` (of the reconstruction), ``bg_mse`` (of the background alone, for
-    the escape test) and ``overlap``.
+    the escape test), ``overlap`` and ``coverage``.
     """
     mean, logvar = model.encode_positions(frames)
     s = mean + (0.5 * logvar).exp() * torch.randn_like(mean) if sample else mean
@@ -63,11 +108,16 @@ def autoencoder_terms(model, frames: torch.Tensor, sample: bool, beta: float, re
     with torch.no_grad():
         mse = ((torch.sigmoid(logits) - frames) ** 2).mean()
         bg_mse = ((model.background - frames) ** 2).mean()
-    overlap = nll.new_zeros(())
+    overlap = cover = nll.new_zeros(())
     if model.keypoints and model.q > 2:
         overlap = keypoint_overlap(mean, 2 * model.cfg.blob_std)
-    return {"loss": nll + beta * kl + repulsion * overlap, "nll": nll.detach(), "kl_s0": kl.detach(),
-            "mse": mse, "bg_mse": bg_mse, "overlap": overlap.detach()}
+    if model.keypoints and coverage > 0:
+        with torch.no_grad():
+            weights = foreground_weights(frames, model.background, model.pos_enc.half)
+        cover = keypoint_coverage(mean, weights, 2 * model.cfg.blob_std)
+    loss = nll + beta * kl + repulsion * overlap + coverage * cover
+    return {"loss": loss, "nll": nll.detach(), "kl_s0": kl.detach(), "mse": mse, "bg_mse": bg_mse,
+            "overlap": overlap.detach(), "coverage": cover.detach()}
 
 
 @torch.no_grad()

@@ -75,6 +75,25 @@ def parse_params(items: list[str]) -> dict[str, str]:
     return out
 
 
+def _span(folders: list[Path]) -> str:
+    return folders[0].name if len(folders) == 1 else f"{folders[0].name} ... {folders[-1].name}"
+
+
+def _dropped_note(folders: list[Path]) -> str:
+    """How many frames the camera dropped and where they were kept (only folders that exist)."""
+    kept = {f: len(list((f / DROPPED_DIR).glob("frame_*.png"))) for f in folders if (f / DROPPED_DIR).is_dir()}
+    kept = {f: n for f, n in kept.items() if n}
+    if not kept:
+        return "no frames dropped"
+    if len(kept) == 1:
+        where = f"{next(iter(kept)).name}/{DROPPED_DIR}/"
+    elif len(kept) == len(folders):
+        where = f"{DROPPED_DIR}/ of every trial"
+    else:
+        where = f"{DROPPED_DIR}/ of {', '.join(f.name for f in sorted(kept))}"
+    return f"{sum(kept.values())} dropped frame(s) kept in {where}"
+
+
 def run(args: argparse.Namespace, cfg) -> int:
     """Render and write the trials; print where they went."""
     camera = Camera(noise=args.noise, blur=args.blur, exposure=args.exposure, vignette=args.vignette,
@@ -84,10 +103,7 @@ def run(args: argparse.Namespace, cfg) -> int:
                         size=args.size, fps=args.fps, camera=camera, channels=args.channels,
                         params=parse_params(args.params), overwrite=args.overwrite, progress=True,
                         look=args.look)
-    dropped = sum(len(list((f / DROPPED_DIR).glob("frame_*.png"))) for f in folders
-                  if (f / DROPPED_DIR).is_dir())
-    span = folders[0].name if len(folders) == 1 else f"{folders[0].name} ... {folders[-1].name}"
-    print(f"wrote {len(folders)} trial(s) of rig {args.name!r} to {Path(args.out)} ({span}; "
-          f"{args.frames} frames each, look {args.look}, {dropped} dropped kept in {DROPPED_DIR}/)")
+    print(f"wrote {len(folders)} trial(s) of rig {args.name!r} to {Path(args.out)} ({_span(folders)}; "
+          f"{args.frames} frames each, look {args.look}; {_dropped_note(folders)})")
     print("frames are synthetic; truth.csv holds the simulated state of every frame")
     return 0

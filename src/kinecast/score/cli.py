@@ -70,7 +70,8 @@ def write_scores(out: Path, result: dict, cfg, extra: dict) -> None:
                                               for c in result["coverage"]]
     write_text(out / "summary.json", json.dumps(_finite(summary), indent=2) + "\n")
     shown = {method: {m: per[m] for m in METRICS} for method, per in result["per_frame"].items()}
-    metric_curves(shown, times, out / "metrics.png", threshold=cfg.score.ssim_threshold, overwrite=True)
+    metric_curves(shown, times, out / "metrics.png", threshold=cfg.score.ssim_threshold, overwrite=True,
+                  origin=result.get("origin"))
 
 
 def table(result: dict) -> str:
@@ -122,7 +123,8 @@ def _run_pair(args, cfg, out: Path) -> int:
     present = ~truth.missing & ~pred.missing
     origin = truth.times[0] - truth.median_interval
     per, summ = score_prediction(pred.frames, truth.frames, present, truth.times, origin, cfg)
-    result = {"times": truth.times, "per_frame": {"prediction": per}, "summary": {"prediction": summ}}
+    result = {"times": truth.times, "origin": origin, "per_frame": {"prediction": per},
+              "summary": {"prediction": summ}}
     write_scores(out, result, cfg, {"pred": str(args.pred), "truth": str(args.truth)})
     print(table(result))
     print(f"scores written to {out}\nnote: {CAUTION}")

@@ -3,6 +3,10 @@
 Everything is inline (images and clips as base64 data URIs), so the page can be mailed or archived
 alone: the cautions, the training summary and curve, the background, the config, and for each scores
 folder given the metrics table, the metric plots, the contact sheet and the forecast clip.
+
+Everything a reader sees is in words with its unit (PSNR in dB, position errors in px, times in s);
+keys that only matter to whoever runs the machines (world size, replica spread, threads, ...) are listed
+under "Technical details".
 """
 
 from __future__ import annotations
@@ -14,6 +18,7 @@ from pathlib import Path
 
 from ..errors import KinecastError
 from ..fileio import check_can_create, write_text
+from ..plots import method_label
 from ..train import checkpoint as ck
 
 CAUTIONS = [
@@ -26,7 +31,54 @@ STYLE = """body{font-family:system-ui,sans-serif;max-width:1100px;margin:2em aut
 h1{font-size:1.5em}h2{font-size:1.2em;border-bottom:1px solid #ccc;padding-bottom:.2em;margin-top:2em}
 .caution{background:#fff4e0;border-left:4px solid #d9822b;padding:.6em 1em}
 table{border-collapse:collapse}td,th{border:1px solid #ccc;padding:.25em .6em;text-align:right}
-th:first-child,td:first-child{text-align:left}img,video{max-width:100%}pre{background:#f6f6f6;padding:1em;overflow:auto}"""
+th:first-child,td:first-child{text-align:left}img,video{max-width:100%}pre{background:#f6f6f6;padding:1em;overflow:auto}
+.facts td{text-align:left}"""
+MSE_SCALE = "intensities 0 to 1"  # frames are scaled to [0, 1] before scoring
+# training summary (summary.json of a run): key -> (words, unit); keys not listed here go under
+# "Technical details" with their raw names
+TRAINING_FACTS = {
+    "recipe": ("training recipe", ""),
+    "steps": ("training steps", "steps"),
+    "elapsed_s": ("training time", "s"),
+    "stop_reason": ("why training stopped", ""),
+    "train_recordings": ("recordings trained on", "recordings"),
+    "val_recordings": ("recordings held out for validation", "recordings"),
+    "best_val_mse": (f"best validation frame error (mean squared error, {MSE_SCALE})", ""),
+    "background_val_mse": (f"the same error for the bare background ({MSE_SCALE})", ""),
+    "tracked_period_s": ("oscillation period the model tracks", "s"),
+    "longest_window": ("longest training window", "frames"),
+    "final_window": ("training window at the end", "frames"),
+    "val_window": ("validation window", "frames"),
+    "dynamics_window": ("longest window of the dynamics stage", "frames"),
+    "positions_found": ("object positions found in the positions stage", ""),
+    "positions_restarts": ("restarts of the positions stage", "restarts"),
+    "faults": ("numerical faults recovered from", "faults"),
+    "untrained": ("note", ""),
+}
+TRAINING_HIDDEN = ("recordings", "caution")  # shown elsewhere on the page
+# units of the technical keys that have one (the rest are counts, names or flags)
+TECHNICAL_UNITS = {"time_scale": "model time units per s"}
+# scores table: (summary key, column heading, unit written after each number)
+SCORE_COLUMNS = (
+    ("mean_mse", f"mean squared error ({MSE_SCALE})", ""),
+    ("mean_mae", f"mean absolute error ({MSE_SCALE})", ""),
+    ("mean_psnr", "peak signal-to-noise ratio", "dB"),
+    ("mean_ssim", "structural similarity, SSIM (1 = identical)", ""),
+    ("mean_object_ssim", "SSIM around the objects (1 = identical)", ""),
+    ("mean_position_error_px", "object position error", "px"),
+)
+# facts about what was scored: summary key -> words (the unit, if any, is added by _score_fact)
+SCORE_FACTS = {
+    "recording": "recording", "run": "run", "pred": "frames scored", "truth": "compared with",
+    "holdout": "held-out frames", "context_frames": "frames the forecast was given",
+    "samples": "sampled futures", "frames_scored": "frames scored",
+    "ssim_threshold": "the valid horizon ends where the objects' SSIM falls below",
+    "position_threshold_px": "the object horizon ends where the position error exceeds",
+    "band": "calibration band (central share of the sampled futures)",
+}
+SCORES_HIDDEN = ("caution", "verdict", "methods", "periods", "band_coverage_per_frame")
+PERIOD_NAMES = {"truth_track_s": "the recording's objects", "model_track_s": "the model's forecast objects",
+                "model_latent_s": "the model's latent state"}
 
 
 def configure(parser) -> None:
@@ -56,15 +108,67 @@ def _media(path: Path, caption: str) -> str:
     return f"<figure>{tag}<figcaption>{html.escape(caption)}</figcaption></figure>"
 
 
-def _fmt(v) -> str:
-    if v is None:
+def _fmt(v, unit: str = "") -> str:
+    """A value for the page: numbers to 4 significant digits with their unit, None/NaN as a dash."""
+    if v is None or (isinstance(v, float) and v != v):
         return "–"
-    if isinstance(v, float):
-        return f"{v:.4g}"
-    return html.escape(str(v))
+    if isinstance(v, bool):
+        return "yes" if v else "no"
+    if isinstance(v, (dict, list)):
+        return f"<code>{html.escape(json.dumps(v))}</code>"
+    text = f"{v:.4g}" if isinstance(v, float) else html.escape(str(v))
+    if not (unit and isinstance(v, (int, float))):
+        return text
+    if v == 1 and " " not in unit and unit.endswith("s") and len(unit) > 2:  # "1 frame", not "1 frames"
+        unit = unit[:-1]
+    return f"{text} {html.escape(unit)}"
 
 
-def _scores_section(folder: Path) -> str:
+def _facts_table(rows: list[tuple[str, str]]) -> str:
+    body = "".join(f"<tr><td>{html.escape(name)}</td><td>{value}</td></tr>" for name, value in rows)
+    return f"<table class='facts'>{body}</table>"
+
+
+def _technical(title: str, items: dict) -> str:
+    """Raw keys and values for whoever runs the machines (lists longer than a few are counted)."""
+    rows = []
+    for k, v in items.items():
+        if isinstance(v, list) and len(v) > 4:
+            shown = f"{len(v)} values (see the JSON file)"
+        else:
+            shown = _fmt(v, TECHNICAL_UNITS.get(k, ""))
+        rows.append((k, shown))
+    return f"<h3>{html.escape(title)}</h3>" + _facts_table(rows) if rows else ""
+
+
+def _score_fact(key: str, value) -> str:
+    if key == "holdout" and isinstance(value, str) and value.startswith("last:"):
+        return f"the last {html.escape(value[5:])} frames"
+    if key == "holdout" and isinstance(value, str) and value.startswith("trial:"):
+        return f"trial {html.escape(value[6:])}"
+    if key == "band" and isinstance(value, (int, float)):
+        return f"{100 * value:.0f} %"
+    unit = {"context_frames": "frames", "frames_scored": "frames", "position_threshold_px": "px"}.get(key, "")
+    return _fmt(value, unit)
+
+
+def _horizon(s: dict, kind: str) -> str:
+    frames, seconds = s.get(f"{kind}_horizon_frames"), s.get(f"{kind}_horizon_s")
+    if frames is None:
+        return "–"
+    return f"{_fmt(frames, 'frames')} ({_fmt(seconds, 's')})" if seconds is not None else _fmt(frames, "frames")
+
+
+def _scores_title(summary: dict) -> str:
+    if summary.get("recording"):
+        return f"Forecast scores on {Path(str(summary['recording'])).name}"
+    if summary.get("pred") and summary.get("truth"):
+        return f"Scores of {Path(str(summary['pred'])).name} against {Path(str(summary['truth'])).name}"
+    return "Forecast scores"
+
+
+def _scores_section(folder: Path) -> tuple[str, str]:
+    """The section for one scores folder, and its technical details (raw keys)."""
     summary_path = folder / "summary.json"
     if not summary_path.is_file():
         raise KinecastError(folder, "not a scores folder (no summary.json)")
@@ -73,29 +177,49 @@ def _scores_section(folder: Path) -> str:
         methods = summary["methods"]
     except (ValueError, KeyError) as exc:
         raise KinecastError(summary_path, f"not a kinecast scores summary ({exc})") from None
-    cols = ["mean_mse", "mean_mae", "mean_psnr", "mean_ssim", "mean_object_ssim", "mean_position_error_px",
-            "valid_horizon_frames", "valid_horizon_s", "object_horizon_frames", "object_horizon_s",
-            "mean_band_coverage"]
-    head = "".join(f"<th>{c.replace('mean_', '').replace('_', ' ')}</th>" for c in cols)
-    rows = "".join(f"<tr><td>{html.escape(m)}</td>" + "".join(f"<td>{_fmt(s.get(c))}</td>" for c in cols)
-                   + "</tr>" for m, s in methods.items())
-    facts = {k: summary.get(k) for k in ("recording", "holdout", "context_frames", "samples",
-                                         "frames_scored", "ssim_threshold", "position_threshold_px",
-                                         "band") if k in summary}
+    band = summary.get("band")
+    head = ["method"] + [h for _, h, _ in SCORE_COLUMNS] + [
+        "valid horizon (objects' SSIM above the threshold)", "object horizon (position error within the threshold)",
+        f"pixels inside the {100 * band:.0f} % band of the sampled futures" if isinstance(band, (int, float))
+        else "pixels inside the band of the sampled futures"]
+    rows = ""
+    for m, s in methods.items():
+        cells = [html.escape(method_label(m))] + [_fmt(s.get(k), unit) for k, _, unit in SCORE_COLUMNS]
+        coverage = s.get("mean_band_coverage")
+        cells += [_horizon(s, "valid"), _horizon(s, "object"),
+                  f"{100 * coverage:.1f} %" if isinstance(coverage, (int, float)) else "–"]
+        rows += "<tr>" + "".join(f"<td>{c}</td>" for c in cells) + "</tr>"
+    facts = [(words, _score_fact(k, summary[k])) for k, words in SCORE_FACTS.items() if k in summary]
     periods = summary.get("periods", {})
     verdict = summary.get("verdict") or {}
-    parts = [f"<h2>Scores: {html.escape(str(folder))}</h2>",
+    parts = [f"<h2>{html.escape(_scores_title(summary))}</h2>",
+             f"<p>From the scores folder {html.escape(str(folder))}.</p>",
              f"<p class='caution'><strong>Verdict ({html.escape(str(verdict['level']))}):</strong> "
              f"{html.escape(str(verdict['text']))}</p>" if "text" in verdict and "level" in verdict else "",
-             "<p>" + "; ".join(f"{k.replace('_', ' ')}: {_fmt(v)}" for k, v in facts.items()) + "</p>",
-             f"<table><tr><th>method</th>{head}</tr>{rows}</table>"]
+             _facts_table(facts),
+             "<table><tr>" + "".join(f"<th>{html.escape(h)}</th>" for h in head) + f"</tr>{rows}</table>"]
     if periods:
-        parts.append("<p>Dominant oscillation period (s): " + "; ".join(
-            f"{k.replace('_s', '').replace('_', ' ')} {_fmt(v)}" for k, v in periods.items()) + "</p>")
+        parts.append("<p>Dominant oscillation period: " + "; ".join(
+            f"{html.escape(PERIOD_NAMES.get(k, k.removesuffix('_s').replace('_', ' ')))} {_fmt(v, 's')}"
+            for k, v in periods.items()) + "</p>")
     parts += [_media(folder / "metrics.png", "each metric against the forecast horizon, every method"),
               _media(folder / "forecast_sheet.png", "truth | prediction | absolute error | spread"),
               _media(folder / "forecast.mp4", "forecast clip")]
-    return "\n".join(parts)
+    rest = {k: v for k, v in summary.items() if k not in SCORE_FACTS and k not in SCORES_HIDDEN}
+    return "\n".join(p for p in parts if p), _technical(f"scores folder {folder}", rest)
+
+
+def _training_section(summary: dict) -> tuple[str, str]:
+    """The training facts in words with units, and the remaining keys as technical details."""
+    rows = [(words, _fmt(summary[k], unit)) for k, (words, unit) in TRAINING_FACTS.items() if k in summary]
+    verdict = summary.get("verdict")
+    if isinstance(verdict, dict) and "level" in verdict:
+        rows.insert(0, ("verdict on the held-out recordings", html.escape(str(verdict["level"]))
+                        + (f": {html.escape(str(verdict['text']))}" if "text" in verdict else "")))
+    rest = {k: v for k, v in summary.items() if k not in TRAINING_FACTS and k not in TRAINING_HIDDEN}
+    if isinstance(verdict, dict):  # its text is shown above; the numbers behind it stay here
+        rest["verdict"] = {k: v for k, v in verdict.items() if k != "text"}
+    return _facts_table(rows) if rows else "", _technical("training", rest)
 
 
 def build_report(run: str | Path, scores: list = (), clips: list = ()) -> str:
@@ -104,23 +228,30 @@ def build_report(run: str | Path, scores: list = (), clips: list = ()) -> str:
     ck.check_run_folder(run)
     summary = json.loads((run / ck.SUMMARY).read_text()) if (run / ck.SUMMARY).is_file() else {}
     config_text = (run / ck.CONFIG).read_text()
-    train_rows = "".join(f"<tr><td>{html.escape(k.replace('_', ' '))}</td><td>{_fmt(v)}</td></tr>"
-                         for k, v in summary.items() if k not in ("recordings", "caution"))
+    training, technical = _training_section(summary)
     parts = [
         "<!doctype html><html><head><meta charset='utf-8'>",
         f"<title>kinecast report: {html.escape(run.name)}</title><style>{STYLE}</style></head><body>",
         f"<h1>kinecast report: {html.escape(str(run))}</h1>",
         "<div class='caution'><strong>Cautions</strong><ul>"
         + "".join(f"<li>{html.escape(c)}</li>" for c in CAUTIONS) + "</ul></div>",
-        "<h2>Training</h2>", f"<table>{train_rows}</table>",
+        "<h2>Training</h2>", training,
         _media(run / ck.LOSS_PLOT, "training terms and validation forecast error against step"),
         _media(run / ck.BACKGROUND, "static background the decoder adds to (per-pixel median)"),
     ]
-    parts += [_scores_section(Path(s)) for s in scores]
+    technical = [technical]
+    for folder in scores:
+        section, details = _scores_section(Path(folder))
+        parts.append(section)
+        technical.append(details)
     for clip in map(Path, clips):
         if not clip.is_file():
             raise KinecastError(clip, "no such file to embed")
         parts.append(_media(clip, clip.name))
+    if any(technical):
+        parts += ["<h2>Technical details</h2>",
+                  "<p>Raw values for whoever runs the machines; the sections above say what they mean "
+                  "for the recording.</p>"] + [t for t in technical if t]
     parts += ["<h2>Configuration (config.toml)</h2>", f"<pre>{html.escape(config_text)}</pre>",
               "<h2>Recordings</h2><ul>" + "".join(f"<li>{html.escape(r)}</li>"
                                                   for r in summary.get("recordings", [])) + "</ul>",

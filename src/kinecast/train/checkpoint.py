@@ -43,8 +43,9 @@ PAUSE_ENV = "KINECAST_TEST_CHECKPOINT_PAUSE"  # test hook, see _test_pause
 # Version of the networks' layout, written with every checkpoint. Bump it when a change makes old
 # weights compute something else although their tensor names and shapes still match.
 # 1: ELU activations (files without the key); 2: SiLU activations (model/convnets.py);
-# 3: the velocity encoder reads the position readings of the context frames; keypoint encoder.
-MODEL_LAYOUT = 3
+# 3: the velocity encoder reads the position readings of the context frames; keypoint encoder;
+# 4: v0 is the finite difference alone by default (model.velocity_correction, absent = false).
+MODEL_LAYOUT = 4
 
 
 def save_tensors(path: Path, tensors: dict[str, torch.Tensor], meta: dict) -> None:

@@ -12,13 +12,20 @@ def configure(parser) -> None:
     parser.add_argument("paths", nargs="*", metavar="PATH",
                         help="recordings: frame folders, TIFF stacks, videos, or a folder of trial folders")
     parser.add_argument("--out", metavar="RUN", help="run folder to write")
-    parser.add_argument("--resume", metavar="RUN", help="continue the run in this folder")
+    parser.add_argument("--resume", metavar="RUN",
+                        help="continue the run in this folder: alone, it finishes the run's own budget; "
+                             "with --budget or --steps, it trains that much MORE (the run's total becomes "
+                             "what it has done plus this, and the recipe's stage shares are recomputed "
+                             "over the new total)")
     parser.add_argument("--overwrite", action="store_true", help="replace an existing run folder")
-    parser.add_argument("--budget", metavar="DURATION", help="wall-clock budget, e.g. 90s, 5m, 1h (train.budget)")
-    parser.add_argument("--steps", type=int, metavar="N", help="step budget (train.steps)")
+    parser.add_argument("--budget", metavar="DURATION",
+                        help="wall-clock training time, e.g. 90s, 5m, 5min, '5 min', 1h, 1h30m; a number "
+                             "needs a unit (train.budget); with --resume: additional time")
+    parser.add_argument("--steps", type=int, metavar="N",
+                        help="number of training steps (train.steps); with --resume: additional steps")
     parser.add_argument("--device", choices=("auto", "cpu", "cuda"), help="compute device (train.device)")
     parser.add_argument("--seed", type=int, help="random seed (train.seed)")
-    parser.add_argument("--quiet", action="store_true", help="no progress bar")
+    parser.add_argument("--quiet", action="store_true", help="no progress lines (warnings are still shown)")
 
 
 def run(args, cfg) -> int:
@@ -46,8 +53,11 @@ def run(args, cfg) -> int:
              if value is not None]
     if args.steps is not None and args.budget is None:
         sugar.append('train.budget="0"')
+    if args.budget is not None and args.steps is None:
+        sugar.append("train.steps=0")  # the budget given is the budget (a config's step count would cut it)
     cfg = cfgmod.apply_overrides(cfg, sugar)
-    summary = fit(args.paths, out, cfg, resume=bool(args.resume), overwrite=args.overwrite,
+    more = bool(args.resume) and (args.budget is not None or args.steps is not None)
+    summary = fit(args.paths, out, cfg, resume=bool(args.resume), overwrite=args.overwrite, more=more,
                   show_progress=not args.quiet)
     if summary:
         print(f"run written to {out}: {summary['steps']} steps in {summary['elapsed_s']:.0f} s, "
@@ -56,4 +66,7 @@ def run(args, cfg) -> int:
         if verdict:
             level = {"failed": "FAILED", "weak": "weak"}.get(verdict["level"], verdict["level"])
             print(f"verdict on the held-out frames ({level}): {verdict['text']}")
+        if summary.get("untrained"):
+            print(f"kinecast: warning: the model is untrained: {summary['untrained']}. Its forecasts mean "
+                  f"nothing yet; train longer (kinecast fit --resume {out} --budget 5m adds 5 minutes).")
     return 0

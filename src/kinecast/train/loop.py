@@ -16,7 +16,6 @@ from pathlib import Path
 
 import numpy as np
 import torch
-from tqdm import tqdm
 
 from .. import config as cfgmod
 from ..errors import KinecastError
@@ -26,6 +25,7 @@ from ..model.staged import autoencoder_terms, dynamics_terms
 from . import checkpoint as ck
 from . import stages as S
 from . import distributed as D
+from .progress import Progress, duration, untrained_reason
 from .data import WindowSampler, expand_paths, load_recordings, median_background, split_train_val
 from .schedule import Curriculum, kl_weight, learning_rate, progress
 
@@ -105,8 +105,19 @@ def _judge(run: Path, recs, window: int, device) -> dict:
     return out
 
 
+def _extend_budget(tc: cfgmod.TrainConfig, meta: dict) -> None:
+    """Turn ``tc.steps`` / ``tc.budget`` asked for on resume (more training) into totals from the
+    run's start: what the checkpoint ``meta`` has done so far plus the extra."""
+    if tc.steps:
+        tc.steps += int(meta["step"])
+    extra_s = cfgmod.parse_budget(tc.budget)
+    if extra_s:
+        total = math.ceil((float(meta["elapsed"]) + extra_s) * 10) / 10  # to 0.1 s, never short
+        tc.budget = duration(total, decimals=1)
+
+
 def fit(paths, out, cfg: cfgmod.Config | None = None, *, resume: bool = False, overwrite: bool = False,
-        fault_hook=None, show_progress: bool = True) -> dict:
+        more: bool = False, fault_hook=None, show_progress: bool = True) -> dict:
     """Train a latent ODE model on recordings and write a run folder.
 
     Parameters
@@ -118,10 +129,15 @@ def fit(paths, out, cfg: cfgmod.Config | None = None, *, resume: bool = False, o
     cfg : Config, optional
         The one config; ``train`` sets the recipe, ``solver.time_scale`` = 0 is resolved from the data.
         With ``resume``, default: the run's own config.toml (pass a changed copy to extend
-        ``train.steps`` or ``train.budget``, which count from the run's start).
+        ``train.steps`` or ``train.budget``, which count from the run's start unless ``more``).
     resume : bool
         Continue the run in ``out`` (step count, optimiser, schedule and random state); ``paths``
         may be empty to reuse the run's recordings.
+    more : bool
+        With ``resume``: ``train.steps`` / ``train.budget`` are *additional* training. The run's
+        totals become what it has done so far (steps, counted seconds) plus these, and are saved in
+        its config.toml; the stage shares are recomputed over the new totals (a large extension
+        may go back to an earlier stage; the kept best weights change only when validation improves).
     overwrite : bool
         Replace an existing run folder.
     fault_hook : callable, optional
@@ -140,6 +156,8 @@ def fit(paths, out, cfg: cfgmod.Config | None = None, *, resume: bool = False, o
         paths = paths or resumed[1]["paths"]
         cfg = cfg or cfgmod.load(run / ck.CONFIG)
     cfg = cfgmod.from_dict(cfgmod.to_dict(cfg or cfgmod.Config()))  # a private, validated copy
+    if resume and more:
+        _extend_budget(cfg.train, resumed[1])
     paths = expand_paths(paths)
     ctx = D.setup(cfg.train.device)
     if ctx.main:
@@ -187,6 +205,7 @@ def fit(paths, out, cfg: cfgmod.Config | None = None, *, resume: bool = False, o
         torch.set_rng_state(tensors["rng.torch"])
         sampler.rng.bit_generator.state = meta["sampler_rng"]
         cur = Curriculum(**meta["curriculum"])
+        cur.done = cur.done and not more  # asked for more: an early stop does not end the extension
         stage_state = S.StageState(**meta.get("stages", {}))
         step, elapsed_before = meta["step"], meta["elapsed"]
         faults, lr_scale = meta["faults"], meta["lr_scale"]
@@ -227,9 +246,10 @@ def fit(paths, out, cfg: cfgmod.Config | None = None, *, resume: bool = False, o
         raise KinecastError("fit", "no budget: give --steps N or --budget DURATION")
     good = (copy.deepcopy(model.state_dict()), copy.deepcopy(opt.state_dict()))
     t0 = time.time()
-    bar = tqdm(total=steps_total or int(budget_s), disable=not (show_progress and ctx.main),
-               unit="step" if steps_total else "s", dynamic_ncols=True, initial=step if steps_total else 0)
-    val = math.nan
+    report = Progress(steps_total, budget_s, step, elapsed_before, cfg.train.recipe,
+                      enabled=show_progress and ctx.main)
+    start_step = step
+    val = next((r["val_mse"] for r in reversed(rows) if "val_mse" in r), math.nan)  # the latest, shown
     bg_val = validate(model, val_sampler, val_window, cfg, background_only=True) if background is not None else math.nan
     stop_reason = "budget"
     stage = None
@@ -247,9 +267,10 @@ def fit(paths, out, cfg: cfgmod.Config | None = None, *, resume: bool = False, o
         if new_stage != stage:
             stage = new_stage
             S.set_trainable(model, stage)
+            report.soon()  # a line from the new stage's first step
             if stage == S.DYNAMICS and not stage_state.escaped:
-                tqdm.write("kinecast: warning: the position encoder never clearly beat the bare background "
-                           f"({stage_state.restarts} restarts); the motion may not be learned")
+                report.note("kinecast: warning: the position encoder never clearly beat the bare background "
+                            f"({stage_state.restarts} restarts); the motion may not be learned")
             if stage == S.DYNAMICS:
                 targets = S.EncodedTrajectories(model, sampler.frames, ctx.device)
             if (stage == S.JOINT and cfg.train.recipe == "staged" and step > 0 and ctx.main
@@ -258,12 +279,13 @@ def fit(paths, out, cfg: cfgmod.Config | None = None, *, resume: bool = False, o
                 val = _validate_and_keep(model, val_sampler, val_window, cfg, cur, run, step)
                 rows.append({"step": step, "time_s": round(elapsed, 3), "val_mse": val, "window": cur.window,
                              "stage": S.NUMBER[stage]})
+                report.update(step, elapsed, stage, cur.window, val, bg_val, event=True)
         if stage == S.POSITIONS and stage_state.due_restart(local, cfg.train.escape_deadline):
             stage_state = S.StageState(restarts=stage_state.restarts + 1)
             S.restart_positions(model, opt, cfg, channels,
                                 cfg.train.seed + S.RESTART_SEED_STRIDE * stage_state.restarts)
-            tqdm.write(f"kinecast: the position encoder had not found the moving object by step {step}: "
-                       f"restart {stage_state.restarts} from a new seed")
+            report.note(f"kinecast: the position encoder had not found the moving object by step {step}: "
+                        f"restart {stage_state.restarts} from a new seed")
         lr = learning_rate(cfg.train, step, local if cfg.train.recipe == "staged" else prog, lr_scale)
         if cfg.train.recipe == "staged" and stage != S.DYNAMICS:
             peak = cfg.train.positions_lr if stage == S.POSITIONS else cfg.train.joint_lr
@@ -277,12 +299,13 @@ def fit(paths, out, cfg: cfgmod.Config | None = None, *, resume: bool = False, o
             frames = batch.frames.flatten(0, 1)[batch.mask.flatten()].to(ctx.device)
             beta = cfg.train.positions_kl * local if stage_state.escaped else 0.0
             terms = autoencoder_terms(model, frames, sample=stage_state.escaped, beta=beta,
-                                      repulsion=cfg.train.keypoint_repulsion)
+                                      repulsion=cfg.train.keypoint_repulsion,
+                                      coverage=cfg.train.keypoint_coverage)
             errors = D.mean_over_ranks(ctx, [float(terms["mse"]), float(terms["bg_mse"])])
             if stage_state.observe(*errors, cfg.train.escape_ratio, step):
-                tqdm.write(f"kinecast: step {step}: the position encoder found the moving object "
-                           f"(reconstruction error {stage_state.ema_rec:.2g}, bare background "
-                           f"{stage_state.ema_bg:.2g}); sampling from now on")
+                report.note(f"kinecast: step {step}: the position encoder found the moving object "
+                            f"(reconstruction error {stage_state.ema_rec:.2g}, bare background "
+                            f"{stage_state.ema_bg:.2g}); sampling from now on")
         elif stage == S.DYNAMICS:
             window = S.grow(min(cfg.train.window_start, dyn_longest), dyn_longest, local)
             batch = sampler.draw(cfg.train.batch, window)
@@ -316,14 +339,10 @@ def fit(paths, out, cfg: cfgmod.Config | None = None, *, resume: bool = False, o
             model.load_state_dict(good[0])
             opt.load_state_dict(good[1])
             lr_scale *= 0.5
-            tqdm.write(f"kinecast: non-finite loss at step {step}: rolled back, learning rate × {lr_scale:g}")
+            report.note(f"kinecast: non-finite loss at step {step}: rolled back, learning rate × {lr_scale:g}")
             continue
         opt.step()
         step += 1
-        if steps_total:
-            bar.update(1)
-        else:
-            bar.n = min(int(elapsed), int(budget_s))
         if step % LOG_EVERY == 0 or step == 1:
             row = {"step": step, "time_s": round(elapsed, 3), "lr": lr, "beta": beta, "window": window,
                    "stage": S.NUMBER[stage]}
@@ -334,15 +353,18 @@ def fit(paths, out, cfg: cfgmod.Config | None = None, *, resume: bool = False, o
                 val = _validate_and_keep(model, val_sampler, val_window, cfg, cur, run, step)
                 rows.append({"step": step, "time_s": round(elapsed, 3), "val_mse": val, "window": cur.window,
                              "stage": S.NUMBER[stage]})
+                report.update(step, elapsed_before + time.time() - t0, stage, window, val, bg_val, event=True)
                 if cur.done and not cur.best < bg_val:  # never stop a run that draws no better than nothing
                     cur.done = False
             good = (copy.deepcopy(model.state_dict()), copy.deepcopy(opt.state_dict()))
         if ctx.main and step % cfg.train.checkpoint_every == 0:
             save_resume()
-        left = (steps_total - step) if steps_total else max(0.0, budget_s - elapsed)
-        bar.set_postfix_str(f"{stage} loss {loss.item():.4g} val {val:.3g} win {cur.window} "
-                            f"left {left:.0f}{'' if steps_total else 's'}", refresh=False)
-    bar.close()
+        report.update(step, elapsed_before + time.time() - t0, stage, window, val, bg_val)
+    report.close()
+    if resume and step == start_step and ctx.main:
+        report.note(f"kinecast: nothing trained: this run had already finished ({step} steps, "
+                    f"{duration(elapsed_before)}); give --steps N or --budget DURATION with --resume "
+                    "to train that much more")
 
     spread = D.replica_spread(ctx, model)
     summary = {}
@@ -367,6 +389,7 @@ def fit(paths, out, cfg: cfgmod.Config | None = None, *, resume: bool = False, o
                    "positions_found_step": stage_state.escaped_step,
                    "positions_restarts": stage_state.restarts, "dynamics_window": dyn_longest,
                    "tracked_period_s": period, "background_val_mse": bg_val, "verdict": judged,
+                   "untrained": untrained_reason(cfg.train.recipe, step, stage_state.escaped, cur.best, bg_val),
                    "caution": "Forecasts are statistical extrapolations, not measurements; "
                               "not for safety-critical control."}
         ck.write_summary(run, summary)
