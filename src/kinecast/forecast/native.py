@@ -38,7 +38,7 @@ from ..errors import KinecastError
 from ..fileio import write_bytes, write_text, write_with
 from ..frames import Recording
 from ..frames.images import IMAGE_SUFFIXES, natural_key, read_image
-from ..frames.preprocess import _UNSIGNED_SCALE, BT601_LUMA, sample_format, to_unit
+from ..frames.preprocess import UNSIGNED_SCALE, BT601_LUMA, sample_format, to_unit
 from ..frames.tiffstack import decode_stack
 from ..frames.video import decode_video
 from .core import gaps
@@ -87,7 +87,7 @@ class NativeFormat:
         if self.dtype.kind == "f":
             depth = f"float{self.dtype.itemsize * 8}"
         else:
-            depth = f"{_UNSIGNED_SCALE[self.dtype][0]}-bit"
+            depth = f"{UNSIGNED_SCALE[self.dtype][0]}-bit"
         colour = "RGBA" if self.alpha else ("RGB" if self.channels == 3 else "grey")
         return f"{self.width}x{self.height} {depth} {colour}"
 
@@ -123,8 +123,8 @@ def from_unit(unit: np.ndarray, dtype: np.dtype) -> np.ndarray:
     dtype = np.dtype(dtype)
     if dtype == np.bool_:
         return unit >= 0.5
-    if dtype in _UNSIGNED_SCALE:
-        return np.rint(unit * _UNSIGNED_SCALE[dtype][1]).astype(dtype)
+    if dtype in UNSIGNED_SCALE:
+        return np.rint(unit * UNSIGNED_SCALE[dtype][1]).astype(dtype)
     return unit.astype(dtype)
 
 

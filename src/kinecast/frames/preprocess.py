@@ -23,7 +23,7 @@ from ..errors import KinecastError
 BT601_LUMA = np.array([0.299, 0.587, 0.114], dtype=np.float32)
 
 # Full-scale value per unsigned sample type: 8-bit /255, 16-bit /65535, 1-bit (bool) /1.
-_UNSIGNED_SCALE = {np.dtype(np.uint8): (8, 255.0), np.dtype(np.uint16): (16, 65535.0),
+UNSIGNED_SCALE = {np.dtype(np.uint8): (8, 255.0), np.dtype(np.uint16): (16, 65535.0),
                    np.dtype(np.bool_): (1, 1.0)}
 # Float frames may stray this far outside [0, 1] from rounding before it counts as out of range.
 FLOAT_RANGE_SLACK = 1e-6
@@ -64,8 +64,8 @@ def sample_format(raw: np.ndarray, where: str) -> SampleFormat:
     if raw.shape[0] < 1 or raw.shape[1] < 1:
         raise KinecastError(where, "image has no pixels")
     dt = raw.dtype
-    if dt in _UNSIGNED_SCALE:
-        bits = _UNSIGNED_SCALE[dt][0]
+    if dt in UNSIGNED_SCALE:
+        bits = UNSIGNED_SCALE[dt][0]
     elif dt.kind == "f":
         bits = dt.itemsize * 8
     else:
@@ -78,8 +78,8 @@ def to_unit(raw: np.ndarray, fmt: SampleFormat, where: str) -> np.ndarray:
     """Intensities as float32 in [0, 1], alpha dropped, shape (H, W) or (H, W, 3)."""
     if raw.ndim == 3:
         raw = raw[..., 0] if fmt.channels == 1 else raw[..., :3]
-    if raw.dtype in _UNSIGNED_SCALE:
-        return raw.astype(np.float32) / np.float32(_UNSIGNED_SCALE[raw.dtype][1])
+    if raw.dtype in UNSIGNED_SCALE:
+        return raw.astype(np.float32) / np.float32(UNSIGNED_SCALE[raw.dtype][1])
     unit = raw.astype(np.float32)
     if not np.isfinite(unit).all():
         raise KinecastError(where, "float image holds NaN or infinite values")

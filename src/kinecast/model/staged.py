@@ -166,7 +166,9 @@ def dynamics_terms(model, ctx: torch.Tensor, t: torch.Tensor, target_mean: torch
     nll = (0.5 * ((s - target_mean) ** 2 / var).sum(2) * obs).sum() / B / per
     dt = t[1] - t[0]
     aux = target_mean.new_zeros(())
-    if velocity_aux > 0 and T >= 3 and bool(mask[:, :3].all()):
+    # with v0 = the finite difference alone (no learned correction) the term is identically zero
+    fd_only = model.velocity_from_positions and not model.velocity_correction
+    if velocity_aux > 0 and not fd_only and T >= 3 and bool(mask[:, :3].all()):
         v_fd = fd_velocity(target_mean, t)
         aux = (0.5 * ((v_mean - v_fd) * dt) ** 2 / var[:, 0]).sum() / B / per
     kl_v0 = kl_std_normal(v_mean, v_logvar).sum() / B / per

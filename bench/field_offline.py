@@ -1,0 +1,86 @@
+"""The dynamics stage alone, field by field: ``python bench/field_offline.py RUN SCENE [SECONDS] [VARIANTS]``.
+
+RUN is a run folder made by ``bench/recipe.py`` (its position encoder is kept frozen), SCENE the
+rig folder it was trained on (12 trials: the first 8 train, the last 4 are held out). For each
+field variant a fresh field is trained for SECONDS (default 60) on the encoded keypoint tracks of
+the training trials, then rolled out freely on each held-out trial from its encoded start with the
+finite-difference v0; the printed error (model pixels) is over the keypoints the encoder uses,
+averaged over forecast frames 1-20 and 1-60. Used for the "field on impacts" notes in
+DEVELOPERS.md. Numbers are statistical extrapolations on synthetic rigs, not measurements.
+"""
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import torch
+
+if __package__ in (None, ""):
+    sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "src"))
+from kinecast.train import load_run
+from kinecast.frames import read_recording
+from kinecast.train.loop import to_model_time
+from kinecast.model.field import DynamicsField
+from kinecast.model.staged import encode_all, dynamics_terms
+from kinecast.model.latent_ode import fd_velocity
+torch.set_num_threads(2)
+run, scene = sys.argv[1], sys.argv[2]
+secs = float(sys.argv[3]) if len(sys.argv) > 3 else 60
+model, cfg = load_run(run)
+trials = sorted(p for p in Path(scene).iterdir() if p.is_dir())
+data = []
+for tr in trials:
+    rec = read_recording(tr, cfg.data)
+    fr = torch.as_tensor(np.asarray(rec.frames), dtype=torch.float32)
+    t = to_model_time(torch.as_tensor(np.asarray(rec.times), dtype=torch.float32)[None], cfg)[0]
+    m, v = encode_all(model, fr)
+    data.append((fr, t - t[0], m, v))
+n, q, k = cfg.data.size, model.q, model.k
+good = (data[0][3].mean(0).sqrt() * n / 2 < 2.0)  # coordinates the encoder uses
+print("used coords", good.tolist(), flush=True)
+VARIANTS = {
+  "tanh64x2_full_kl1": dict(act="tanh", h=64, l=2, g=0, beta=1.0),
+  "relu128x3_shared_kl1": dict(act="relu", h=128, l=3, g=2, beta=1.0),
+  "relu128x3_shared_kl.01": dict(act="relu", h=128, l=3, g=2, beta=0.01),
+  "tanh64x2_shared_kl.01": dict(act="tanh", h=64, l=2, g=2, beta=0.01),
+  "relu64x2_shared_kl.01": dict(act="relu", h=64, l=2, g=2, beta=0.01),
+  "tanh64x2_full_kl.01": dict(act="tanh", h=64, l=2, g=0, beta=0.01),
+  "relu64x2_shared_det": dict(act="relu", h=64, l=2, g=2, beta=0.0, det=True),
+  "relu128x3_shared_det": dict(act="relu", h=128, l=3, g=2, beta=0.0, det=True),
+  "tanh64x2_full_det": dict(act="tanh", h=64, l=2, g=0, beta=0.0, det=True),
+  "tanh64x2_shared_det": dict(act="tanh", h=64, l=2, g=2, beta=0.0, det=True),
+}
+model.velocity_correction = False
+pick = sys.argv[4].split(",") if len(sys.argv) > 4 else list(VARIANTS)
+gen = np.random.default_rng(0)
+for name in pick:
+    V = VARIANTS[name]
+    torch.manual_seed(0)
+    model.field = DynamicsField(q, V["h"], V["l"], True, not V.get("det"), cfg.model.prior_std, cfg.model.init_logstd,
+                                activation=V["act"], group=V["g"])
+    with torch.no_grad():
+        model.vel_enc.head.weight[:q].zero_(); model.vel_enc.head.bias[:q].zero_()
+    params = list(model.field.parameters()) + list(model.vel_enc.parameters())
+    opt = torch.optim.Adam(params, lr=3e-3)
+    t0 = time.time(); steps = 0
+    while time.time() - t0 < secs:
+        frac = (time.time() - t0) / secs
+        W = int(8 + (60 - 8) * min(1.0, frac / 0.7))
+        idx = gen.integers(0, 8, 8); st = [int(gen.integers(0, len(data[i][2]) - W + 1)) for i in idx]
+        ctx = torch.stack([data[i][0][s:s + k] for i, s in zip(idx, st)])
+        tm = torch.stack([data[i][2][s:s + W] for i, s in zip(idx, st)])
+        tv = torch.stack([data[i][3][s:s + W] for i, s in zip(idx, st)])
+        tt = data[idx[0]][1][st[0]:st[0] + W]
+        terms = dynamics_terms(model, ctx, tt - tt[0], tm, tv, torch.ones(8, W, dtype=torch.bool), 720, V["beta"], 1.0)
+        opt.zero_grad(); terms["loss"].backward(); torch.nn.utils.clip_grad_norm_(params, 1.0); opt.step(); steps += 1
+    errs20, errs60 = [], []
+    model.field.draw(1, mean=True)
+    with torch.no_grad():
+        for fr, t, m, v in data[8:]:
+            s0 = m[0:1]; v0 = fd_velocity(m[None, :k], t[:k])
+            traj = model.integrate(torch.cat([s0, v0], 1), t[:61])[:, 0, :q]
+            e = ((traj - m[:61]) * n / 2).view(61, -1, 2)
+            e = e[:, good.view(-1, 2).all(1)].norm(dim=-1).mean(1)
+            errs20.append(float(e[1:21].mean())); errs60.append(float(e[1:61].mean()))
+    print(f"{name:26s} steps {steps:5d} kp err @20 {np.mean(errs20):6.2f} @60 {np.mean(errs60):6.2f} px  "
+          f"kl_w {float(terms['kl_w']):.2f} nll {float(terms['nll']):.2f}", flush=True)
