@@ -49,8 +49,13 @@ VARIANTS = {
   "relu128x3_shared_det": dict(act="relu", h=128, l=3, g=2, beta=0.0, det=True),
   "tanh64x2_full_det": dict(act="tanh", h=64, l=2, g=0, beta=0.0, det=True),
   "tanh64x2_shared_det": dict(act="tanh", h=64, l=2, g=2, beta=0.0, det=True),
+  "tanh64x2_shared_kl1": dict(act="tanh", h=64, l=2, g=2, beta=1.0),
+  "tanh64x2_full_kl1_free": dict(act="tanh", h=64, l=2, g=0, beta=1.0, free=True),  # no keypoint held still
 }
 model.velocity_correction = False
+# keypoints that barely move in the training tracks are held still, as fit does (train.still_keypoint_px)
+from types import SimpleNamespace  # noqa: E402
+from kinecast.train.stages import hold_still  # noqa: E402
 pick = sys.argv[4].split(",") if len(sys.argv) > 4 else list(VARIANTS)
 gen = np.random.default_rng(0)
 for name in pick:
@@ -58,6 +63,8 @@ for name in pick:
     torch.manual_seed(0)
     model.field = DynamicsField(q, V["h"], V["l"], True, not V.get("det"), cfg.model.prior_std, cfg.model.init_logstd,
                                 activation=V["act"], group=V["g"])
+    still = hold_still(model, SimpleNamespace(means=[d[2] for d in data[:8]]),
+                       0.0 if V.get("free") else cfg.train.still_keypoint_px)
     with torch.no_grad():
         model.vel_enc.head.weight[:q].zero_(); model.vel_enc.head.bias[:q].zero_()
     params = list(model.field.parameters()) + list(model.vel_enc.parameters())
@@ -82,5 +89,5 @@ for name in pick:
             e = ((traj - m[:61]) * n / 2).view(61, -1, 2)
             e = e[:, good.view(-1, 2).all(1)].norm(dim=-1).mean(1)
             errs20.append(float(e[1:21].mean())); errs60.append(float(e[1:61].mean()))
-    print(f"{name:26s} steps {steps:5d} kp err @20 {np.mean(errs20):6.2f} @60 {np.mean(errs60):6.2f} px  "
+    print(f"{name:26s} still {still} steps {steps:5d} kp err @20 {np.mean(errs20):6.2f} @60 {np.mean(errs60):6.2f} px  "
           f"kl_w {float(terms['kl_w']):.2f} nll {float(terms['nll']):.2f}", flush=True)

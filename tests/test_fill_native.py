@@ -6,7 +6,8 @@ Outside references:
   back with OpenCV (``cv2.IMREAD_UNCHANGED`` keeps the file's own depth and channels).
 - TIFF 6.0 through tifffile: a 16-bit stack is written and the output pages read back with it.
 - OpenCV's ``cv2.resize`` (INTER_CUBIC to enlarge) is the reference for bringing a model-size
-  prediction to the native size.
+  prediction to the native size (for a non-square native frame, the picture rows of the letterboxed
+  model frame: 96 x 80 → 32 x 27 model pixels, 32·80/96 = 26.7 rounded, centred from row 2).
 - RFC 4180 for the CSV files.
 
 The model is a tiny run trained for a few steps: quality is not what these tests check.
@@ -129,8 +130,9 @@ def test_16bit_colour_frames_come_back_at_their_own_quality(run, tmp_path, capsy
 
 
 def test_grey_filled_frame_is_the_prediction_resized_by_opencv(run, tmp_path, capsys):
-    """Grey model, grey 16-bit frames: a filled frame is the model-size prediction brought to the
-    native size by cv2.resize (INTER_CUBIC, enlarging), clipped to [0, 1], times 65535 (PNG 16-bit)."""
+    """Grey model, grey 16-bit frames: a filled frame is the model-size prediction's picture rows
+    brought to the native size by cv2.resize (INTER_CUBIC, enlarging), clipped to [0, 1], times
+    65535 (PNG 16-bit)."""
     rec = rig_recording(tmp_path / "rig", "grey", seed=2)
     to_16bit_large(rec)
     drop_frames(rec)
@@ -143,7 +145,8 @@ def test_grey_filled_frame_is_the_prediction_resized_by_opencv(run, tmp_path, ca
     slots = [i for i, n in enumerate(names) if n in DELETED]
     assert list(np.flatnonzero(filled)) == slots
     for slot, name in zip(slots, DELETED):
-        want = np.rint(np.clip(cv2.resize(frames[slot, 0], (NATIVE_W, NATIVE_H),
+        picture = frames[slot, 0][2:2 + 27]            # the padded rows above and below cut away
+        want = np.rint(np.clip(cv2.resize(picture, (NATIVE_W, NATIVE_H),
                                           interpolation=cv2.INTER_CUBIC), 0, 1) * 65535)
         got = cv2.imread(str(out / name), cv2.IMREAD_UNCHANGED)
         assert got.shape == (NATIVE_H, NATIVE_W) and got.dtype == np.uint16

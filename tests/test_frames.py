@@ -2,8 +2,10 @@
 
 The reference for every expected frame is an outside library: frames are written with imageio,
 tifffile or OpenCV, and the expected model frame is ``cv2.resize(..., INTER_AREA)`` of the written
-pixels divided by the format's full scale (8-bit /255, 16-bit /65535: common practice). Scenes are
-invented test inputs (a soft disc on a gradient), not data.
+pixels divided by the format's full scale (8-bit /255, 16-bit /65535: common practice), letterboxed
+to the square (the 64 x 48 scene: 16 x 12 model pixels, 2 rows of repeated edge pixels above and
+below, by OpenCV's ``copyMakeBorder`` with ``BORDER_REPLICATE``). Scenes are invented test inputs
+(a soft disc on a gradient), not data.
 """
 
 from __future__ import annotations
@@ -49,13 +51,24 @@ def scene(i: int, depth: int = 8, colour: bool = True) -> np.ndarray:
     return np.round(rgb * full).astype(np.uint8 if depth == 8 else np.uint16)
 
 
+def letterbox(unit: np.ndarray, size: int = SIZE) -> np.ndarray:
+    """Reference square frame: the long side area-resized to ``size`` and the short side in
+    proportion (rounded half up), centred, the edge pixels repeated (OpenCV copyMakeBorder with
+    BORDER_REPLICATE)."""
+    h, w = unit.shape[:2]
+    cw, ch = (int(np.floor(side * size / max(h, w) + 0.5)) for side in (w, h))
+    small = cv2.resize(unit, (cw, ch), interpolation=cv2.INTER_AREA)
+    top, left = (size - ch) // 2, (size - cw) // 2
+    return cv2.copyMakeBorder(small, top, size - ch - top, left, size - cw - left, cv2.BORDER_REPLICATE)
+
+
 def expected(img: np.ndarray, full: float, color: str = "rgb", size: int = SIZE) -> np.ndarray:
-    """Reference model frame: OpenCV area resize of the normalised image, channels first."""
+    """Reference model frame: OpenCV area resize of the normalised image, letterboxed, channels first."""
     unit = img.astype(np.float32) / np.float32(full)
     if color == "grey" and unit.ndim == 3:
         # ITU-R BT.601 luma as implemented by OpenCV's RGB2GRAY (OpenCV docs, "Color conversions").
         unit = cv2.cvtColor(unit, cv2.COLOR_RGB2GRAY)
-    small = cv2.resize(unit, (size, size), interpolation=cv2.INTER_AREA)
+    small = letterbox(unit, size)
     if small.ndim == 2:
         small = small[None]
         if color == "rgb":
@@ -175,11 +188,11 @@ def test_grey_conversion_uses_bt601_luma(tmp_path):
     for got, img in zip(rec.frames, imgs):
         # scikit-image's rgb2yuv: Y = 0.299 R + 0.587 G + 0.114 B (ITU-R BT.601), resized by OpenCV.
         luma = rgb2yuv(img.astype(np.float64) / 255.0)[..., 0].astype(np.float32)
-        ref = cv2.resize(luma, (SIZE, SIZE), interpolation=cv2.INTER_AREA)
+        ref = letterbox(luma)
         np.testing.assert_allclose(got[0], ref, atol=1e-5)
         # and the weights written out (BT.601, from memory: 0.299, 0.587, 0.114)
         by_hand = img.astype(np.float64) / 255.0 @ np.array([0.299, 0.587, 0.114])
-        ref2 = cv2.resize(by_hand.astype(np.float32), (SIZE, SIZE), interpolation=cv2.INTER_AREA)
+        ref2 = letterbox(by_hand.astype(np.float32))
         np.testing.assert_allclose(got[0], ref2, atol=1e-5)
 
 

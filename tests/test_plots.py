@@ -244,3 +244,17 @@ def test_contact_rows_colour_bars_have_units_and_spread_scale_fits_the_data():
     for row in (error_row, spread_row):  # one colour bar per row, beside its last frame, with its unit
         assert "intensity" in row[-1].colorbar.ax.get_ylabel()
     assert P.spread_scale(np.zeros((1, 1, 2, 2))) == P.MIN_SPREAD_SCALE  # one sample: no spread
+
+
+def test_metric_curves_show_band_coverage_against_its_nominal_share():
+    # Where samples were drawn the coverage of their band gets its own panel with the nominal share
+    # (score.band) dotted: a calibrated band holds the truth that share of the time (definition of a
+    # central prediction interval).
+    t = np.arange(1, 11) / 10.0
+    per_method = {"model": {"mse": t / 10, "band_coverage": np.linspace(0.9, 0.4, 10)},
+                  "persistence": {"mse": t / 5}}
+    fig = P.metric_curves_figure(per_method, t, band=0.9)
+    cov_ax = [ax for ax in fig.axes if ax.get_visible()][1]
+    assert cov_ax.get_ylabel() == P.METRIC_LABELS["band_coverage"]
+    dotted = [ln for ln in cov_ax.get_lines() if ln.get_linestyle() == ":"]
+    assert len(dotted) == 1 and set(dotted[0].get_ydata()) == {0.9}

@@ -95,5 +95,7 @@ def test_object_errors_count_missed_and_spurious_objects():
     assert out["missed_objects"].tolist() == [1, 0, 0, 3]
     assert out["spurious_objects"].tolist() == [0, 1, 0, 0]
     assert [int(np.isnan(e).sum()) for e in out["per_object"]] == [1, 0, 0, 3]
-    assert out["matched_error_px"][:3] == pytest.approx([0.0, 0.0, 0.0], abs=1e-6)
+    # not exactly 0 in frame 0: the tracker's low-pass (tracks.TRACK_BLUR_PX) lets the missing
+    # disc's faint tail weigh into its neighbour's centroid in the truth (0.005 px measured)
+    assert out["matched_error_px"][:3] == pytest.approx([0.0, 0.0, 0.0], abs=0.02)
     assert np.isnan(out["matched_error_px"][3])

@@ -47,6 +47,9 @@ def test_run_folder_has_every_promised_file(rig, tmp_path):
     for name in (ck.CONFIG, ck.WEIGHTS, ck.RESUME, ck.LOG, ck.SUMMARY, ck.BACKGROUND, ck.LOSS_PLOT):
         assert (run / name).is_file(), name
     assert summary["steps"] == 12 and summary["train_recordings"] == 2 and summary["val_recordings"] == 1
+    # the trials trained on and validated on are named, and split the recordings given
+    assert len(summary["trained_on"]) == 2 and len(summary["validated_on"]) == 1
+    assert sorted(summary["trained_on"] + summary["validated_on"]) == sorted(summary["recordings"])
     cfg = C.load(run / ck.CONFIG)
     # time scale resolved from the data: units_per_frame / median interval (1/20 s)
     assert cfg.solver.time_scale == pytest.approx(0.1 * 20.0)

@@ -7,7 +7,8 @@ The fast path asks ffmpeg for frames already at model size (16-bit grey or RGB).
   converts (ITU-R BT.601 luma) and area-averages it (``cv2.INTER_AREA``);
 * for a lossless (FFV1, RGB) video, the written pixels themselves: BT.601 luma
   Y' = 0.299 R + 0.587 G + 0.114 B (ITU-R BT.601, the Y' equation) and OpenCV's area resize (a box
-  filter over the source pixels each output pixel covers; common practice for shrinking images).
+  filter over the source pixels each output pixel covers; common practice for shrinking images),
+  a non-square region letterboxed by OpenCV's ``copyMakeBorder`` with ``BORDER_REPLICATE``.
 
 Scenes (a soft bright disc moving over a dark gradient) are invented test inputs, not data.
 """
@@ -117,6 +118,14 @@ def test_fast_path_matches_frame_by_frame(tmp_path, no_full_frames, color, roi):
     assert rec.info["roi"] == roi and rec.info["source_size"] == [SRC, SRC]
 
 
+def letterbox(img: np.ndarray) -> np.ndarray:
+    """Reference for the ROI (150 x 180): area-resized to 53 x 64 (the long side to SIZE, the
+    width 150 * 64 / 180 = 53.3 rounded), centred with 5 columns left and 6 right, edge pixels
+    repeated (OpenCV copyMakeBorder, BORDER_REPLICATE)."""
+    small = cv2.resize(img, (53, SIZE), interpolation=cv2.INTER_AREA)
+    return cv2.copyMakeBorder(small, 0, 0, 5, 6, cv2.BORDER_REPLICATE)
+
+
 def test_lossless_video_matches_bt601_luma_and_area_average(tmp_path, no_full_frames):
     path = write_lossless(tmp_path / "clip.mkv", colour=True)
     crop = (slice(ROI[1], ROI[1] + ROI[3]), slice(ROI[0], ROI[0] + ROI[2]))
@@ -125,8 +134,8 @@ def test_lossless_video_matches_bt601_luma_and_area_average(tmp_path, no_full_fr
     rgb = read_recording(path, cfg(roi=ROI, color="rgb"))
     for i in range(N):
         img = scene(i, colour=True)[crop].astype(np.float64) / 255
-        luma = cv2.resize(img @ weights, (SIZE, SIZE), interpolation=cv2.INTER_AREA)
-        colour = cv2.resize(img, (SIZE, SIZE), interpolation=cv2.INTER_AREA).transpose(2, 0, 1)
+        luma = letterbox(img @ weights)
+        colour = letterbox(img).transpose(2, 0, 1)
         # Grey: exact up to ffmpeg's fixed-point arithmetic (measured max |d| 7e-5; bound 1e-3).
         np.testing.assert_allclose(grey.frames[i, 0], luma, atol=1e-3)
         # RGB: ffmpeg's scaler is off by up to about 1/255 at full scale (measured: pure green
@@ -195,11 +204,11 @@ def test_bad_roi_gives_the_same_one_line_error(tmp_path, monkeypatch, roi, probl
 
 
 def test_enlargement_stays_on_the_frame_by_frame_path(tmp_path):
-    """A region narrower than the model size keeps the numpy path: OpenCV averages areas only when
+    """A region smaller than the model size keeps the numpy path: OpenCV averages areas only when
     both directions shrink and otherwise uses a variant of bilinear interpolation (OpenCV's resize
-    source, from memory; ffmpeg's result measured up to 0.10 away on this region)."""
+    source, from memory; ffmpeg's result measured up to 0.10 away on such a region)."""
     path = write_h264(tmp_path / "clip.mp4", colour=False)
-    roi = [60, 40, 40, 100]                                         # 40 px wide < 64
+    roi = [60, 40, 40, 50]                            # long side 50 < 64: 40 x 50 enlarged to 51 x 64
     rec = read_recording(path, cfg(roi=roi))
     assert rec.info["raw_max"] is not None                            # the frame-by-frame path ran
     np.testing.assert_allclose(rec.frames, frame_by_frame(path, roi, "grey"), atol=1e-6)

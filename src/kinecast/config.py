@@ -45,7 +45,8 @@ def _opt(default: Any, help: str, choices: tuple | None = None, lo: float | None
 class DataConfig:
     """How recordings are read and preprocessed (once, on read)."""
 
-    size: int = _opt(64, "model frame size in pixels (square)", lo=8, hi=512)
+    size: int = _opt(64, "model frame size in pixels (square: a non-square picture keeps its "
+                         "aspect ratio and is padded to square with its edge pixels)", lo=8, hi=512)
     color: str = _opt("grey", "channels fed to the model", choices=("grey", "rgb"))
     roi: list = _opt([], "crop before resizing: [x, y, width, height] in source pixels; [] = whole frame",
                      length=(0, 4))
@@ -150,6 +151,10 @@ class TrainConfig:
     keypoint_coverage: float = _opt(1.0, "staged: weight of a term that puts a keypoint near every part of "
                                     "the frame that differs from the background, in the positions stage "
                                     "(one keypoint per object when there are several)", lo=0.0)
+    still_keypoint_px: float = _opt(1.0, "staged, keypoint encoder: a keypoint whose encoded position moves by "
+                                    "less than this (rms over the training frames, model pixels) when the "
+                                    "dynamics stage starts is held still by the field (e.g. one parked on a "
+                                    "fixed part); 0 = off", lo=0.0)
     positions_kl: float = _opt(0.1, "staged: KL weight reached by the end of the positions stage", lo=0.0)
     escape_deadline: float = _opt(0.4, "staged: share of the positions stage after which an attempt that has "
                                   "found nothing (error still >= 0.8x the background's) restarts from a new seed", lo=0.05, hi=1.0)
@@ -198,6 +203,9 @@ class ForecastConfig:
 
     frames: int = _opt(30, "frames to forecast", lo=1)
     samples: int = _opt(1, "futures drawn (encoder noise and weight draws); 1 = mean weights", lo=1, hi=1000)
+    # TOML integers are signed 64-bit (TOML 1.0.0), the largest seed a config file can hold
+    seed: int = _opt(0, "seed of the random draws behind sampled futures (forecast, score with samples > 1): "
+                     "the same seed, run, recording and device give the same samples", lo=0, hi=2**63 - 1)
     fps: float = _opt(0.0, "forecast frames per second of recording time (the clip plays at the recording's "
                       "rate, so 4x the recording's gives 4x slow motion); 0 = the recording's", lo=0.0)
     upscale: int = _opt(4, "pixel upscaling of rendered clips", lo=1, hi=16)

@@ -64,7 +64,7 @@ TERM_LABELS = {
     "window": "frames per training window",
 }
 METRIC_ORDER = ("mse", "mae", "psnr", "ssim", "object_ssim", "pos_err_px", "position_error_px",
-                "matched_error_px")
+                "matched_error_px", "band_coverage")
 METRIC_LABELS = {
     "mse": f"mean squared error\n({INTENSITY}, squared)",
     "mae": f"mean absolute error\n({INTENSITY})",
@@ -74,6 +74,7 @@ METRIC_LABELS = {
     "pos_err_px": "object position error (px)",
     "position_error_px": "object position error (px)",
     "matched_error_px": "matched-object position error (px)",
+    "band_coverage": "share of true pixels inside the\nsampled futures' band (no unit)",
 }
 # what a reader sees for each scoring method (summary.json and per_frame.csv keep the short names)
 METHOD_LABELS = {
@@ -305,7 +306,8 @@ def _threshold_panel(metrics: list[str]) -> str:
 
 
 def metric_curves_figure(per_method: Mapping[str, Mapping[str, np.ndarray]], times: np.ndarray,
-                         threshold: float | None = None, origin: float | None = None) -> Figure:
+                         threshold: float | None = None, origin: float | None = None,
+                         band: float | None = None) -> Figure:
     """One panel per metric against the forecast horizon (see :func:`metric_curves`)."""
     times = np.asarray(times, dtype=np.float64)
     horizon = forecast_horizon(times, origin)
@@ -330,6 +332,9 @@ def metric_curves_figure(per_method: Mapping[str, Mapping[str, np.ndarray]], tim
             line = ax.axhline(threshold, ls="--", color="0.35", lw=1,
                               label=f"valid-horizon threshold (SSIM {threshold:g})")
             legend.setdefault(line.get_label(), line)
+        if metric == "band_coverage" and band is not None:
+            line = ax.axhline(band, ls=":", color="0.35", lw=1, label=f"nominal band ({band:.0%} of samples)")
+            legend.setdefault(line.get_label(), line)
         ax.set_xlim(left=0.0)
         ax.set_xlabel("forecast horizon (s)")
         ax.set_ylabel(METRIC_LABELS.get(metric, metric.replace("_", " ")), fontsize=8)
@@ -343,7 +348,7 @@ def metric_curves_figure(per_method: Mapping[str, Mapping[str, np.ndarray]], tim
 
 def metric_curves(per_method: Mapping[str, Mapping[str, np.ndarray]], times: np.ndarray,
                   out: str | Path, threshold: float | None = None, overwrite: bool = False,
-                  origin: float | None = None) -> Path:
+                  origin: float | None = None, band: float | None = None) -> Path:
     """Plot per-frame scores against the forecast horizon: one panel per metric, one line per method.
 
     Parameters
@@ -364,13 +369,16 @@ def metric_curves(per_method: Mapping[str, Mapping[str, np.ndarray]], times: np.
         Time of the last frame the forecast was given; the x axis is ``times - origin``, from 0.
         Default: one median frame interval before the first scored frame (see
         :func:`forecast_horizon`).
+    band : float, optional
+        Nominal share of the sampled futures' band, drawn dotted on the ``band_coverage`` panel (a
+        method's ``band_coverage``: share of true pixels inside the band, where samples were drawn).
 
     Returns
     -------
     Path
     """
     path = _check_out(out, overwrite)
-    return _save(metric_curves_figure(per_method, times, threshold, origin), path, overwrite)
+    return _save(metric_curves_figure(per_method, times, threshold, origin, band), path, overwrite)
 
 
 def phase_portrait_figure(latents: np.ndarray, times: np.ndarray) -> Figure:

@@ -32,6 +32,7 @@ def configure(parser) -> None:
                         help="first forecast frame: a time like 2.5s or a frame number, at most one "
                              "interval past the last recorded frame; default: the end")
     parser.add_argument("--samples", type=int, metavar="K", help="futures to draw (forecast.samples)")
+    add_seed_option(parser)
     parser.add_argument("--fps", metavar="F",
                         help="forecast frames per second of recording time, e.g. 60, or 4x the "
                              "recording's rate; the clip always plays at the recording's rate, so "
@@ -39,6 +40,20 @@ def configure(parser) -> None:
     parser.add_argument("--out", required=True, metavar="OUT", help="clip.mp4, clip.gif or a folder/")
     parser.add_argument("--overwrite", action="store_true", help="replace existing outputs")
     parser.add_argument("--device", choices=("auto", "cpu", "cuda"), help="compute device (train.device)")
+
+
+def add_seed_option(parser) -> None:
+    """``--seed N``: the seed of the sampled futures, shared by the verbs that draw them."""
+    parser.add_argument("--seed", type=int, metavar="N",
+                        help="seed of the sampled futures (forecast.seed): the same seed gives the same "
+                             "samples; matters with more than one sample")
+
+
+def with_seed(args, cfg):
+    """``cfg`` with ``--seed`` (when given) as ``forecast.seed``, checked like the config key."""
+    from .. import config as cfgmod
+
+    return cfg if args.seed is None else cfgmod.apply_overrides(cfg, [f"forecast.seed={args.seed}"])
 
 
 def open_run(args, cfg):
@@ -166,7 +181,7 @@ def run(args, cfg) -> int:
             if p.exists():
                 raise KinecastError(p, "already exists (pass --overwrite to replace it)")
     check_can_create(out)
-    model, cfg, rec, device = open_run(args, cfg)
+    model, cfg, rec, device = open_run(args, with_seed(args, cfg))
     fps = parse_fps(args.fps, rec, cfg.forecast.fps)
     fc = core.forecast(model, cfg, rec, n, parse_start(args.start, rec), fps, samples, device)
     truth, have = truth_at(rec, fc.times)
@@ -186,7 +201,8 @@ def run(args, cfg) -> int:
     np.savez_compressed(buf, times=fc.times, mean=fc.mean, spread=fc.spread, samples=fc.samples,
                         truth=truth, truth_present=have)
     write_bytes(side["forecast"], buf.getvalue())
-    print(f"forecast of {n} frames ({fc.times[0]:.3f}–{fc.times[-1]:.3f} s, {samples} sample(s)) "
+    print(f"forecast of {n} frames ({fc.times[0]:.3f}–{fc.times[-1]:.3f} s, {samples} sample(s)"
+          f"{f', seed {cfg.forecast.seed}' if samples > 1 else ''}) "
           f"written to {out}; contact sheet {side['sheet']}; latents {side['latents']}")
     print(f"note: {CAUTION}")
     return 0

@@ -17,6 +17,7 @@ import torch
 from ..config import Config
 from ..errors import KinecastError
 from ..frames import Recording
+from ..frames.preprocess import square_geometry
 from ..model import to_model_time
 
 # A requested time this fraction of the median interval from a slot's time is that slot (float
@@ -90,21 +91,32 @@ def slot_at_time(rec: Recording, when: float) -> int:
     return int(np.searchsorted(rec.times, when - tol))
 
 
+def sample_generator(seed: int, device: str | torch.device = "cpu") -> torch.Generator:
+    """The noise source for sampled futures: a generator on ``device`` seeded with ``seed``.
+
+    The same seed gives the same draws on the same device (CPU and GPU draw different streams).
+    """
+    return torch.Generator(device=torch.device(device)).manual_seed(int(seed))
+
+
 def predict_from(model, cfg: Config, rec: Recording, ctx_start: int, times: np.ndarray,
-                 samples: int = 1, device: str | torch.device = "cpu") -> Forecast:
+                 samples: int = 1, device: str | torch.device = "cpu", seed: int | None = None) -> Forecast:
     """Condition on ``k`` frames from ``ctx_start`` and predict frames at ``times`` (seconds, any order, before or after the context).
 
     With ``samples == 1`` the mean weights and the encoders' means are used (one deterministic
-    forecast). With more, each sample draws the initial state and the field's weights.
+    forecast). With more, each sample draws the initial state and the field's weights from a
+    generator seeded with ``seed`` (default ``cfg.forecast.seed``), so the same call gives the same
+    samples.
     """
     k = cfg.model.velocity_frames
     ctx = torch.from_numpy(rec.frames[ctx_start:ctx_start + k][None]).to(device)
     t = to_model_time(np.asarray(times, dtype=np.float64) - rec.times[ctx_start], cfg).to(device)
     ctx_t = to_model_time(rec.times[ctx_start:ctx_start + k] - rec.times[ctx_start], cfg).to(device)
     stochastic = samples > 1
+    gen = sample_generator(cfg.forecast.seed if seed is None else seed, device) if stochastic else None
     with torch.no_grad():
         frames, latents = model.rollout(ctx, t, samples=samples, mean_weights=not stochastic,
-                                        sample_init=stochastic, ctx_t=ctx_t)
+                                        sample_init=stochastic, generator=gen, ctx_t=ctx_t)
     s = frames[:, 0].float().cpu().numpy()
     return Forecast(np.asarray(times, dtype=np.float64), s.mean(axis=0),
                     s.std(axis=0) if stochastic else np.zeros_like(s[0]), s,
@@ -115,10 +127,14 @@ def keypoint_pixels(latents: np.ndarray, info: dict, cfg: Config) -> np.ndarray:
     """Keypoint positions and velocities of latent states in the recording's own pixels.
 
     The keypoint encoder's latent position is K image coordinates in [-1, 1] across the model frame
-    (pixel centres at ``(2i + 1) / n − 1``); the model frame is the crop ``data.roi`` (or the whole
-    source frame) resized. Model pixel i covers source pixels ``x0 + [i, i + 1)·w/n``, so a
-    normalised x maps to ``x0 + (x + 1)/2 · w − 0.5`` in pixel-centre coordinates (x right, y
-    down), and a velocity in model units per model time unit to ``v · w/2 · time_scale`` px/s.
+    (pixel centres at ``(2i + 1) / n − 1``); the model frame holds the crop ``data.roi`` (or the
+    whole source frame), ``w`` x ``h``, resized to ``cw`` x ``ch`` model pixels and padded
+    by ``left`` and ``top`` (:func:`kinecast.frames.preprocess.square_geometry`; no padding and
+    ``cw = n`` for a square picture). Model pixel i covers source pixels
+    ``x0 + [i − left, i + 1 − left)·w/cw``, so a normalised x maps to
+    ``x0 − left·w/cw + (x + 1)/2 · n·w/cw − 0.5`` in pixel-centre coordinates (x right, y down),
+    and a velocity in model units per model time unit to ``v · n·w/(2·cw) · time_scale`` px/s.
+    Positions on the padding map outside the crop.
 
     Parameters
     ----------
@@ -134,10 +150,13 @@ def keypoint_pixels(latents: np.ndarray, info: dict, cfg: Config) -> np.ndarray:
     """
     q = latents.shape[-1] // 2
     x0, y0, w, h = info.get("roi") or [0, 0, *info["source_size"]]
+    geo = square_geometry(w, h, cfg.data.size)
     pos = latents[..., :q].reshape(*latents.shape[:-1], q // 2, 2)
     vel = latents[..., q:].reshape(*latents.shape[:-1], q // 2, 2)
-    scale = np.array([w, h], dtype=np.float64) / 2.0
-    px = np.array([x0, y0], dtype=np.float64) + (pos + 1.0) * scale - 0.5
+    n, cw, ch = geo.size, geo.content_w, geo.content_h
+    scale = np.array([n * w / cw, n * h / ch], dtype=np.float64) / 2.0    # w/2, h/2 when square
+    origin = np.array([x0 - geo.left * w / cw, y0 - geo.top * h / ch], dtype=np.float64)
+    px = origin + (pos + 1.0) * scale - 0.5
     return np.concatenate([px, vel * scale * cfg.solver.time_scale], axis=-1)
 
 
@@ -147,7 +166,8 @@ def forecast(model, cfg: Config, rec: Recording, n_frames: int, start: int | Non
 
     The first output frame is at slot ``start``'s time (one median interval after the last frame
     when ``start`` is the end of the recording, the default); the others follow at the recording's
-    median interval, or at ``fps`` frames per second of recording time when given.
+    median interval, or at ``fps`` frames per second of recording time when given. Sampled futures
+    are drawn with ``cfg.forecast.seed``.
     """
     k = cfg.model.velocity_frames
     cs = context_start_for(rec, k, start)

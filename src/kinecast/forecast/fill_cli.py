@@ -31,8 +31,9 @@ What DIR holds: every slot of the recording, so that DIR reads back as a complet
     (hard links where the file system allows, else byte-for-byte copies); for a TIFF stack or a
     video, each frame decoded and written losslessly as frame_NNNN.tif / frame_NNNN.png by slot.
   - Each missing slot gets a predicted frame, named after the folder's own numbering, at the
-    recording's own size, bit depth and colour: the model predicts at its own size (data.size),
-    and the prediction is resized (bicubic to enlarge, area averaging to shrink), clipped and
+    recording's own size, bit depth and colour: the model predicts at its own size (data.size;
+    a non-square picture is padded to square with its edge pixels, and that band is cut off
+    again), and the prediction is resized (bicubic to enlarge, area averaging to shrink), clipped and
     scaled to the sample type (255 for 8-bit, 65535 for 16-bit).
 {_bullet("A grey model on colour frames: " + COLOUR_FROM_GREY.format(n=BACKGROUND_SAMPLES) + ".")}
 {_bullet("An RGB model on grey frames: " + LUMA_FROM_RGB + ".")}

@@ -7,8 +7,10 @@ The model predicts the dropped frames at its own resolution (``data.size``, grey
   (hard links where the file system allows, else copies); for a TIFF stack or a video, every frame
   decoded and written losslessly as one image per slot (``frame_0000.tif`` / ``frame_0000.png``);
 * a new frame in each missing slot only, at the source's size, sample type and channels: the
-  prediction is resized (``cv2.INTER_CUBIC`` to enlarge, ``cv2.INTER_AREA`` to shrink), clipped to
-  [0, 1] and scaled to the sample type's full range (255 for 8-bit, 65535 for 16-bit);
+  picture part of the prediction (the padding that made a non-square picture square cut away,
+  :func:`kinecast.frames.preprocess.square_geometry`) is resized (``cv2.INTER_CUBIC`` to enlarge,
+  ``cv2.INTER_AREA`` to shrink), clipped to [0, 1] and scaled to the sample type's full range (255
+  for 8-bit, 65535 for 16-bit);
 * ``timestamps.csv`` (every slot's name and time) and ``filled.csv`` (which frames are predicted).
 
 How colour is made when the model and the frames differ (:data:`COLOUR_FROM_GREY`): a grey model's
@@ -38,7 +40,7 @@ from ..errors import KinecastError
 from ..fileio import write_bytes, write_text, write_with
 from ..frames import Recording
 from ..frames.images import IMAGE_SUFFIXES, natural_key, read_image
-from ..frames.preprocess import UNSIGNED_SCALE, BT601_LUMA, sample_format, to_unit
+from ..frames.preprocess import UNSIGNED_SCALE, BT601_LUMA, sample_format, square_geometry, to_unit
 from ..frames.tiffstack import decode_stack
 from ..frames.video import decode_video
 from .core import gaps
@@ -150,10 +152,12 @@ def native_frame(pred: np.ndarray, fmt: NativeFormat, roi: list, bg: Background 
     Returns (H, W), (H, W, 3) or (H, W, 4) samples of ``fmt.dtype``.
     """
     x, y, w, h = roi or (0, 0, fmt.width, fmt.height)
+    geo = square_geometry(w, h, pred.shape[-1])
+    pred = geo.crop(pred)                                   # the padded band is not the recording's
     if pred.shape[0] == 3 and fmt.channels == 1:
         pred = np.tensordot(BT601_LUMA, pred, axes=1)[None]
     if pred.shape[0] == 1 and fmt.channels == 3:          # colour from grey: change over background
-        change = resize_unit(pred[0] - bg.model[0], w, h)
+        change = resize_unit(pred[0] - geo.crop(bg.model[0]), w, h)
         region = bg.native[y:y + h, x:x + w] + change[..., None]
     else:
         region = resize_unit(pred[0] if fmt.channels == 1 else np.transpose(pred, (1, 2, 0)), w, h)

@@ -26,7 +26,8 @@ from ..fileio import write_with
 CACHE_ENV = "KINECAST_CACHE_DIR"
 DEFAULT_CACHE_DIR = "~/.cache/kinecast"
 # Bump when the entry layout or the preprocessing changes, so old entries are never reused.
-CACHE_FORMAT = 2  # 2: videos shrunk by ffmpeg (16-bit area averages)
+CACHE_FORMAT = 3  # 2: videos shrunk by ffmpeg (16-bit area averages); 3: non-square pictures
+                  # padded to the square (edge pixels repeated) instead of squashed
 PIXEL_FIELDS = ("size", "color", "roi")
 
 

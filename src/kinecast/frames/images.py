@@ -38,6 +38,22 @@ def natural_key(name: str) -> tuple:
     return parts, name
 
 
+def expand_trials(path: str | Path) -> list[Path]:
+    """The recordings at ``path``: its trial folders when it is a folder of trials, else ``[path]``.
+
+    A folder that holds no image files itself but has sub-folders that do stands for those
+    sub-folders, in natural order (the rule ``kinecast fit`` follows for a rendered rig).
+    """
+    p = Path(path)
+    if p.is_dir() and not any(f.suffix.lower() in IMAGE_SUFFIXES for f in p.iterdir() if f.is_file()):
+        subs = sorted((d for d in p.iterdir() if d.is_dir()
+                       and any(f.suffix.lower() in IMAGE_SUFFIXES for f in d.iterdir())),
+                      key=lambda d: natural_key(d.name))
+        if subs:
+            return subs
+    return [p]
+
+
 def format_name(path: Path) -> str:
     """``PNG``, ``JPEG``, ``BMP`` or ``TIFF`` for an image file name."""
     return _FORMAT_NAMES.get(path.suffix.lower(), path.suffix.lstrip(".").upper())

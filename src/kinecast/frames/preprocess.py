@@ -4,6 +4,9 @@ Every reader hands its raw frames, one at a time, to a :class:`FrameSink`. The s
 frames of a recording agree in size, channel layout and sample type, normalises intensities by the
 sample type's range, crops the region of interest, converts to grey or RGB, and resizes to the model
 size. Only the small model frames are kept, so a long full-resolution video never sits in memory.
+A picture that is not square keeps its aspect ratio: it is shrunk until its long side fills the
+model frame, then centred, and its edge pixels are repeated out to the square
+(:func:`square_geometry` says where the picture lies; :func:`pad_square` fills the rest).
 A decoder that does the crop, conversion and resize itself (ffmpeg, for videos) hands over frames
 already at the model size, together with the facts of the source frame they came from.
 """
@@ -111,19 +114,119 @@ def check_roi(roi: list, width: int, height: int, where: str) -> tuple[int, int,
     return x, y, w, h
 
 
+@dataclass(frozen=True)
+class SquareGeometry:
+    """Where a ``width`` x ``height`` picture lies in a ``size`` x ``size`` model frame.
+
+    The picture is resized to ``content_w`` x ``content_h`` model pixels (its long side fills the
+    frame, its short side keeps the aspect ratio, rounded half up to whole pixels, at least 1) and
+    centred; ``left`` and ``top`` are the model pixels before it (the odd pixel, if any, goes
+    right or below). A square picture fills the frame: no padding.
+    """
+
+    width: int             # the picture (the crop ``data.roi``, or the whole frame) in source pixels
+    height: int
+    size: int              # the model frame's side
+    content_w: int         # the picture in model pixels
+    content_h: int
+    left: int              # model pixels before the picture
+    top: int
+
+    @property
+    def right(self) -> int:
+        """Model pixels after the picture, left to right."""
+        return self.size - self.left - self.content_w
+
+    @property
+    def bottom(self) -> int:
+        """Model pixels below the picture."""
+        return self.size - self.top - self.content_h
+
+    @property
+    def padded(self) -> bool:
+        return self.content_w != self.size or self.content_h != self.size
+
+    def crop(self, frame: np.ndarray) -> np.ndarray:
+        """The picture's part of a model-size frame ``(..., size, size)``: the padding cut away."""
+        return frame[..., self.top:self.top + self.content_h, self.left:self.left + self.content_w]
+
+    def describe(self) -> str:
+        """One line on what happens to the frame geometry (for ``kinecast inspect``).
+
+        The padding is described in source pixels, as if the frame were padded before shrinking;
+        it is made at model size (the same picture, its edge pixels repeated after shrinking).
+        """
+        w, h, n = self.width, self.height, self.size
+        if not self.padded:
+            return f"frames {w}x{h} → {n}x{n} model frames (square: no padding)"
+        long = max(w, h)
+        if w >= h:
+            first = (long - h) // 2
+            band, axis = f"rows {first}-{first + h - 1}", "above and below"
+            model = f"rows {self.top}-{self.top + self.content_h - 1}"
+        else:
+            first = (long - w) // 2
+            band, axis = f"columns {first}-{first + w - 1}", "left and right"
+            model = f"columns {self.left}-{self.left + self.content_w - 1}"
+        return (f"frames {w}x{h} → padded to {long}x{long} ({band} hold the picture; edge pixels "
+                f"repeated {axis}) → {n}x{n} model frames; picture {self.content_w}x{self.content_h} "
+                f"at {model}")
+
+
+def short_side(short: int, long: int, size: int) -> int:
+    """The short side in model pixels when the long side becomes ``size``: ``short·size/long``
+    rounded half up, at least 1. The video reader's ffmpeg filter writes the same rule."""
+    return max(1, (2 * short * size + long) // (2 * long))
+
+
+def square_geometry(width: int, height: int, size: int) -> SquareGeometry:
+    """How a ``width`` x ``height`` picture is placed in a ``size`` x ``size`` model frame.
+
+    >>> g = square_geometry(776, 310, 64)
+    >>> (g.content_w, g.content_h, g.left, g.top, g.bottom)
+    (64, 26, 0, 19, 19)
+    """
+    if width >= height:
+        cw, ch = size, short_side(height, width, size)
+    else:
+        cw, ch = short_side(width, height, size), size
+    return SquareGeometry(int(width), int(height), int(size), cw, ch, (size - cw) // 2, (size - ch) // 2)
+
+
+def describe_geometry(info: dict, size: int) -> str | None:
+    """:meth:`SquareGeometry.describe` for a recording's picture (its ``roi``, else its
+    ``source_size``, from the recording's ``info``); None when ``info`` names no source size."""
+    region = info.get("roi") or ([0, 0, *info["source_size"]] if info.get("source_size") else None)
+    return square_geometry(int(region[2]), int(region[3]), size).describe() if region else None
+
+
+def pad_square(small: np.ndarray, geo: SquareGeometry) -> np.ndarray:
+    """A ``content_h`` x ``content_w`` (x channels) picture centred in a square with its edge pixels
+    repeated (``cv2.BORDER_REPLICATE``): a fixed camera's static edge, extended, reads as more static
+    background. Returned unchanged when the picture is square."""
+    if not geo.padded:
+        return small
+    return cv2.copyMakeBorder(small, geo.top, geo.bottom, geo.left, geo.right, cv2.BORDER_REPLICATE)
+
+
 def to_model(unit: np.ndarray, roi: tuple[int, int, int, int] | None, size: int, color: str) -> np.ndarray:
     """Crop, convert and resize one normalised frame to (C, size, size) float32.
 
     Grey uses the BT.601 luma weights; grey sources are repeated to three channels for ``rgb``.
-    Resizing uses area averaging (``cv2.INTER_AREA``).
+    Resizing uses area averaging (``cv2.INTER_AREA``) to the picture's size in model pixels
+    (:func:`square_geometry`); a picture that is not square is then padded to the square by
+    :func:`pad_square`. A frame already at that size (the video reader's ffmpeg shrinks it) is
+    only padded.
     """
     if roi is not None:
         x, y, w, h = roi
         unit = unit[y:y + h, x:x + w]
     if color == "grey" and unit.ndim == 3:
         unit = unit @ BT601_LUMA
-    small = cv2.resize(np.ascontiguousarray(unit, dtype=np.float32), (size, size),
+    geo = square_geometry(unit.shape[1], unit.shape[0], size)
+    small = cv2.resize(np.ascontiguousarray(unit, dtype=np.float32), (geo.content_w, geo.content_h),
                        interpolation=cv2.INTER_AREA)
+    small = pad_square(small, geo)
     if small.ndim == 2:
         small = small[None]
         if color == "rgb":
@@ -180,9 +283,11 @@ class FrameSink:
         Parameters
         ----------
         small : ndarray
-            (size, size) grey or (size, size, 3) RGB unsigned integers (8 or 16 bits per sample),
-            made from a source frame by cropping ``data.roi``, converting to ``data.color`` and
-            area averaging to ``data.size``. It is normalised by its own sample type's full scale.
+            (h, w) grey or (h, w, 3) RGB unsigned integers (8 or 16 bits per sample), made from a
+            source frame by cropping ``data.roi``, converting to ``data.color`` and area averaging
+            to the picture's size in model pixels (``content_h`` x ``content_w`` of
+            :func:`square_geometry`; ``data.size`` square for a square picture). It is normalised
+            by its own sample type's full scale and padded to the square here.
         source : SampleFormat
             The decoded frame it was made from. ``data.roi`` is checked against its size, with the
             same message as :meth:`add`, and :meth:`info` reports it; ``raw_max`` is reported as
@@ -191,11 +296,14 @@ class FrameSink:
             As for :meth:`add`.
         """
         size = self.cfg.size
-        if small.shape[:2] != (size, size):
-            raise ValueError(f"{where}: expected a {size}x{size} frame, got shape {small.shape}")
         if self.fmt is None:
             self.fmt, self.first, self.raw_max = source, name, None
             self.roi = check_roi(self.cfg.roi, source.width, source.height, where)
+        region = self.roi or (0, 0, source.width, source.height)
+        geo = square_geometry(region[2], region[3], size)
+        if small.shape[:2] != (geo.content_h, geo.content_w):
+            raise ValueError(f"{where}: expected a {geo.content_w}x{geo.content_h} frame, got shape "
+                             f"{small.shape}")
         unit = to_unit(small, sample_format(small, where), where)
         self.frames.append(to_model(unit, None, size, self.cfg.color))
         self.names.append(name)

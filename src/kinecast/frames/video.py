@@ -5,12 +5,15 @@ one at a time); OpenCV's ``VideoCapture`` is the fallback when ffmpeg cannot rea
 frame rate comes from the container.
 
 ffmpeg also does the preprocessing itself, in C: it crops ``data.roi``, converts to grey or RGB and
-area-averages down to ``data.size`` (a video filter), and writes 16-bit samples so the averages are
-not rounded to 1/255. Those frames cross the pipe at model size, and Python only normalises them.
+area-averages down to the picture's size in model pixels (a video filter; the long side becomes
+``data.size``, the short side keeps the aspect ratio), and writes 16-bit samples so the averages are
+not rounded to 1/255. Those frames cross the pipe at model size, and Python only normalises them
+and pads them to the square with their edge pixels repeated, as :mod:`.preprocess` does.
 Beside that shrinking ffmpeg, started at the same time, a plain one reports the frame size as the
 frame-by-frame decode sees it (after any rotation the container asks for). ``data.roi`` is checked
 against that size; when it does not fit, or the region is smaller than the model size (an
-enlargement), the frames come from the plain one and go through :class:`FrameSink` as for any other
+enlargement), or ffmpeg's picture is not the size :func:`.preprocess.square_geometry` gives,
+the frames come from the plain one and go through :class:`FrameSink` as for any other
 source, which also reports a bad region at the first frame with the usual message.
 """
 
@@ -31,7 +34,7 @@ import numpy as np
 from ..config import DataConfig
 from ..errors import KinecastError
 from .boundary import one_line, quiet_opencv
-from .preprocess import FrameSink, SampleFormat, check_roi, roi_numbers
+from .preprocess import FrameSink, SampleFormat, check_roi, roi_numbers, square_geometry
 
 VIDEO_SUFFIXES = (".mp4", ".avi", ".mov", ".mkv")
 # OpenCV reads this variable for the log level of its bundled ffmpeg; -8 is ffmpeg's AV_LOG_QUIET.
@@ -97,20 +100,34 @@ def _arrays(gen: Iterator[bytes], shape: tuple[int, ...], dtype: np.dtype) -> It
         gen.close()
 
 
+def _side_expr(side: str, other: str, size: int) -> str:
+    """ffmpeg expression for the output length of input side ``side`` (``iw`` or ``ih``): ``size``
+    when it is the long side (or the picture is square), else :func:`.preprocess.short_side`
+    written with ffmpeg's ``floor``."""
+    return f"'if(gte({side},{other}),{size},max(1,floor((2*{side}*{size}+{other})/(2*{other}))))'"
+
+
 def shrink_filter(roi: tuple[int, int, int, int] | None, size: int, color: str) -> str:
-    """The ffmpeg video filter that crops ``roi`` (x, y, w, h) and area-averages to size x size.
+    """The ffmpeg video filter that crops ``roi`` (x, y, w, h) and area-averages the picture to its
+    size in model pixels (:func:`.preprocess.square_geometry`: the long side ``size``).
 
-    ``exact=1`` crops at odd offsets too, instead of rounding to the chroma grid. For ``rgb`` the
-    crop is made on full-resolution RGB (rgb24, as the frame-by-frame decode): chroma stored at half
-    resolution cannot be cut at an odd offset. Grey is luma, which is stored at full resolution.
+    The sizes are ffmpeg expressions of the cropped frame's sides, so the filter is known before
+    the frame size is. ``exact=1`` crops at odd offsets too, instead of rounding to the chroma grid.
+    For ``rgb`` the crop is made on full-resolution RGB (rgb24, as the frame-by-frame decode):
+    chroma stored at half resolution cannot be cut at an odd offset. Grey is luma, which is stored
+    at full resolution.
 
-    >>> shrink_filter((7, 4, 40, 32), 16, "rgb")
-    'format=rgb24,crop=40:32:7:4:exact=1,scale=16:16:flags=area+full_chroma_int+full_chroma_inp'
+    >>> crop, scale = shrink_filter((7, 4, 40, 32), 16, "rgb").split(",scale=")
+    >>> crop
+    'format=rgb24,crop=40:32:7:4:exact=1'
+    >>> scale.split(":")[0]         # the width: 16 when the picture is at least as wide as high
+    "w='if(gte(iw,ih),16,max(1,floor((2*iw*16+ih)/(2*ih))))'"
     """
     crop = ""
     if roi:
         crop = ("format=rgb24," if color == "rgb" else "") + "crop={2}:{3}:{0}:{1}:exact=1,".format(*roi)
-    return f"{crop}scale={size}:{size}:flags={SHRINK_FLAGS}"
+    return (f"{crop}scale=w={_side_expr('iw', 'ih', size)}:h={_side_expr('ih', 'iw', size)}"
+            f":flags={SHRINK_FLAGS}")
 
 
 def _start_shrinking(pool: ThreadPoolExecutor, path: Path, cfg: DataConfig | None) -> Future | None:
@@ -145,22 +162,26 @@ def _close(started: Started | None) -> None:
 def _usable(started: Started, cfg: DataConfig, width: int, height: int) -> bool:
     """Whether the shrunk frames may stand for decoded frames of ``width`` x ``height``.
 
-    ``data.roi`` must fit those, and the region must be at least ``data.size`` both ways: OpenCV's
-    area resize turns bilinear for an enlargement, so that is left to it.
+    ``data.roi`` must fit those; the picture must shrink (or keep its size) both ways on its way to
+    model pixels: OpenCV's area resize turns bilinear for an enlargement, so that is left to it; and
+    ffmpeg's frames must be the picture's size in model pixels.
     """
     try:
         region = check_roi(cfg.roi, width, height, "") or (0, 0, width, height)
     except (KinecastError, ValueError, OverflowError):
         return False
-    return min(region[2], region[3]) >= cfg.size and tuple(started[0]["size"]) == (cfg.size, cfg.size)
+    geo = square_geometry(region[2], region[3], cfg.size)
+    shrinks = geo.content_w <= region[2] and geo.content_h <= region[3]
+    return shrinks and tuple(started[0]["size"]) == (geo.content_w, geo.content_h)
 
 
 def open_ffmpeg(path: Path, cfg: DataConfig | None = None) -> Opened:
     """Start ffmpeg on ``path``; return its facts and an iterator of frames.
 
     Without ``cfg``: (H, W, 3) uint8 RGB frames at the source size. With ``cfg``, when the region
-    fits and shrinks: frames already cropped, converted and area-averaged by ffmpeg to (size, size)
-    grey or (size, size, 3) RGB uint16, and ``facts["shrunk_from"]`` describes the decoded frame
+    fits and shrinks: frames already cropped, converted and area-averaged by ffmpeg to the picture's
+    size in model pixels, (h, w) grey or (h, w, 3) RGB uint16 (``size`` square for a square
+    picture; :meth:`FrameSink.add_shrunk` pads them), and ``facts["shrunk_from"]`` describes the decoded frame
     they came from, for :meth:`FrameSink.add_shrunk`.
     """
     with _quiet_imageio_ffmpeg(), ThreadPoolExecutor(max_workers=1) as pool:
@@ -181,9 +202,9 @@ def open_ffmpeg(path: Path, cfg: DataConfig | None = None) -> Opened:
         _close(shrunk)
         return facts, _arrays(gen, (height, width, 3), np.dtype(np.uint8))
     threading.Thread(target=gen.close).start()      # the plain ffmpeg stops while frames arrive
-    size, channels = cfg.size, SHRINK_PIX_FMT[cfg.color][1]
+    (w, h), channels = shrunk[0]["size"], SHRINK_PIX_FMT[cfg.color][1]
     facts["shrunk_from"] = SampleFormat(width, height, _DECODED_CHANNELS, _DECODED_DTYPE, _DECODED_BITS)
-    return facts, _arrays(shrunk[1], (size, size) if channels == 1 else (size, size, channels), _LE16)
+    return facts, _arrays(shrunk[1], (h, w) if channels == 1 else (h, w, channels), _LE16)
 
 
 def open_opencv(path: Path, cfg: DataConfig | None = None) -> Opened:

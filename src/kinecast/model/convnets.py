@@ -80,8 +80,8 @@ class GaussEncoder(nn.Module):
         return mean, bounded_logvar(logvar)
 
 
-def bounded_logvar(x: torch.Tensor) -> torch.Tensor:
-    """``x`` clamped to [LOGVAR_MIN, LOGVAR_MAX] in value, with the gradient of ``x`` itself.
+def bounded_logvar(x: torch.Tensor, hi: float = LOGVAR_MAX) -> torch.Tensor:
+    """``x`` clamped to [LOGVAR_MIN, hi] in value, with the gradient of ``x`` itself.
 
     A plain clamp has zero gradient outside the range: a log-variance pushed past the top once
     (one large step) stayed there for good, its samples 20× too wide, and the rollouts that
@@ -89,7 +89,7 @@ def bounded_logvar(x: torch.Tensor) -> torch.Tensor:
     the loss can bring it back (the straight-through estimator, Bengio, Léonard and Courville 2013,
     arXiv:1308.3432).
     """
-    return x + (x.clamp(LOGVAR_MIN, LOGVAR_MAX) - x).detach()
+    return x + (x.clamp(LOGVAR_MIN, hi) - x).detach()
 
 
 def _decoder_channels(base: int, stages: int) -> list[int]:

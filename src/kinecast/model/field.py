@@ -95,6 +95,9 @@ class DynamicsField(nn.Module):
                 self.w_logstd.append(nn.Parameter(torch.full((n_in, n_out), float(init_logstd))))
                 self.b_logstd.append(nn.Parameter(torch.full((n_out,), float(init_logstd))))
         self._weights: list[tuple[torch.Tensor, torch.Tensor]] | None = None
+        # 1 for a position coordinate the field moves, 0 for one held still (second order: its
+        # acceleration is zero; the model also zeroes its initial velocity). See hold_still.
+        self.register_buffer("moving", torch.ones(q))
 
     def draw(self, n: int, mean: bool = False, generator: torch.Generator | None = None) -> None:
         """Choose the weights used by the next solves.
@@ -157,7 +160,7 @@ class DynamicsField(nn.Module):
         """dy/dt at state ``y`` (n, 2q); autonomous, so ``t`` is unused."""
         out = self.mlp(y)
         if self.second_order:
-            return torch.cat([y[:, self.q:], out], dim=1)
+            return torch.cat([y[:, self.q:], out * self.moving], dim=1)
         return out
 
     def kl(self) -> torch.Tensor:

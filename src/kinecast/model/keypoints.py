@@ -30,14 +30,30 @@ Examples
 
 from __future__ import annotations
 
+import math
+
 import torch
 import torch.nn.functional as F
 from torch import nn
 
-from .convnets import INIT_LOGVAR, OUT_GAIN, Activation, bounded_logvar
+from .convnets import OUT_GAIN, Activation, bounded_logvar
 
 DILATIONS = (1, 2, 4)  # dilations of the decoder's 3×3 convs: receptive field ≈ 2·(1+2·Σd) px at full size
 UPSCALE = 2  # both nets work at 1/UPSCALE of the frame size (pixel shuffle back up in the decoder)
+# Starting posterior std of a keypoint coordinate (image units, the frame spans [-1, 1]): 0.5 px at
+# 64 px, a quarter of the decoder's default blob width (model.blob_std = 0.06). The positions stage
+# is deterministic until its escape test, so the log-variance gets no gradient before it and this is
+# the noise of the first sampled steps. The encoders' shared start (convnets.INIT_LOGVAR, std 0.135
+# = 4.3 px at 64 px) displaced the keypoints by more than a small object's size there, and one run
+# (spring rig, gradient look, seed 1) fell back from 0.3x to 0.99x the background's error within
+# 15 steps of its escape and never found the object again (bench/results/recipe_runs.jsonl).
+INIT_STD = 0.015
+# Largest posterior std of a keypoint coordinate, as a multiple of the decoder's blob std: a
+# keypoint's position is known at least to the width of the blob drawn there. Unbounded (up to
+# convnets.LOGVAR_MAX, std 20 image widths) one coordinate's log-variance rose to that clamp in the
+# positions stage (KL ≈ 200 nats a frame), its samples flew all over the frame and the encoder lost
+# the object (pendulum rig, dark-on-light look, seed 1; bench/results/recipe_runs.jsonl).
+MAX_STD_BLOBS = 1.0
 
 __all__ = ["KeypointEncoder", "KeypointDecoder", "pixel_grid", "spatial_softmax", "draw_blobs"]
 
@@ -85,8 +101,10 @@ class KeypointEncoder(nn.Module):
     The output interleaves coordinates as ``[x1, y1, x2, y2, ...]``.
     """
 
-    def __init__(self, channels: int, size: int, base: int, keypoints: int):
+    def __init__(self, channels: int, size: int, base: int, keypoints: int, init_std: float = INIT_STD,
+                 max_std: float = 1.0):
         super().__init__()
+        self.logvar_max = 2.0 * math.log(max_std)
         c = max(8, base // 2)
         self.size, self.half, self.k = size, _half(size), keypoints
         self.trunk = nn.Sequential(
@@ -95,15 +113,22 @@ class KeypointEncoder(nn.Module):
             nn.Conv2d(c, c, 3, padding=2, dilation=2), Activation())
         self.heat = nn.Conv2d(c, keypoints, 1)
         self.logvar = nn.Linear(c, 2 * keypoints)
+        self.init_std = float(init_std)
+        self.reset_spread()
+
+    def reset_spread(self) -> list[nn.Parameter]:
+        """Every keypoint's posterior std back to ``init_std`` whatever the frame; returns the
+        parameters changed."""
         with torch.no_grad():
             self.logvar.weight.zero_()
-            self.logvar.bias.fill_(INIT_LOGVAR)
+            self.logvar.bias.fill_(2.0 * math.log(self.init_std))
+        return [self.logvar.weight, self.logvar.bias]
 
     def forward(self, x: torch.Tensor, background: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
         h = self.trunk(torch.cat([x, x - background.to(x)], dim=1))
         points = spatial_softmax(self.heat(h))
         logvar = self.logvar(h.mean(dim=(2, 3)))
-        return points.flatten(1), bounded_logvar(logvar)
+        return points.flatten(1), bounded_logvar(logvar, self.logvar_max)
 
 
 class KeypointDecoder(nn.Module):

@@ -24,7 +24,7 @@ from torch import nn
 
 from .convnets import Decoder, GaussEncoder
 from .field import DynamicsField
-from .keypoints import KeypointDecoder, KeypointEncoder
+from .keypoints import MAX_STD_BLOBS, KeypointDecoder, KeypointEncoder
 from .gauss import bernoulli_nll, gaussian_nll, kl_std_normal
 from .solver import solve
 
@@ -76,7 +76,8 @@ class LatentODE(nn.Module):
         self.k = k = int(model_cfg.velocity_frames)
         self.channels, self.size = int(channels), int(size)
         if self.keypoints:
-            self.pos_enc = KeypointEncoder(channels, size, model_cfg.enc_channels, model_cfg.keypoints)
+            self.pos_enc = KeypointEncoder(channels, size, model_cfg.enc_channels, model_cfg.keypoints,
+                                           max_std=MAX_STD_BLOBS * model_cfg.blob_std)
             self.decoder = KeypointDecoder(model_cfg.keypoints, channels, size, model_cfg.dec_channels,
                                            model_cfg.blob_std)
         else:
@@ -184,7 +185,11 @@ class LatentODE(nn.Module):
 
     # ---------------------------------------------------------------------------- dynamics
     def integrate(self, state0: torch.Tensor, t: torch.Tensor) -> torch.Tensor:
-        """Solve from ``state0`` [n, 2q] at t[0] with the weights last drawn; returns [N, n, 2q]."""
+        """Solve from ``state0`` [n, 2q] at t[0] with the weights last drawn; returns [N, n, 2q].
+
+        Coordinates the field holds still (``field.moving`` = 0) start with zero velocity."""
+        if self.field.second_order:
+            state0 = torch.cat([state0[:, :self.q], state0[:, self.q:] * self.field.moving], dim=1)
         return solve(self.field, state0, t, self.solver_cfg)
 
     def integrate_any(self, state0: torch.Tensor, t: torch.Tensor) -> torch.Tensor:

@@ -148,7 +148,7 @@ def constant_velocity(context, n: int, times=None, background=None,
         return persistence(ctx, n)
     step = track[1] - track[0]
     last = ctx[-1]
-    fg = foreground(last[None], bg)[0]
+    fg = foreground(last[None], bg, blur=0.0)[0]  # cut the object out pixel for pixel
     mask = foreground_mask(fg[None], threshold)[0].astype(np.float32)
     residual = (last - bg) * mask
     base = last - residual

@@ -22,11 +22,14 @@ METRICS = ("mse", "mae", "psnr", "ssim", "object_ssim", "position_error_px", "ma
 
 
 def configure(parser) -> None:
+    from ..forecast.cli import add_seed_option
+
     parser.add_argument("run", nargs="?", metavar="RUN", help="run folder written by `kinecast fit`")
     parser.add_argument("path", nargs="?", metavar="PATH", help="recording (or folder of trials) to score on")
     parser.add_argument("--holdout", metavar="last:N|trial:NAME", help="held-out frames (score.holdout)")
     parser.add_argument("--context", type=int, metavar="K", help="conditioning frames (score.context)")
     parser.add_argument("--samples", type=int, metavar="K", help="futures to draw for calibration")
+    add_seed_option(parser)
     parser.add_argument("--compare", action="append", default=[], metavar="RUN2",
                         help="another run scored on the same frames (e.g. the first-order variant)")
     parser.add_argument("--pred", metavar="A", help="score these frames (any frame source) ...")
@@ -70,8 +73,10 @@ def write_scores(out: Path, result: dict, cfg, extra: dict) -> None:
                                               for c in result["coverage"]]
     write_text(out / "summary.json", json.dumps(_finite(summary), indent=2) + "\n")
     shown = {method: {m: per[m] for m in METRICS} for method, per in result["per_frame"].items()}
+    if "coverage" in result:  # samples were drawn: how often the truth falls inside their band
+        shown["model"]["band_coverage"] = np.asarray(result["coverage"], dtype=np.float64)
     metric_curves(shown, times, out / "metrics.png", threshold=cfg.score.ssim_threshold, overwrite=True,
-                  origin=result.get("origin"))
+                  origin=result.get("origin"), band=cfg.score.band if "coverage" in result else None)
 
 
 def table(result: dict) -> str:
@@ -133,21 +138,23 @@ def _run_pair(args, cfg, out: Path) -> int:
 
 def _run_model(args, cfg, out: Path) -> int:
     from .. import config as cfgmod
-    from ..forecast.cli import at_least_one, open_run
+    from ..forecast.cli import at_least_one, open_run, with_seed
     from ..forecast.render import comparison_columns, contact_sheet, panel_frames, write_frames
     from ..train.checkpoint import load_run
     from .evaluate import evaluate, holdout_split
+    from .report import RUN_DIGEST, weights_sha256
     from .verdict import verdict
 
     sets = [f'score.holdout="{args.holdout}"'] if args.holdout else []
     sets += [f"score.context={args.context}"] if args.context is not None else []
-    cfg = cfgmod.apply_overrides(cfg, sets)
+    cfg = with_seed(args, cfgmod.apply_overrides(cfg, sets))
     holdout = cfg.score.holdout
     samples = at_least_one("--samples", args.samples, cfg.forecast.samples)
     _prepare_out(out, args.overwrite, [args.path, args.run])
     if holdout.startswith("trial:"):
         args.path = str(Path(args.path) / holdout.split(":", 1)[1])
     model, run_cfg, rec, device = open_run(args, cfg)
+    digest = weights_sha256(args.run)  # names the weights scored; `kinecast report` checks it
     if holdout.startswith("trial:"):
         cond_start, first = 0, run_cfg.score.context
         if rec.n_frames <= first:
@@ -161,9 +168,10 @@ def _run_model(args, cfg, out: Path) -> int:
         others[Path(other).name or other] = (m2, c2)
     result = evaluate(model, run_cfg, rec, cond_start, first, n, samples, others, device)
     result["verdict"] = verdict({"all": result["summary"]})
-    write_scores(out, result, run_cfg, {"run": str(args.run), "recording": str(args.path),
-                                        "holdout": holdout, "context_frames": first - cond_start,
-                                        "samples": samples})
+    write_scores(out, result, run_cfg, {"run": str(Path(args.run).resolve()), RUN_DIGEST: digest,
+                                        "recording": str(args.path), "holdout": holdout,
+                                        "context_frames": first - cond_start, "samples": samples,
+                                        **({"seed": run_cfg.forecast.seed} if samples > 1 else {})})
     spread = result["samples"].std(axis=0) if samples > 1 else None
     truth = np.where(result["present"][:, None, None, None], result["truth"], 0.0)
     panels = panel_frames(comparison_columns(result["forecast"], truth, spread), result["times"],

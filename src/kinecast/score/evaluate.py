@@ -126,7 +126,8 @@ def evaluate(model, cfg: Config, rec: Recording, cond_start: int, first: int, n:
     held-out frames. Returns a dict with ``times``, ``origin`` (time of the last context frame),
     ``per_frame`` {method: {metric: (N,)}}, ``summary`` {method: {...}}, ``periods``, ``coverage``
     (per frame, with samples > 1) and the model's ``forecast`` (mean frames), ``truth`` and
-    ``present`` arrays.
+    ``present`` arrays. Every model's futures are drawn with ``cfg.forecast.seed``, so the same
+    call gives the same scores.
     """
     from ..forecast.core import predict_from
 
@@ -143,7 +144,8 @@ def evaluate(model, cfg: Config, rec: Recording, cond_start: int, first: int, n:
     preds, extra = {}, {}
     models = {"model": (model, cfg), **(others or {})}
     for name, (m, c) in models.items():
-        fc = predict_from(m, c, rec, first - c.model.velocity_frames, times, samples, device)
+        fc = predict_from(m, c, rec, first - c.model.velocity_frames, times, samples, device,
+                          seed=cfg.forecast.seed)
         preds[name] = fc.mean
         extra[name] = fc
     ctx_times = np.concatenate([rec.times[cond_start:first], times])

@@ -168,7 +168,8 @@ def object_region(pred, truth, background, level: float = OBJECT_REGION_LEVEL) -
     bool ndarray (T, H, W)
     """
     p, t = _pair(pred, truth)
-    return (foreground(p, background) > level) | (foreground(t, background) > level)
+    # unfiltered: ``level`` is an absolute difference per pixel
+    return (foreground(p, background, blur=0.0) > level) | (foreground(t, background, blur=0.0) > level)
 
 
 def frame_metrics(pred, truth, background=None, threshold: float = FOREGROUND_FRACTION,

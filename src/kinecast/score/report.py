@@ -12,6 +12,7 @@ under "Technical details".
 from __future__ import annotations
 
 import base64
+import hashlib
 import html
 import json
 from pathlib import Path
@@ -52,6 +53,7 @@ TRAINING_FACTS = {
     "dynamics_window": ("longest window of the dynamics stage", "frames"),
     "positions_found": ("object positions found in the positions stage", ""),
     "positions_restarts": ("restarts of the positions stage", "restarts"),
+    "positions_relapses": ("times the positions stage lost the object again", "times"),
     "faults": ("numerical faults recovered from", "faults"),
     "untrained": ("note", ""),
 }
@@ -71,7 +73,7 @@ SCORE_COLUMNS = (
 SCORE_FACTS = {
     "recording": "recording", "run": "run", "pred": "frames scored", "truth": "compared with",
     "holdout": "held-out frames", "context_frames": "frames the forecast was given",
-    "samples": "sampled futures", "frames_scored": "frames scored",
+    "samples": "sampled futures", "seed": "seed of the sampled futures", "frames_scored": "frames scored",
     "ssim_threshold": "the valid horizon ends where the objects' SSIM falls below",
     "position_threshold_px": "the object horizon ends where the position error exceeds",
     "band": "calibration band (central share of the sampled futures)",
@@ -79,6 +81,37 @@ SCORE_FACTS = {
 SCORES_HIDDEN = ("caution", "verdict", "methods", "periods", "band_coverage_per_frame")
 PERIOD_NAMES = {"truth_track_s": "the recording's objects", "model_track_s": "the model's forecast objects",
                 "model_latent_s": "the model's latent state"}
+
+
+# summary.json key of a scores folder: SHA-256 (FIPS 180-4) of the scored run's weights file
+RUN_DIGEST = "run_weights_sha256"
+DIGEST_CHUNK = 1 << 20  # bytes read at a time while hashing
+
+
+def weights_sha256(run: str | Path) -> str:
+    """Hex SHA-256 of ``RUN/weights.safetensors``: names the weights a scores folder was made with."""
+    digest = hashlib.sha256()
+    with open(Path(run) / ck.WEIGHTS, "rb") as fh:
+        for chunk in iter(lambda: fh.read(DIGEST_CHUNK), b""):
+            digest.update(chunk)
+    return digest.hexdigest()
+
+
+def check_scores_run(folder: Path, summary: dict, run: Path, digest: str) -> None:
+    """Refuse a scores folder made from another run's weights (its digest is not ``digest``).
+
+    Scores of two frame sources (``--pred``/``--truth``) name no run and belong to any report.
+    """
+    if "run" not in summary and RUN_DIGEST not in summary:
+        return
+    theirs = summary.get(RUN_DIGEST)
+    if not isinstance(theirs, str):
+        raise KinecastError(folder, f"the scores of run {summary.get('run')} name no weights digest, so "
+                                    f"they cannot be matched to {run}; score {run} again")
+    if theirs != digest:
+        raise KinecastError(folder, f"scores of run {summary.get('run')} (weights SHA-256 {theirs[:12]}…), "
+                                    f"not of {run} (weights SHA-256 {digest[:12]}…); give scores made "
+                                    f"from {run}")
 
 
 def configure(parser) -> None:
@@ -167,8 +200,9 @@ def _scores_title(summary: dict) -> str:
     return "Forecast scores"
 
 
-def _scores_section(folder: Path) -> tuple[str, str]:
-    """The section for one scores folder, and its technical details (raw keys)."""
+def _scores_section(folder: Path, run: Path, digest: str) -> tuple[str, str]:
+    """The section for one scores folder of ``run`` (weights ``digest``), and its technical details
+    (raw keys)."""
     summary_path = folder / "summary.json"
     if not summary_path.is_file():
         raise KinecastError(folder, "not a scores folder (no summary.json)")
@@ -177,6 +211,7 @@ def _scores_section(folder: Path) -> tuple[str, str]:
         methods = summary["methods"]
     except (ValueError, KeyError) as exc:
         raise KinecastError(summary_path, f"not a kinecast scores summary ({exc})") from None
+    check_scores_run(folder, summary, run, digest)
     band = summary.get("band")
     head = ["method"] + [h for _, h, _ in SCORE_COLUMNS] + [
         "valid horizon (objects' SSIM above the threshold)", "object horizon (position error within the threshold)",
@@ -240,8 +275,9 @@ def build_report(run: str | Path, scores: list = (), clips: list = ()) -> str:
         _media(run / ck.BACKGROUND, "static background the decoder adds to (per-pixel median)"),
     ]
     technical = [technical]
+    digest = weights_sha256(run) if scores else ""
     for folder in scores:
-        section, details = _scores_section(Path(folder))
+        section, details = _scores_section(Path(folder), run, digest)
         parts.append(section)
         technical.append(details)
     for clip in map(Path, clips):

@@ -25,6 +25,17 @@ from ..errors import KinecastError
 # difference, plus a one-pixel ring around them (so faint anti-aliased edges still weigh in); the rest
 # count as noise.
 FOREGROUND_FRACTION = 0.25
+# Both frames of a comparison are seen through the same Gaussian low-pass of this standard deviation
+# (pixels of the frames given) before the foreground is thresholded: the tracker follows the bulk of
+# a moving object, and structure thinner than about two pixels (a wire, a thread, a spring's coil) is
+# below its resolution. A forecast drawn at model resolution renders such detail smooth; unfiltered,
+# it passes the threshold in the true frame and not in the drawn one and moves the tracked centroid
+# by 2-3 px while the object sits in the right place (the spring rig's reconstructions, textured
+# look: 3.0 px unfiltered, 1.1 / 0.6 / 0.5 px at 0.7 / 1.0 / 1.5 px; DEVELOPERS.md). A symmetric
+# low-pass does not move the centroid of a symmetric object. 1.5 px is our choice: the smallest
+# value at which the coil test in tests/test_score_tracks.py stops flipping between decoder blurs of
+# 0.6-1.2 px.
+TRACK_BLUR_PX = 1.5
 # A frame whose largest background difference (summed over channels) is below two grey levels of an
 # 8-bit source (1/255 per level) holds no object: its centroid is NaN.
 MIN_CONTRAST = 2.0 / 255.0
@@ -70,20 +81,26 @@ def median_background(frames) -> np.ndarray:
     return np.median(_as_frames(frames), axis=0).astype(np.float32)
 
 
-def foreground(frames, background=None) -> np.ndarray:
-    """Absolute difference from the background summed over channels, shape (T, H, W).
+def foreground(frames, background=None, blur: float = TRACK_BLUR_PX) -> np.ndarray:
+    """Absolute difference from the background, low-passed, summed over channels, shape (T, H, W).
 
     Parameters
     ----------
     frames : array (T, C, H, W)
     background : array (C, H, W) or None
         The static background; None uses :func:`median_background` of ``frames``.
+    blur : float
+        Standard deviation in pixels of the Gaussian low-pass (``scipy.ndimage.gaussian_filter``,
+        edges repeated) applied to the signed difference of each channel; 0 turns it off.
     """
     arr = _as_frames(frames)
     bg = median_background(arr) if background is None else np.asarray(background, np.float32)
     if bg.shape != arr.shape[1:]:
         raise KinecastError("background", f"shape {bg.shape} does not match frames {arr.shape[1:]}")
-    return np.abs(arr - bg[None]).sum(axis=1)
+    diff = arr - bg[None]
+    if blur > 0:
+        diff = ndimage.gaussian_filter(diff, (0, 0, blur, blur), mode="nearest")
+    return np.abs(diff).sum(axis=1)
 
 
 def foreground_mask(fg: np.ndarray, threshold: float = FOREGROUND_FRACTION) -> np.ndarray:

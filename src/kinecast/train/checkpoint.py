@@ -9,6 +9,7 @@ Nothing is ever unpickled. A run folder holds::
     background.png       the static background the decoder adds to
     loss.png             the training curves
     summary.json         what happened, for people and for reports
+    fit.lock             only while a fit writes the folder: who is writing it (see train/lock.py)
 
 Each file is written under a temporary name and renamed, so a kill leaves the previous version.
 """
@@ -28,6 +29,7 @@ from safetensors.torch import save_file
 from .. import config as cfgmod
 from ..errors import KinecastError
 from ..fileio import write_text, write_with
+from .lock import LOCK_FILE as LOCK
 
 CONFIG = "config.toml"
 WEIGHTS = "weights.safetensors"
@@ -38,7 +40,7 @@ BACKGROUND = "background.png"
 LOSS_PLOT = "loss.png"
 _META_KEY = "kinecast"
 _SUM_KEY = "kinecast_sha256"
-RUN_FILES = (CONFIG, WEIGHTS, RESUME, LOG, SUMMARY, BACKGROUND, LOSS_PLOT)
+RUN_FILES = (CONFIG, WEIGHTS, RESUME, LOG, SUMMARY, BACKGROUND, LOSS_PLOT, LOCK)
 PAUSE_ENV = "KINECAST_TEST_CHECKPOINT_PAUSE"  # test hook, see _test_pause
 # Version of the networks' layout, written with every checkpoint. Bump it when a change makes old
 # weights compute something else although their tensor names and shapes still match.
@@ -186,6 +188,9 @@ def restore_model(model: torch.nn.Module, tensors: dict[str, torch.Tensor], meta
     layout (``meta["layout"]``, see :data:`MODEL_LAYOUT`) is one clear line naming ``path``."""
     if "background" in tensors:
         model.set_background(tensors["background"])
+    if "field.moving" not in tensors and "field.moving" in model.state_dict():
+        # written before still keypoints were held (same layout otherwise): every coordinate moves
+        tensors = {**tensors, "field.moving": torch.ones_like(model.state_dict()["field.moving"])}
     problem = weights_mismatch(tensors, model.state_dict())
     try:
         if problem is None:

@@ -17,11 +17,8 @@ import torch
 from ..config import Config
 from ..errors import KinecastError
 from ..frames import Recording, read_recording
-from ..frames.images import IMAGE_SUFFIXES, natural_key
+from ..frames.images import expand_trials
 from ..score import tracks
-
-def _natural_key(path: Path):
-    return natural_key(path.name)
 
 
 def expand_paths(paths: list[str | Path]) -> list[Path]:
@@ -30,15 +27,7 @@ def expand_paths(paths: list[str | Path]) -> list[Path]:
     A folder that holds no image files itself but has sub-folders that do stands for those
     sub-folders, in natural order.
     """
-    out: list[Path] = []
-    for p in map(Path, paths):
-        if p.is_dir() and not any(f.suffix.lower() in IMAGE_SUFFIXES for f in p.iterdir() if f.is_file()):
-            subs = sorted((d for d in p.iterdir() if d.is_dir()
-                           and any(f.suffix.lower() in IMAGE_SUFFIXES for f in d.iterdir())), key=_natural_key)
-            if subs:
-                out.extend(subs)
-                continue
-        out.append(p)
+    out = [trial for p in paths for trial in expand_trials(p)]
     if not out:
         raise KinecastError("fit", "no recordings given")
     return out
@@ -50,7 +39,8 @@ def load_recordings(paths: list[str | Path], cfg: Config) -> list[Recording]:
     sizes = {tuple(r.info.get("source_size", ())) for r in recs}
     if len(sizes) > 1:
         print(f"kinecast: warning: source frame sizes differ ({', '.join(map(str, sorted(sizes)))}); "
-              f"all were resized to {cfg.data.size}×{cfg.data.size}", file=sys.stderr)
+              f"all were brought to {cfg.data.size}×{cfg.data.size} model frames (non-square ones padded "
+              "to square first)", file=sys.stderr)
     return recs
 
 

@@ -26,6 +26,8 @@ from . import checkpoint as ck
 from . import stages as S
 from . import distributed as D
 from .progress import Progress, duration, untrained_reason
+from .lock import RunLock
+from ..score.verdict import FLOOR_MARGIN
 from .data import WindowSampler, expand_paths, load_recordings, median_background, split_train_val
 from .schedule import Curriculum, kl_weight, learning_rate, progress
 
@@ -37,17 +39,17 @@ class TrainingStopped(KinecastError):
     """Training could not continue (repeated numerical faults)."""
 
 
-def _prepare_folder(run: Path, paths: list[Path], resume: bool, overwrite: bool) -> None:
+def _prepare_folder(run: Path, paths: list[Path], resume: bool, overwrite: bool, run_lock: RunLock) -> None:
     for p in paths:
         src = p.resolve()
         if run.resolve() == src or src in run.resolve().parents:
             raise KinecastError(run, f"output folder is inside the input {p}; choose a folder elsewhere")
+    run_lock.refuse_if_held()  # another fit writing it: say so, whatever the folder holds
     if resume:
         ck.check_run_folder(run, need_resume=True)
-        ck.remove_stale_temporaries(run)  # left by a kill mid-checkpoint
     elif run.exists() and not run.is_dir():
         raise KinecastError(run, "exists and is not a folder (a run is a folder)")
-    elif run.exists() and any(run.iterdir()) and not overwrite:
+    elif run.exists() and any(f.name != ck.LOCK for f in run.iterdir()) and not overwrite:
         raise KinecastError(run, "already exists (pass --resume to continue it or --overwrite to replace it)")
     check_can_create(run)
 
@@ -148,6 +150,13 @@ def fit(paths, out, cfg: cfgmod.Config | None = None, *, resume: bool = False, o
     dict
         The summary also written to ``summary.json``.
     """
+    with RunLock(out, defer=True) as run_lock:  # taken once the folder is checked; released however fit ends
+        return _fit(paths, out, cfg, run_lock, resume=resume, overwrite=overwrite, more=more,
+                    fault_hook=fault_hook, show_progress=show_progress)
+
+
+def _fit(paths, out, cfg, run_lock: RunLock, *, resume, overwrite, more, fault_hook, show_progress) -> dict:
+    """:func:`fit`; its main process takes ``run_lock`` before anything is written to the run folder."""
     run = Path(out)
     resumed = None
     if resume:
@@ -160,13 +169,19 @@ def fit(paths, out, cfg: cfgmod.Config | None = None, *, resume: bool = False, o
         _extend_budget(cfg.train, resumed[1])
     paths = expand_paths(paths)
     ctx = D.setup(cfg.train.device)
-    if ctx.main:
-        _prepare_folder(run, paths, resume, overwrite)
+    if ctx.main:  # only the main process writes the run folder, so only it holds the lock
+        _prepare_folder(run, paths, resume, overwrite, run_lock)  # refuses before touching anything
+        run_lock.take()  # atomic: of two fits started at once on this folder, the second stops here
+        _prepare_folder(run, paths, resume, overwrite, run_lock)  # again: no other fit can change it now
+        if resume:
+            ck.remove_stale_temporaries(run)  # left by a kill mid-checkpoint
     torch.set_num_threads(cfg.train.threads or os.cpu_count() or 1)
     torch.manual_seed(cfg.train.seed + ctx.rank)
 
     # --- data -----------------------------------------------------------------------------
     recs = load_recordings(paths, cfg)
+    # each recording's path as given (expanded); a single recording split in two is named by its slices
+    where = {id(r): str(p) for r, p in zip(recs, paths)}
     k = cfg.model.velocity_frames
     if cfg.solver.time_scale == 0:
         median_dt = float(np.median(np.concatenate([np.diff(r.times) for r in recs])))
@@ -273,6 +288,10 @@ def fit(paths, out, cfg: cfgmod.Config | None = None, *, resume: bool = False, o
                             f"({stage_state.restarts} restarts); the motion may not be learned")
             if stage == S.DYNAMICS:
                 targets = S.EncodedTrajectories(model, sampler.frames, ctx.device)
+                still = S.hold_still(model, targets, cfg.train.still_keypoint_px)
+                if still:
+                    report.note(f"kinecast: keypoint(s) {', '.join(map(str, still))} barely move in the "
+                                "training frames and are held still in the forecast")
             if (stage == S.JOINT and cfg.train.recipe == "staged" and step > 0 and ctx.main
                     and not stage_state.joint_checked):
                 stage_state.joint_checked = True  # the after-dynamics weights compete for "best"
@@ -293,19 +312,27 @@ def fit(paths, out, cfg: cfgmod.Config | None = None, *, resume: bool = False, o
         beta = kl_weight(cfg.train, prog)
         for g in opt.param_groups:
             g["lr"] = lr
+        relapsed = False
         if stage == S.POSITIONS:
             window = min(cfg.train.window_start, longest)
             batch = sampler.draw(cfg.train.batch, window)
             frames = batch.frames.flatten(0, 1)[batch.mask.flatten()].to(ctx.device)
-            beta = cfg.train.positions_kl * local if stage_state.escaped else 0.0
-            terms = autoencoder_terms(model, frames, sample=stage_state.escaped, beta=beta,
+            beta = cfg.train.positions_kl * local if stage_state.sampling() else 0.0
+            terms = autoencoder_terms(model, frames, sample=stage_state.sampling(), beta=beta,
                                       repulsion=cfg.train.keypoint_repulsion,
                                       coverage=cfg.train.keypoint_coverage)
             errors = D.mean_over_ranks(ctx, [float(terms["mse"]), float(terms["bg_mse"])])
             if stage_state.observe(*errors, cfg.train.escape_ratio, step):
                 report.note(f"kinecast: step {step}: the position encoder found the moving object "
                             f"(reconstruction error {stage_state.ema_rec:.2g}, bare background "
-                            f"{stage_state.ema_bg:.2g}); sampling from now on")
+                            f"{stage_state.ema_bg:.2g}); "
+                            + ("sampling from now on" if stage_state.sampling() else "staying deterministic"))
+            elif stage_state.lost():
+                relapsed = True  # the spread is reset after this step's update (autograd holds it now)
+                report.note(f"kinecast: step {step}: the position encoder lost the object again "
+                            f"(reconstruction error {stage_state.ema_rec:.2g}, bare background "
+                            f"{stage_state.ema_bg:.2g}); back to deterministic steps"
+                            + ("" if stage_state.relapses < S.MAX_RELAPSES else " for the rest of the stage"))
         elif stage == S.DYNAMICS:
             window = S.grow(min(cfg.train.window_start, dyn_longest), dyn_longest, local)
             batch = sampler.draw(cfg.train.batch, window)
@@ -342,6 +369,8 @@ def fit(paths, out, cfg: cfgmod.Config | None = None, *, resume: bool = False, o
             report.note(f"kinecast: non-finite loss at step {step}: rolled back, learning rate × {lr_scale:g}")
             continue
         opt.step()
+        if relapsed:
+            S.reset_spread(model, opt)
         step += 1
         if step % LOG_EVERY == 0 or step == 1:
             row = {"step": step, "time_s": round(elapsed, 3), "lr": lr, "beta": beta, "window": window,
@@ -354,7 +383,9 @@ def fit(paths, out, cfg: cfgmod.Config | None = None, *, resume: bool = False, o
                 rows.append({"step": step, "time_s": round(elapsed, 3), "val_mse": val, "window": cur.window,
                              "stage": S.NUMBER[stage]})
                 report.update(step, elapsed_before + time.time() - t0, stage, window, val, bg_val, event=True)
-                if cur.done and not cur.best < bg_val:  # never stop a run that draws no better than nothing
+                # never stop a run that does not clearly beat drawing the bare background (the verdict's
+                # floor): one that draws the mean frame scores just under it (0.99x, measured)
+                if cur.done and not cur.best < FLOOR_MARGIN * bg_val:
                     cur.done = False
             good = (copy.deepcopy(model.state_dict()), copy.deepcopy(opt.state_dict()))
         if ctx.main and step % cfg.train.checkpoint_every == 0:
@@ -382,12 +413,15 @@ def fit(paths, out, cfg: cfgmod.Config | None = None, *, resume: bool = False, o
                    "stop_reason": stop_reason, "best_val_mse": cur.best, "val_window": val_window,
                    "final_window": cur.window, "longest_window": longest, "faults": faults,
                    "recordings": [str(p) for p in paths], "train_recordings": len(train_recs),
-                   "val_recordings": len(val_recs), "time_scale": cfg.solver.time_scale,
+                   "val_recordings": len(val_recs), "trained_on": [where.get(id(r), r.source) for r in train_recs],
+                   "validated_on": [where.get(id(r), r.source) for r in val_recs], "time_scale": cfg.solver.time_scale,
                    "world_size": ctx.world, "replica_spread": spread, "device": str(ctx.device),
                    "threads": torch.get_num_threads(), "recipe": cfg.train.recipe,
                    "positions_found": stage_state.escaped if cfg.train.recipe == "staged" else None,
                    "positions_found_step": stage_state.escaped_step,
-                   "positions_restarts": stage_state.restarts, "dynamics_window": dyn_longest,
+                   "positions_restarts": stage_state.restarts, "positions_relapses": stage_state.relapses,
+                   "dynamics_window": dyn_longest,
+                   "still_keypoints": [i for i, m in enumerate(model.field.moving.tolist()[::2]) if m == 0.0],
                    "tracked_period_s": period, "background_val_mse": bg_val, "verdict": judged,
                    "untrained": untrained_reason(cfg.train.recipe, step, stage_state.escaped, cur.best, bg_val),
                    "caution": "Forecasts are statistical extrapolations, not measurements; "

@@ -38,6 +38,14 @@ DYNAMICS_PERIODS = 2  # ... and at least this many periods of the tracked object
 # on the air table) keeps going: a restart threw such progress away there.
 STUCK_RATIO = 0.8
 RESTART_SEED_STRIDE = 1000  # restart r of the positions stage re-initialises with seed + r·stride
+# An encoder that found the object can lose it again once its latent is sampled: measured twice in
+# 24 bench runs (spring gradient seed 1: 0.3x → 0.99x the background's error 15 steps after its
+# escape; pendulum dark-on-light seed 1: the keypoint log-variance rose to its clamp and the error
+# reached 0.97x 700 steps later); both forecasts then drew no object. When the running error climbs
+# back to STUCK_RATIO × the background's, the stage goes back to deterministic steps with the
+# posterior spread reset, and samples again after a new escape; after MAX_RELAPSES it stays
+# deterministic for the rest of the stage.
+MAX_RELAPSES = 2
 
 
 def stage_at(prog: float, tc) -> tuple[str, float]:
@@ -64,6 +72,8 @@ class StageState:
     ema_rec: float = math.nan
     ema_bg: float = math.nan
     joint_checked: bool = False  # the weights were validated on entering the joint stage
+    relapses: int = 0  # times the encoder lost the object again after an escape
+    since_escape: int = 0  # positions steps since the last escape
 
     def observe(self, mse: float, bg_mse: float, ratio: float, step: int) -> bool:
         """Fold one batch's errors in; True when this step passes the escape test."""
@@ -74,6 +84,22 @@ class StageState:
             return False
         self.escaped, self.escaped_step = True, step
         return True
+
+    def lost(self) -> bool:
+        """After :meth:`observe`: True when an escaped encoder has fallen back to near the bare
+        background's error (it lost the object); it is then no longer escaped."""
+        if not self.escaped:
+            return False
+        self.since_escape += 1
+        if self.since_escape < ESCAPE_MIN_STEPS or self.ema_rec < STUCK_RATIO * self.ema_bg:
+            return False
+        self.escaped, self.since_escape = False, 0
+        self.relapses += 1
+        return True
+
+    def sampling(self) -> bool:
+        """Whether the positions stage samples its latent now (escaped, and not given up on it)."""
+        return self.escaped and self.relapses < MAX_RELAPSES
 
     def due_restart(self, local: float, deadline: float) -> bool:
         """True when the encoder has found nothing (error still near the background's) by the
@@ -92,6 +118,14 @@ def set_trainable(model, stage: str) -> None:
         module.requires_grad_(seen[0])
     for module in (model.vel_enc, model.field):
         module.requires_grad_(seen[1])
+
+
+def reset_spread(model, opt) -> None:
+    """Give the position encoder's posterior spread its starting value again (keypoint encoder)."""
+    reset = getattr(model.pos_enc, "reset_spread", None)
+    if reset is not None:
+        for p in reset():
+            opt.state.pop(p, None)
 
 
 def restart_positions(model, opt, cfg, channels: int, seed: int) -> None:
@@ -129,6 +163,29 @@ def grow(start: int, longest: int, local: float, share: float = 0.5) -> int:
     if longest <= start:
         return longest
     return min(longest, int(start * (longest / start) ** min(1.0, local / share)))
+
+
+def hold_still(model, targets: "EncodedTrajectories", still_px: float) -> list[int]:
+    """Hold still, in the field, every keypoint whose encoded position moves less than ``still_px``
+    (rms over all training frames, model pixels); returns their indices.
+
+    A keypoint the positions stage parked on a fixed part of the scene (a spring's clamp, a mark on
+    the floor) carries no motion; left free, the field extrapolates it off its training values once a
+    forecast leaves them, and it feeds back into the moving keypoints (the ball rig: a parked keypoint
+    drifted 20 px off the image in 60 frames). Only for the keypoint encoder; 0 turns it off.
+    """
+    moving = model.field.moving
+    moving.fill_(1.0)
+    if not model.keypoints or still_px <= 0 or not model.field.second_order:
+        return []
+    pos = torch.cat(targets.means).to(moving)  # [frames, q]
+    rms = pos.std(dim=0).view(-1, 2).pow(2).sum(1).sqrt() * model.size / 2.0  # model pixels per keypoint
+    still = [i for i, r in enumerate(rms.tolist()) if r < still_px]
+    if len(still) == len(rms):  # nothing moves: hold nothing (the verdict reports the failure)
+        return []
+    for i in still:
+        moving[2 * i:2 * i + 2] = 0.0
+    return still
 
 
 class EncodedTrajectories:
