@@ -38,12 +38,12 @@ DYNAMICS_PERIODS = 2  # ... and at least this many periods of the tracked object
 # on the air table) keeps going: a restart threw such progress away there.
 STUCK_RATIO = 0.8
 RESTART_SEED_STRIDE = 1000  # restart r of the positions stage re-initialises with seed + r·stride
-# An encoder that found the object can lose it again once its latent is sampled: measured twice in
-# 24 bench runs (spring gradient seed 1: 0.3x → 0.99x the background's error 15 steps after its
-# escape; pendulum dark-on-light seed 1: the keypoint log-variance rose to its clamp and the error
-# reached 0.97x 700 steps later); both forecasts then drew no object. When the running error climbs
-# back to STUCK_RATIO × the background's, the stage goes back to deterministic steps with the
-# posterior spread reset, and samples again after a new escape; after MAX_RELAPSES it stays
+# An encoder that found the object can lose it again once its latent is sampled: measured in two of
+# the twelve seed-1 bench runs of 2026-12-02 (spring gradient: 0.3x → 0.99x the background's error
+# 15 steps after its escape; pendulum dark-on-light: the keypoint log-variance rose to its clamp
+# and the error reached 0.97x 700 steps later); neither run then learned the motion. When the
+# running error climbs back to STUCK_RATIO × the background's, the stage goes back to
+# deterministic steps with the posterior spread reset, and samples again after a new escape; after MAX_RELAPSES it stays
 # deterministic for the rest of the stage.
 MAX_RELAPSES = 2
 
