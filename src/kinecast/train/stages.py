@@ -43,8 +43,8 @@ RESTART_SEED_STRIDE = 1000  # restart r of the positions stage re-initialises wi
 # 15 steps after its escape; pendulum dark-on-light: the keypoint log-variance rose to its clamp
 # and the error reached 0.97x 700 steps later); neither run then learned the motion. When the
 # running error climbs back to STUCK_RATIO × the background's, the stage goes back to
-# deterministic steps with the posterior spread reset, and samples again after a new escape; after MAX_RELAPSES it stays
-# deterministic for the rest of the stage.
+# deterministic steps with the posterior spread reset, and samples again after a new escape;
+# after MAX_RELAPSES it stays deterministic for the rest of the stage.
 MAX_RELAPSES = 2
 
 
