@@ -81,7 +81,6 @@ for name in pick:
         terms = dynamics_terms(model, ctx, tt - tt[0], tm, tv, torch.ones(8, W, dtype=torch.bool), 720, V["beta"], 1.0)
         opt.zero_grad(); terms["loss"].backward(); torch.nn.utils.clip_grad_norm_(params, 1.0); opt.step(); steps += 1
     errs20, errs60 = [], []
-    model.field.draw(1, mean=True)
     with torch.no_grad():
         for fr, t, m, v in data[8:]:
             s0 = m[0:1]; v0 = fd_velocity(m[None, :k], t[:k])

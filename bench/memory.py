@@ -21,7 +21,7 @@ from .rss import report, run_child
 
 def write_recordings(frames: np.ndarray, lengths: tuple[int, ...], folder: Path) -> dict[int, Path]:
     """Write the first ``n`` of ``frames`` (uint8, T × H × W × C) as ``rec_n.mp4`` for each length."""
-    from kinecast.forecast.render import write_frames
+    from kinecast.render import write_frames
 
     out = {}
     for n in lengths:

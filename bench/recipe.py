@@ -44,6 +44,7 @@ from kinecast.fileio import write_text  # noqa: E402
 from kinecast.frames import read_recording  # noqa: E402
 from kinecast.rigs import write_rig  # noqa: E402
 from kinecast.score.evaluate import evaluate  # noqa: E402
+from kinecast.score.verdict import judge_run  # noqa: E402
 from kinecast.train import fit, load_run  # noqa: E402
 from kinecast.train.checkpoint import MODEL_LAYOUT  # noqa: E402
 from kinecast.train.loop import TrainingStopped  # noqa: E402
@@ -51,15 +52,16 @@ from kinecast.train.loop import TrainingStopped  # noqa: E402
 SUCCESS_PX = 2.0          # position error @60 frames (model pixels), from the project's issue
 SUCCESS_PERIOD = 0.03     # relative period error, from the project's issue
 SUCCESS_OBJECT_PX = 3.0   # per-object error @20 frames on a multi-object scene, from the issue
+MULTI_OBJECT = 1.5        # mean object count over the held-out trials from which a scene is multi-object
 # How the object positions were tracked; rows of different trackers are not pooled in the table
-# (rows without this field: no low-pass). Bump with kinecast.score.tracks changes that move scores.
+# (rows without this field: no low-pass). Bump with kinecast.frames.tracks changes that move scores.
 TRACKER = "low-pass 1.5 px"
 # Which defaults a row with no settings ran with; bump with every change of a default that matters
 # to learning (rows from before this field ran with "3": layout 3, no coverage term, v0 corrected;
 # "4": keypoint_coverage 1, v0 = finite difference alone; "5": as 4, and keypoints that barely move
 # held still, train.still_keypoint_px 1; "6": as 5, keypoint posteriors start at 0.5 px, an encoder that
 # loses the object goes back to deterministic steps, early stop only below 0.8x the background)
-DEFAULTS = "7: as 6, and a keypoint posterior std of at most one blob width (keypoints.MAX_STD_BLOBS)"
+DEFAULTS = "8: as 7, and each heat map kept a bump about one cell wide once the object is found (train.heat_map_shape = 1e-3)"
 START_FRAMES = 3          # forecast frames over which the drawing offset is measured
 TRIALS, TRAIN_TRIALS, FRAMES, HORIZON, SIZE = 12, 8, 90, 60, 64
 RUNS_FILE = "recipe_runs.jsonl"
@@ -94,7 +96,10 @@ def score_run(run: Path, trials: list[Path]) -> dict:
 
 
 def succeeded(row: dict) -> bool:
-    if row.get("objects", 1) > 1:
+    # a multi-object scene: most held-out trials show several objects ("objects" is the mean over the
+    # trials of each one's median count; a rod that the tracker sees in two pieces in one trial of four
+    # gave 1.25 on the spring rig, still one object)
+    if row.get("objects", 1) >= MULTI_OBJECT:
         return bool(row["obj20_model"] <= SUCCESS_OBJECT_PX)
     period_ok = not math.isfinite(row["period_truth"]) or (
         math.isfinite(row["period_error"]) and row["period_error"] <= SUCCESS_PERIOD)
@@ -117,7 +122,7 @@ def one_run(rig: str, look: str, seed: int, recipe: str, budget: str, work: Path
         cfg.train.budget, cfg.train.seed, cfg.train.recipe = budget, seed, recipe
         cfg = apply_overrides(cfg, sets)
         try:
-            summary = fit(trials[:TRAIN_TRIALS], run, cfg, overwrite=True, show_progress=False)
+            summary = fit(trials[:TRAIN_TRIALS], run, cfg, overwrite=True, show_progress=False, judge=judge_run)
         except TrainingStopped as exc:  # repeated numerical faults: the best weights are kept; score them
             print(f"bench: {exc}", flush=True)
             summary = json.loads((run / "summary.json").read_text())
@@ -152,7 +157,7 @@ def table(rows: list[dict]) -> str:
         verdicts = ", ".join(f"{v}×{sum(r['verdict'] == v for r in rs)}" for v in ("good", "weak", "failed")
                              if any(r["verdict"] == v for r in rs))
         lines.append(f"| {rig} | {look} | {recipe} | {budget} | {sets or '-'} | {len(rs)} | "
-                     f"{sum(r['success'] for r in rs)}/{len(rs)} | "
+                     f"{sum(succeeded(r) for r in rs)}/{len(rs)} | "
                      f"{med(lambda r: r['mse_model'] / r['mse_background_only'])} | "
                      f"{med(lambda r: r['mse_model'] / r['mse_persistence'])} | {med(lambda r: r['pos_model'])} | "
                      f"{med(lambda r: r.get('pos_start_model', math.nan))} | {med(lambda r: r['pos20_model'])} | "

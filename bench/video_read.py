@@ -14,7 +14,7 @@ from pathlib import Path
 import numpy as np
 
 from kinecast.config import DataConfig
-from kinecast.forecast.render import write_frames
+from kinecast.render import write_frames
 from kinecast.frames import read_recording
 
 from .common import NOMINAL_FPS

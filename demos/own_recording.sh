@@ -23,7 +23,7 @@ $K rig pendulum --out "$OUT/video_source" --trials 1 --frames 120 --seed 6 --siz
 "$PY" - "$OUT/video_source/trial_000" "$OUT/clip.mp4" <<'PYEOF'
 import sys
 from kinecast.frames import read_recording
-from kinecast.forecast.render import write_frames
+from kinecast.render import write_frames
 from kinecast.config import DataConfig
 rec = read_recording(sys.argv[1], DataConfig(size=128, color="rgb", cache=False))
 write_frames(rec.frames, sys.argv[2], fps=30.0, overwrite=True)  # stands in for your camera's video

@@ -15,6 +15,7 @@ from kinecast.forecast import core
 from kinecast.frames import read_recording
 from kinecast.rigs import Camera, write_rig
 from kinecast.score import persistence, ssim
+from kinecast.score.verdict import judge_run
 from kinecast.train import fit, load_run
 
 out = Path("demo_output/api")
@@ -27,10 +28,12 @@ write_rig("pendulum", out / "heldout", trials=1, frames=90, seed=2, camera=Camer
 # 2. One config object for everything; change keys in code or with config.apply_overrides.
 cfg = config.apply_overrides(config.Config(), ["train.budget=90s", "train.window_max=30"])
 
-# 3. Train (writes a run folder) and load the best weights back.
-summary = fit([out / "train"], out / "run", cfg)
+# 3. Train (writes a run folder; judge_run adds the verdict on the held-out trials) and load the
+#    best weights back.
+summary = fit([out / "train"], out / "run", cfg, judge=judge_run)
 model, cfg = load_run(out / "run")
 print("trained", summary["steps"], "steps; best validation MSE", summary["best_val_mse"])
+print("verdict:", summary["verdict"]["text"])
 
 # 4. Forecast 60 frames from the held-out trial's first three frames and compare with the truth.
 rec = read_recording(out / "heldout" / "trial_000", cfg.data)

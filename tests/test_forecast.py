@@ -69,7 +69,6 @@ def test_forecast_on_an_irregular_grid_and_forward_backward_round_trip(trained):
     # Forward to t1, then backward from that state to 0: back at the start (unique IVP solution).
     with torch.no_grad():
         z0 = model.encode(torch.from_numpy(frames[None, :3]), sample=False)
-        model.field.draw(1, mean=True)
         t1 = torch.tensor([0.0, 0.7])
         z1 = model.integrate(z0, t1)[-1]
         back = model.integrate(z1, torch.tensor([0.7, 0.0]))[-1]

@@ -25,7 +25,7 @@ from matplotlib.colors import Normalize
 from kinecast import config as C
 from kinecast.cli import main
 from kinecast.errors import KinecastError
-from kinecast.forecast import render as R
+from kinecast import render as R
 from kinecast.rigs import write_rig
 from kinecast.train import fit, load_run
 from test_fill_native import TINY  # the 4-step tiny run's settings

@@ -24,7 +24,7 @@ import torch
 
 from kinecast.config import Config
 from kinecast.model import build_model
-from kinecast.model.keypoints import draw_blobs, pixel_grid, spatial_softmax
+from kinecast.model.keypoints import draw_blobs, heat_map_shape, pixel_grid, spatial_softmax
 from kinecast.model.latent_ode import fd_velocity
 from kinecast.model.staged import dynamics_terms
 
@@ -95,7 +95,6 @@ def test_dynamics_stage_recovers_an_oscillator_period(per_keypoint):
         opt.zero_grad()
         terms["loss"].backward()
         opt.step()
-    model.field.draw(1, mean=True)
     long_t = torch.arange(100) * 0.1
     with torch.no_grad():
         s = model.integrate(torch.tensor([[0.6, 0.0, 0.0, 0.0]]), long_t)[:, 0, 0].numpy()
@@ -180,12 +179,10 @@ def test_shared_field_swaps_accelerations_with_the_objects():
     y = torch.randn(4, 12)
     perm = [2, 3, 0, 1, 4, 5]  # swap objects 1 and 2 (x, y of each)
     y_swapped = torch.cat([y[:, :6][:, perm], y[:, 6:][:, perm]], dim=1)
-    f.draw(4, generator=torch.Generator().manual_seed(1))
-    a = f(torch.tensor(0.0), y)[:, 6:]
-    f.draw(4, generator=torch.Generator().manual_seed(1))
-    a_swapped = f(torch.tensor(0.0), y_swapped)[:, 6:]
+    w = f.sample(4, generator=torch.Generator().manual_seed(1))
+    a = f(torch.tensor(0.0), y, w)[:, 6:]
+    a_swapped = f(torch.tensor(0.0), y_swapped, w)[:, 6:]
     torch.testing.assert_close(a_swapped, a[:, perm])
-    f.draw(4, mean=True)
     torch.testing.assert_close(f(torch.tensor(0.0), y_swapped)[:, 6:], f(torch.tensor(0.0), y)[:, 6:][:, perm])
 
 
@@ -219,3 +216,23 @@ def test_a_log_variance_past_its_bound_can_come_back():
     torch.testing.assert_close(y.detach(), x.detach().clamp(LOGVAR_MIN, LOGVAR_MAX))
     y.sum().backward()
     torch.testing.assert_close(x.grad, torch.ones(3))
+
+
+def test_heat_map_shape_is_the_gaussian_kl_and_pulls_a_saturated_map_open():
+    # Closed form (handbook): KL(N(m, a²) ‖ N(m, b²)) = ln(b/a) + a²/(2b²) − 1/2 per dimension. A
+    # map that is a Gaussian of std 2 cells against the term's one-cell bump, on a grid fine enough
+    # for sums to stand for integrals: 2·(ln 2 + 1/8 − 1/2) nats.
+    n = 48
+    g = draw_blobs(torch.tensor([[[0.03, -0.05]]], dtype=torch.float64), n, 2 * 2.0 / n)
+    log_p = torch.log(g / g.sum())
+    assert float(heat_map_shape(log_p)) == pytest.approx(2 * (math.log(2) + 1 / 8 - 1 / 2), rel=1e-3)
+    # A map saturated on one cell: the softmax's expected position has no gradient left (the map
+    # cannot move off the cell centre), the shape term's gradient on the logits has (it widens the map).
+    logits = torch.full((1, 1, 16, 16), -40.0)
+    logits[0, 0, 5, 9] = 40.0
+    logits.requires_grad_(True)
+    spatial_softmax(logits).sum().backward()
+    assert float(logits.grad.abs().max()) < 1e-20
+    logits.grad = None
+    heat_map_shape(torch.log_softmax(logits.flatten(2), -1).view_as(logits)).backward()
+    assert float(logits.grad[0, 0, 5, 10]) < -0.05 and float(logits.grad[0, 0, 5, 9]) > 0.5

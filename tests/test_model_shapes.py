@@ -125,10 +125,10 @@ def test_backward_integration_inverts_forward():
     m = build_model(cfg, 1).double()
     with torch.no_grad():
         m.field.w_mu[-1].mul_(20.0)  # a strong field so the check is not trivial
-        m.field.draw(3)
+        w = m.field.sample(3)
         z0 = torch.randn(3, 2 * m.q, dtype=torch.float64)
-        fwd = m.integrate(z0, torch.tensor([0.0, 0.7], dtype=torch.float64))[-1]
-        back = m.integrate(fwd, torch.tensor([0.0, -0.7], dtype=torch.float64))[-1]
+        fwd = m.integrate(z0, torch.tensor([0.0, 0.7], dtype=torch.float64), w)[-1]
+        back = m.integrate(fwd, torch.tensor([0.0, -0.7], dtype=torch.float64), w)[-1]
     assert float((fwd - z0).abs().max()) > 0.1
     torch.testing.assert_close(back, z0, rtol=0, atol=1e-7)
 

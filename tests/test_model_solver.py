@@ -140,10 +140,11 @@ def test_integrated_position_derivative_is_velocity():
                           init_logstd=-3.0).double()
     with torch.no_grad():
         field.w_mu[-1].mul_(30.0)
-    field.draw(4)
+    w = field.sample(4)
     h = 1e-3
     t = torch.arange(0, 401, dtype=torch.float64) * h
-    ys = solve(field, torch.randn(4, 6, dtype=torch.float64), t, replace(RK4, substeps=2))
+    ys = solve(lambda tt, y: field(tt, y, w), torch.randn(4, 6, dtype=torch.float64), t,
+               replace(RK4, substeps=2))
     s, v = ys.detach()[..., :3], ys.detach()[..., 3:]
     assert float((v - v[0]).abs().max()) > 0.5  # v changes a lot along the path
     fd = (s[2:] - s[:-2]) / (2 * h)
@@ -161,8 +162,9 @@ def test_adjoint_gradients_match_backprop():
     for adjoint in (False, True):
         field.zero_grad()
         gen = torch.Generator().manual_seed(7)
-        field.draw(3, generator=gen)
-        ys = solve(field, y0, t, replace(DOPRI, adjoint=adjoint))
+        w = field.sample(3, generator=gen)
+        ys = solve(lambda tt, y: field(tt, y, w), y0, t, replace(DOPRI, adjoint=adjoint),
+                   adjoint_params=field.tensors(w))
         (ys ** 2).sum().backward()
         grads.append([p.grad.clone() for p in field.parameters()])
     for a, b in zip(*grads):

@@ -24,7 +24,7 @@ from PIL import Image
 from skimage.metrics import peak_signal_noise_ratio
 
 from kinecast.errors import KinecastError
-from kinecast.forecast import render as R
+from kinecast import render as R
 
 # A lossy H.264 encode at a reasonable rate is commonly judged good above ~30 dB PSNR (common
 # practice for 8-bit video; the figure is from memory, not a standard). Our clips are smooth and

@@ -9,7 +9,7 @@ from skimage.draw import disk
 from kinecast.errors import KinecastError
 from kinecast.rigs import Camera, render_trials
 from kinecast.score import centroid_track, dominant_period, track_period
-from kinecast.score import tracks
+from kinecast.frames import tracks
 
 G = 9.81  # m/s^2, standard gravity (rounded; any value works, the period formula uses the same g)
 SUPERSAMPLE = 16  # sub-pixel samples per pixel side when rendering anti-aliased discs

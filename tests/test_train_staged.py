@@ -16,6 +16,7 @@ import torch
 
 from kinecast import config as C
 from kinecast.rigs import write_rig
+from kinecast.score.verdict import judge_run
 from kinecast.train import fit
 from kinecast.train import checkpoint as ck
 from kinecast.train import stages as S
@@ -49,7 +50,7 @@ def test_stage_of_progress_follows_the_shares():
 
 def test_positions_stage_finds_the_moving_object(rig, tmp_path):
     torch.manual_seed(0)
-    summary = fit([rig], tmp_path / "run", staged_cfg(400), show_progress=False)
+    summary = fit([rig], tmp_path / "run", staged_cfg(400), show_progress=False, judge=judge_run)
     # learning check: the autoencoder beat the bare background by the escape ratio
     assert summary["positions_found"] is True, summary
     rows = ck.read_log(tmp_path / "run")
@@ -100,7 +101,6 @@ def test_a_keypoint_that_does_not_move_is_held_still():
     targets = SimpleNamespace(means=[torch.cat([swing, parked], 1)])
     assert S.hold_still(model, targets, still_px=1.0) == [1]
     assert model.field.moving.tolist() == [1.0, 1.0, 0.0, 0.0]
-    model.field.draw(1, mean=True)
     state0 = torch.tensor([[0.1, 0.2, 0.5, -0.4, 0.5, -0.3, 0.7, 0.9]])
     path = model.integrate(state0, torch.linspace(0, 3, 31))[:, 0]
     assert torch.equal(path[:, 2:4], state0[:, 2:4].expand(31, 2))

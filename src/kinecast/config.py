@@ -57,6 +57,11 @@ class DataConfig:
     cache: bool = _opt(True, "cache frames at model resolution so a second read is cheap")
     cache_dir: str = _opt("", "cache folder; '' = ~/.cache/kinecast")
 
+    @property
+    def channels(self) -> int:
+        """Channels of a preprocessed frame: 3 for ``color = "rgb"``, else 1."""
+        return 3 if self.color == "rgb" else 1
+
 
 @dataclass
 class ModelConfig:
@@ -151,6 +156,12 @@ class TrainConfig:
     keypoint_coverage: float = _opt(1.0, "staged: weight of a term that puts a keypoint near every part of "
                                     "the frame that differs from the background, in the positions stage "
                                     "(one keypoint per object when there are several)", lo=0.0)
+    # 1e-3: the autoencoder's per-pixel NLL moves by ~1e-4 with the object's position, and one heat map
+    # sharpened into a single cell costs KL ≈ 20-60 nats, so the term outweighs the position signal
+    # only when a map saturates; a one-cell-wide bump costs nothing whatever its position
+    heat_map_shape: float = _opt(1e-3, "staged, keypoint encoder: weight of a term that keeps each heat map a "
+                                 "bump about one cell wide once the object is found, so keypoint positions "
+                                 "move smoothly between cells instead of snapping to them; 0 = off", lo=0.0)
     still_keypoint_px: float = _opt(1.0, "staged, keypoint encoder: a keypoint whose encoded position moves by "
                                     "less than this (rms over the training frames, model pixels) when the "
                                     "dynamics stage starts is held still by the field (e.g. one parked on a "
@@ -240,6 +251,15 @@ class Config:
 
 
 SECTIONS = tuple(f.name for f in fields(Config))
+
+# A forecast clearly draws the object only when its MSE is below this × that of the bare background
+# (the verdict's floor; training never early-stops above it). Not merely below 1: a forecast of the
+# blurred mean of the motion (a model that learned nothing) already scores a little under the
+# background, because the temporal mean is the best constant predictor under squared error (least
+# squares). Our choice from measured 5-minute fits at 64 px: runs that had not found the object
+# scored 0.93-1.11× the background (pendulum, air table), runs that track it 0.46-0.59× (pendulum,
+# spring).
+FLOOR_MARGIN = 0.8
 _NUMBER = r"(\d+(?:\.\d+)?)"
 _UNIT_END = r"(?![a-z])"  # a unit word ends here ("5min" is minutes, not "5m" followed by "in")
 # hours, minutes, seconds in that order, each optional, spaces allowed: 90s, 5 min, 1h30m, 1 h 30 min

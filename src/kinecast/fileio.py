@@ -6,6 +6,7 @@ A kill at any moment leaves either the old file or the new one, never a half-wri
 from __future__ import annotations
 
 import contextlib
+import functools
 import os
 import tempfile
 from pathlib import Path
@@ -13,8 +14,20 @@ from typing import Callable, Iterator
 
 from .errors import KinecastError
 
-_UMASK = os.umask(0)
-os.umask(_UMASK)
+
+
+@functools.lru_cache(maxsize=1)
+def process_umask() -> int:
+    """The process's file-creation mask, read once when first needed (not at import): from
+    /proc/self/status where Linux has it (``Umask:`` line, kernel 4.7+), which changes nothing;
+    elsewhere set and restored at once (the only portable way before Python 3.13)."""
+    with contextlib.suppress(OSError, ValueError):
+        for line in Path("/proc/self/status").read_text().splitlines():
+            if line.startswith("Umask:"):
+                return int(line.split()[1], 8)
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
 
 
 @contextlib.contextmanager
@@ -40,7 +53,7 @@ def atomic_path(target: str | Path, overwrite: bool = True) -> Iterator[Path]:
         yield tmp_path
         # mkstemp makes 0600, and some writers (safetensors) replace the file with a 0600 one of
         # their own: give the finished file the usual permissions
-        os.chmod(tmp_path, 0o666 & ~_UMASK)
+        os.chmod(tmp_path, 0o666 & ~process_umask())
         with open(tmp_path, "rb+") as fh:
             fh.flush()
             os.fsync(fh.fileno())

@@ -25,7 +25,7 @@ from matplotlib.ticker import FuncFormatter, LogLocator, NullFormatter, ScalarFo
 
 from .errors import KinecastError
 from .fileio import write_with
-from .forecast.render import MIN_SPREAD_SCALE, spread_scale, time_format
+from .render import MIN_SPREAD_SCALE, spread_scale, time_format
 
 PLOT_SUFFIXES = (".png", ".svg", ".pdf")
 DPI = 110

@@ -47,9 +47,9 @@ class Forecast:
     context_start: int
 
 
-def check_compatible(rec: Recording, cfg: Config, model) -> None:
+def check_compatible(rec: Recording, cfg: Config) -> None:
     """Refuse a recording whose size or channels differ from the run's."""
-    want_c = 1 if cfg.data.color == "grey" else 3
+    want_c = cfg.data.channels
     if rec.size != (cfg.data.size, cfg.data.size) or rec.channels != want_c:
         raise KinecastError(rec.source, f"frames are {rec.channels}×{rec.size[0]}×{rec.size[1]} after reading, "
                                         f"the run expects {want_c}×{cfg.data.size}×{cfg.data.size}")

@@ -15,7 +15,7 @@ from pathlib import Path
 
 from ..fileio import check_can_create
 from . import core
-from .cli import CAUTION, open_run, refuse_inside
+from ..verbs import CAUTION, open_run, refuse_inside
 from .native import BACKGROUND_SAMPLES, COLOUR_FROM_GREY, LUMA_FROM_RGB
 
 HELP_WIDTH = 100   # columns of the help text's hand-wrapped lines

@@ -330,7 +330,7 @@ class FrameSink:
         """The frames as one (N, C, size, size) float32 array."""
         self.close()
         if not self.frames:
-            channels = 3 if self.cfg.color == "rgb" else 1
+            channels = self.cfg.channels
             return np.zeros((0, channels, self.cfg.size, self.cfg.size), np.float32)
         return np.stack(self.frames)
 

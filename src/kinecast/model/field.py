@@ -8,9 +8,10 @@ each (keypoints: g = 2, image x and y); one MLP maps each object's own ``[s_j, v
 acceleration ``a_j``. Several similar objects (pucks on a table) then share what one of them teaches
 the field, where a field over all coordinates at once memorises the training layouts.
 
-Weights follow q(W) = N(μ, σ²) per weight, prior N(0, prior_std²). :meth:`DynamicsField.draw` picks
-the weights for one pass: one independent draw per sequence (batched weight tensors, evaluated
-with ``torch.baddbmm``), or the posterior means for a deterministic forecast.
+Weights follow q(W) = N(μ, σ²) per weight, prior N(0, prior_std²). :meth:`DynamicsField.sample`
+draws the weights for one pass, which are then passed explicitly (``field(t, y, weights)``): one
+independent draw per sequence (batched weight tensors, evaluated with ``torch.baddbmm``), or None
+for the posterior means (a deterministic forecast).
 
 References
 ----------
@@ -26,6 +27,9 @@ import torch
 from torch import nn
 
 from .gauss import kl_normal_prior
+
+# Per-layer (weights [n, in, out], biases [n, 1, out]) drawn for a batch of n sequences.
+Weights = list[tuple[torch.Tensor, torch.Tensor]]
 
 ACTIVATIONS = {"tanh": torch.tanh, "relu": torch.relu, "softplus": torch.nn.functional.softplus}
 # The last layer's initial means are scaled by this: the starting field is gentle, so early latent
@@ -58,12 +62,11 @@ class DynamicsField(nn.Module):
     Examples
     --------
     >>> f = DynamicsField(2, 16, 2, True, True, 1.0, -5.0)
-    >>> f.draw(3)
-    >>> f(torch.tensor(0.0), torch.zeros(3, 4)).shape
+    >>> w = f.sample(3)  # one weight draw per sequence
+    >>> f(torch.tensor(0.0), torch.zeros(3, 4), w).shape
     torch.Size([3, 4])
     >>> g = DynamicsField(4, 16, 2, True, True, 1.0, -5.0, group=2)
-    >>> g.draw(3)
-    >>> g(torch.tensor(0.0), torch.zeros(3, 8)).shape
+    >>> g(torch.tensor(0.0), torch.zeros(3, 8)).shape  # posterior means
     torch.Size([3, 8])
     """
 
@@ -94,13 +97,12 @@ class DynamicsField(nn.Module):
             if bayesian:
                 self.w_logstd.append(nn.Parameter(torch.full((n_in, n_out), float(init_logstd))))
                 self.b_logstd.append(nn.Parameter(torch.full((n_out,), float(init_logstd))))
-        self._weights: list[tuple[torch.Tensor, torch.Tensor]] | None = None
         # 1 for a position coordinate the field moves, 0 for one held still (second order: its
         # acceleration is zero; the model also zeroes its initial velocity). See hold_still.
         self.register_buffer("moving", torch.ones(q))
 
-    def draw(self, n: int, mean: bool = False, generator: torch.Generator | None = None) -> None:
-        """Choose the weights used by the next solves.
+    def sample(self, n: int, mean: bool = False, generator: torch.Generator | None = None) -> Weights | None:
+        """Weights for a solve, passed explicitly to :meth:`forward` (the field keeps no draw).
 
         Parameters
         ----------
@@ -110,23 +112,27 @@ class DynamicsField(nn.Module):
             Use the posterior means (deterministic); always the case for plain weights.
         generator : torch.Generator, optional
             Source of the weight noise (for reproducible samples).
+
+        Returns
+        -------
+        list of (Tensor, Tensor) or None
+            Per layer, weights [n, in, out] and biases [n, 1, out]; None means the posterior means.
         """
         if mean or not self.bayesian:
-            self._weights = None
-            return
+            return None
         drawn = []
         for w_mu, b_mu, w_ls, b_ls in zip(self.w_mu, self.b_mu, self.w_logstd, self.b_logstd):
             ew = torch.randn((n, *w_mu.shape), generator=generator, device=w_mu.device, dtype=w_mu.dtype)
             eb = torch.randn((n, 1, b_mu.shape[0]), generator=generator, device=b_mu.device,
                              dtype=b_mu.dtype)
             drawn.append((w_mu + w_ls.exp() * ew, b_mu + b_ls.exp() * eb))
-        self._weights = drawn
+        return drawn
 
-    def adjoint_tensors(self) -> list[torch.Tensor]:
-        """The tensors the field currently depends on (for adjoint gradients)."""
-        if self._weights is None:
+    def tensors(self, weights: Weights | None = None) -> list[torch.Tensor]:
+        """The tensors a solve with ``weights`` depends on (for adjoint gradients)."""
+        if weights is None:
             return list(self.w_mu) + list(self.b_mu)
-        return [x for pair in self._weights for x in pair]
+        return [x for pair in weights for x in pair]
 
     def _objects(self, x: torch.Tensor) -> torch.Tensor:
         """(n, 2q) → (n, G, MLP input): one row per object, or one row of the whole state."""
@@ -136,29 +142,31 @@ class DynamicsField(nn.Module):
         s, v = x[:, :self.q].reshape(n, -1, g), x[:, self.q:].reshape(n, -1, g)
         return torch.cat([s, v], dim=2)
 
-    def mlp(self, x: torch.Tensor) -> torch.Tensor:
-        """The MLP on a batch ``x`` of shape (n, 2q) with the current weights (per object if grouped)."""
+    def mlp(self, x: torch.Tensor, weights: Weights | None = None) -> torch.Tensor:
+        """The MLP on a batch ``x`` of shape (n, 2q) with ``weights`` (from :meth:`sample`; None: the
+        posterior means), per object if grouped."""
         n_layers = len(self.w_mu)
         n = x.shape[0]
         x = self._objects(x)
-        if self._weights is None:
+        if weights is None:
             for i, (w, b) in enumerate(zip(self.w_mu, self.b_mu)):
                 x = torch.matmul(x, w) + b
                 if i < n_layers - 1:
                     x = self.act(x)
             return x.reshape(n, -1)
-        if n != self._weights[0][0].shape[0]:
+        if n != weights[0][0].shape[0]:
             raise ValueError(f"DynamicsField: state batch {n} but weights drawn for "
-                             f"{self._weights[0][0].shape[0]} sequences")
-        for i, (w, b) in enumerate(self._weights):
+                             f"{weights[0][0].shape[0]} sequences")
+        for i, (w, b) in enumerate(weights):
             x = torch.baddbmm(b, x, w)
             if i < n_layers - 1:
                 x = self.act(x)
         return x.reshape(n, -1)
 
-    def forward(self, t: torch.Tensor, y: torch.Tensor) -> torch.Tensor:
-        """dy/dt at state ``y`` (n, 2q); autonomous, so ``t`` is unused."""
-        out = self.mlp(y)
+    def forward(self, t: torch.Tensor, y: torch.Tensor, weights: Weights | None = None) -> torch.Tensor:
+        """dy/dt at state ``y`` (n, 2q) with ``weights`` (None: the posterior means); autonomous, so
+        ``t`` is unused."""
+        out = self.mlp(y, weights)
         if self.second_order:
             return torch.cat([y[:, self.q:], out * self.moving], dim=1)
         return out

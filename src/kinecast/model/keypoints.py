@@ -54,8 +54,16 @@ INIT_STD = 0.015
 # positions stage (KL ≈ 200 nats a frame), its samples flew all over the frame and the encoder lost
 # the object (pendulum rig, dark-on-light look, seed 1; bench/results/recipe_runs.jsonl).
 MAX_STD_BLOBS = 1.0
+# Width of the bump each heat map is kept close to by heat_map_shape, in heat-map cells (2 px at
+# UPSCALE 2). Unchecked, the positions stage sharpened maps into one cell (a saturated softmax): the
+# keypoints then sat exactly on the 2-px grid of cell centres (all of one run's held-out positions
+# within 0.05 px of a centre; pendulum rig, textured look, seed 2) and the finite-difference
+# velocity from three such positions was wrong in size and sign. One cell is the width used for the
+# target heat maps of numerical coordinate regression (Nibali et al. 2018, σ = 1 heat-map pixel).
+HEAT_STD_CELLS = 1.0
 
-__all__ = ["KeypointEncoder", "KeypointDecoder", "pixel_grid", "spatial_softmax", "draw_blobs"]
+__all__ = ["KeypointEncoder", "KeypointDecoder", "pixel_grid", "spatial_softmax", "expected_xy", "heat_map_shape",
+           "draw_blobs"]
 
 
 def pixel_grid(n: int, device=None, dtype=torch.float32) -> torch.Tensor:
@@ -72,11 +80,53 @@ def spatial_softmax(logits: torch.Tensor) -> torch.Tensor:
 
     x runs along W (left to right), y along H (top to bottom), in :func:`pixel_grid` units.
     """
+    return expected_xy(heat_softmax(logits))
+
+
+def heat_softmax(logits: torch.Tensor, log: bool = False) -> torch.Tensor:
+    """Softmax over each map's cells: ``(B, K, H, W)`` → probabilities (or their logs) of the same shape."""
     B, K, H, W = logits.shape
-    p = torch.softmax(logits.reshape(B, K, H * W), dim=-1).reshape(B, K, H, W)
-    x = (p.sum(dim=2) * pixel_grid(W, logits.device, logits.dtype)).sum(-1)
-    y = (p.sum(dim=3) * pixel_grid(H, logits.device, logits.dtype)).sum(-1)
+    f = torch.log_softmax if log else torch.softmax
+    return f(logits.reshape(B, K, H * W), dim=-1).reshape(B, K, H, W)
+
+
+def expected_xy(p: torch.Tensor) -> torch.Tensor:
+    """Expected (x, y) under probability maps ``p`` ``(B, K, H, W)`` → ``(B, K, 2)``."""
+    H, W = p.shape[-2:]
+    x = (p.sum(dim=2) * pixel_grid(W, p.device, p.dtype)).sum(-1)
+    y = (p.sum(dim=3) * pixel_grid(H, p.device, p.dtype)).sum(-1)
     return torch.stack([x, y], dim=-1)
+
+
+def heat_map_shape(log_p: torch.Tensor, width_cells: float = HEAT_STD_CELLS) -> torch.Tensor:
+    """Mean over maps of KL(g ‖ p), g a Gaussian bump of std ``width_cells`` cells at the map's own
+    expected position (held fixed), normalised over the map's cells; ``log_p`` ``(B, K, H, W)`` are
+    the maps' log-probabilities (:func:`heat_softmax` with ``log``: no underflow when sharp).
+
+    Zero when a map is that bump; it grows without bound as a map sharpens into one cell (−log p of
+    the cells around the peak), with a gradient that does not vanish there, unlike the spatial
+    softmax's own. It leaves the position alone and only keeps the map wide enough that its expected
+    position moves smoothly between cell centres. Shape term after Nibali et al. (2018), who regularise
+    heat maps towards a Gaussian at the target (here: at the map's own mean).
+
+    References
+    ----------
+    Nibali, A., He, Z., Morgan, S. and Prendergast, L. (2018). Numerical coordinate regression with
+    convolutional neural networks. arXiv:1801.07372.
+
+    Examples
+    --------
+    >>> g = draw_blobs(torch.tensor([[[0.1, -0.2]]]), 16, 2 / 16)  # a bump of one cell's std
+    >>> abs(round(float(heat_map_shape(torch.log(g / g.sum()))), 4))
+    0.0
+    """
+    B, K, H, W = log_p.shape
+    mean = expected_xy(log_p.exp()).detach()
+    cell = 2.0 / W  # normalised width of one cell
+    g = draw_blobs(mean.reshape(B * K, 1, 2), W, width_cells * cell).reshape(B, K, H, W)
+    g = g / g.sum(dim=(2, 3), keepdim=True)
+    kl = (torch.special.xlogy(g, g) - g * log_p).sum(dim=(2, 3))
+    return kl.mean()
 
 
 def draw_blobs(points: torch.Tensor, size: int, std: float) -> torch.Tensor:
@@ -124,11 +174,14 @@ class KeypointEncoder(nn.Module):
             self.logvar.bias.fill_(2.0 * math.log(self.init_std))
         return [self.logvar.weight, self.logvar.bias]
 
-    def forward(self, x: torch.Tensor, background: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+    def forward(self, x: torch.Tensor, background: torch.Tensor, with_maps: bool = False) -> tuple:
+        """Means and log-variances (B, 2K); with ``with_maps`` also the heat maps' log-probabilities
+        (B, K, h, w)."""
         h = self.trunk(torch.cat([x, x - background.to(x)], dim=1))
-        points = spatial_softmax(self.heat(h))
-        logvar = self.logvar(h.mean(dim=(2, 3)))
-        return points.flatten(1), bounded_logvar(logvar, self.logvar_max)
+        log_maps = heat_softmax(self.heat(h), log=True)
+        points = expected_xy(log_maps.exp())
+        logvar = bounded_logvar(self.logvar(h.mean(dim=(2, 3))), self.logvar_max)
+        return (points.flatten(1), logvar, log_maps) if with_maps else (points.flatten(1), logvar)
 
 
 class KeypointDecoder(nn.Module):

@@ -23,7 +23,7 @@ import torch
 from torch import nn
 
 from .convnets import Decoder, GaussEncoder
-from .field import DynamicsField
+from .field import DynamicsField, Weights
 from .keypoints import MAX_STD_BLOBS, KeypointDecoder, KeypointEncoder
 from .gauss import bernoulli_nll, gaussian_nll, kl_std_normal
 from .solver import solve
@@ -184,15 +184,17 @@ class LatentODE(nn.Module):
         return torch.cat([s_mean, v_mean], dim=1)
 
     # ---------------------------------------------------------------------------- dynamics
-    def integrate(self, state0: torch.Tensor, t: torch.Tensor) -> torch.Tensor:
-        """Solve from ``state0`` [n, 2q] at t[0] with the weights last drawn; returns [N, n, 2q].
+    def integrate(self, state0: torch.Tensor, t: torch.Tensor, weights: Weights | None = None) -> torch.Tensor:
+        """Solve from ``state0`` [n, 2q] at t[0] with the field's ``weights`` (from
+        ``field.sample``; None: the posterior means); returns [N, n, 2q].
 
         Coordinates the field holds still (``field.moving`` = 0) start with zero velocity."""
         if self.field.second_order:
             state0 = torch.cat([state0[:, :self.q], state0[:, self.q:] * self.field.moving], dim=1)
-        return solve(self.field, state0, t, self.solver_cfg)
+        field = self.field if weights is None else (lambda tt, y: self.field(tt, y, weights))
+        return solve(field, state0, t, self.solver_cfg, adjoint_params=self.field.tensors(weights))
 
-    def integrate_any(self, state0: torch.Tensor, t: torch.Tensor) -> torch.Tensor:
+    def integrate_any(self, state0: torch.Tensor, t: torch.Tensor, weights: Weights | None = None) -> torch.Tensor:
         """States at arbitrary times ``t`` [N] relative to ``state0`` (time 0): any order, repeats,
         before and after 0. Solves forward for t > 0 and backward for t < 0. Returns [N, n, 2q]."""
         t = torch.as_tensor(t, dtype=state0.dtype).to(state0.device).reshape(-1)
@@ -201,11 +203,11 @@ class LatentODE(nn.Module):
         parts = []
         neg = uniq[uniq < 0]
         if len(neg):
-            back = self.integrate(state0, torch.cat([zero, neg.flip(0)]))[1:]
+            back = self.integrate(state0, torch.cat([zero, neg.flip(0)]), weights)[1:]
             parts.append(back.flip(0))
         pos = uniq[uniq >= 0]
         if len(pos):
-            fwd = self.integrate(state0, torch.cat([zero, pos[pos > 0]]))
+            fwd = self.integrate(state0, torch.cat([zero, pos[pos > 0]]), weights)
             parts.append(fwd if pos[0] == 0 else fwd[1:])
         return torch.cat(parts, dim=0)[inverse]
 
@@ -271,8 +273,8 @@ class LatentODE(nn.Module):
             state0 = torch.cat([_reparam(s_mean, s_logvar), _reparam(v_mean, v_logvar)], dim=1)
         else:
             state0 = torch.cat([s_mean, v_mean], dim=1)
-        self.field.draw(B, mean=not sample)
-        states = self.integrate(state0, t - t[0]).transpose(0, 1)  # [B, T, 2q]
+        weights = self.field.sample(B, mean=not sample)
+        states = self.integrate(state0, t - t[0], weights).transpose(0, 1)  # [B, T, 2q]
         s = states[..., :self.q]
         pixels_per_frame = float(self.channels * self.size * self.size)
         norm = n_obs / B * pixels_per_frame  # observed pixels per sequence
@@ -353,8 +355,8 @@ class LatentODE(nn.Module):
         if sample_init:
             logvar = torch.cat([s_logvar, v_logvar], 1).repeat(samples, 1)
             state0 = _reparam(state0, logvar, generator)
-        self.field.draw(samples * B, mean=mean_weights, generator=generator)
-        states = self.integrate_any(state0, t)  # [N, S·B, 2q]
+        weights = self.field.sample(samples * B, mean=mean_weights, generator=generator)
+        states = self.integrate_any(state0, t, weights)  # [N, S·B, 2q]
         latents = states.transpose(0, 1).reshape(samples, B, states.shape[0], 2 * self.q)
         return self.decode(latents[..., :self.q]), latents
 

@@ -27,8 +27,8 @@ from torchdiffeq import odeint, odeint_adjoint
 
 FIXED_STEP_METHODS = ("rk4", "euler", "midpoint")
 ADAPTIVE_METHODS = ("dopri5",)
-# our method names -> torchdiffeq's (its "rk4" is the fourth-order Runge-Kutta 3/8 rule)
-_TORCHDIFFEQ_NAME = {"rk4": "rk4", "euler": "euler", "midpoint": "midpoint", "dopri5": "dopri5"}
+# torchdiffeq's own method names (its "rk4" is the fourth-order Runge-Kutta 3/8 rule)
+METHODS = FIXED_STEP_METHODS + ADAPTIVE_METHODS
 
 
 def step_grid(t: torch.Tensor, substeps: int) -> torch.Tensor:
@@ -80,8 +80,7 @@ def solve(field: Callable[[torch.Tensor, torch.Tensor], torch.Tensor], state0: t
     ----------
     field : callable ``(t, y) -> dy/dt``
         The vector field; an ``nn.Module`` when ``solver_cfg.adjoint`` is on (or pass
-        ``adjoint_params``). A module with an ``adjoint_tensors()`` method supplies the tensors
-        the adjoint differentiates (e.g. weights drawn for this pass).
+        ``adjoint_params``: the tensors the adjoint differentiates, e.g. weights drawn for this pass).
     state0 : Tensor, shape (B, D)
         State at ``t[0]``.
     t : Tensor, shape (N,)
@@ -104,16 +103,16 @@ def solve(field: Callable[[torch.Tensor, torch.Tensor], torch.Tensor], state0: t
     0.37
     """
     method = solver_cfg.method
-    if method not in _TORCHDIFFEQ_NAME:
+    if method not in METHODS:
         raise ValueError(f"solve: unknown method {method!r}; allowed "
-                         + ", ".join(_TORCHDIFFEQ_NAME))
+                         + ", ".join(METHODS))
     t = torch.as_tensor(t).to(device=state0.device)
     if not t.is_floating_point():
         t = t.to(state0.dtype)
     _check_times(t)
     if len(t) == 1:
         return state0.unsqueeze(0)
-    kwargs: dict = {"method": _TORCHDIFFEQ_NAME[method]}
+    kwargs: dict = {"method": method}
     if method in FIXED_STEP_METHODS:
         n = int(solver_cfg.substeps)
         if n < 1:
@@ -125,12 +124,7 @@ def solve(field: Callable[[torch.Tensor, torch.Tensor], torch.Tensor], state0: t
     if not solver_cfg.adjoint:
         return odeint(field, state0, t, **kwargs)
     if adjoint_params is None:
-        if hasattr(field, "adjoint_tensors"):
-            adjoint_params = tuple(field.adjoint_tensors())
-        elif isinstance(field, torch.nn.Module):
-            adjoint_params = tuple(field.parameters())
-        else:
-            adjoint_params = ()
+        adjoint_params = tuple(field.parameters()) if isinstance(field, torch.nn.Module) else ()
     return odeint_adjoint(field, state0, t, adjoint_params=tuple(adjoint_params), **kwargs)
 
 

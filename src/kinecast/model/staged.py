@@ -24,7 +24,7 @@ import torch
 import torch.nn.functional as F
 
 from .gauss import bernoulli_nll, gaussian_nll, kl_std_normal
-from .keypoints import pixel_grid
+from .keypoints import heat_map_shape, pixel_grid
 from .latent_ode import fd_velocity
 
 # Variance floor of the encoded positions in the dynamics loss, in (units per pixel)²: half a
@@ -90,16 +90,22 @@ def keypoint_coverage(points: torch.Tensor, weights: torch.Tensor, width: float)
 
 
 def autoencoder_terms(model, frames: torch.Tensor, sample: bool, beta: float, repulsion: float = 0.0,
-                      coverage: float = 0.0) -> dict:
+                      coverage: float = 0.0, shape: float = 0.0) -> dict:
     """Frame autoencoder loss per pixel: frames [N, C, H, W] → position → frame.
 
     Returns ``loss`` (NLL + beta·KL(q(s)‖N(0, I)) per pixel, plus ``repulsion`` × the keypoints'
     :func:`keypoint_overlap` at twice the blob width, which spreads keypoints over several objects,
-    plus ``coverage`` × their :func:`keypoint_coverage` of the foreground at the encoder's resolution),
-    ``nll``, ``kl_s0``, ``mse`` (of the reconstruction), ``bg_mse`` (of the background alone, for
-    the escape test), ``overlap`` and ``coverage``.
+    plus ``coverage`` × their :func:`keypoint_coverage` of the foreground at the encoder's resolution,
+    plus ``shape`` × the heat maps' :func:`~kinecast.model.keypoints.heat_map_shape`), ``nll``,
+    ``kl_s0``, ``mse`` (of the reconstruction), ``bg_mse`` (of the background alone, for the escape
+    test), ``overlap``, ``coverage`` and ``heat_shape``.
     """
-    mean, logvar = model.encode_positions(frames)
+    heat = None
+    if model.keypoints and shape > 0:
+        mean, logvar, log_maps = model.pos_enc(frames, model.background, with_maps=True)
+        heat = heat_map_shape(log_maps)
+    else:
+        mean, logvar = model.encode_positions(frames)
     s = mean + (0.5 * logvar).exp() * torch.randn_like(mean) if sample else mean
     logits = model.decode_logits(s)
     pixels = float(frames[0].numel())
@@ -115,9 +121,10 @@ def autoencoder_terms(model, frames: torch.Tensor, sample: bool, beta: float, re
         with torch.no_grad():
             weights = foreground_weights(frames, model.background, model.pos_enc.half)
         cover = keypoint_coverage(mean, weights, 2 * model.cfg.blob_std)
-    loss = nll + beta * kl + repulsion * overlap + coverage * cover
+    heat = nll.new_zeros(()) if heat is None else heat
+    loss = nll + beta * kl + repulsion * overlap + coverage * cover + shape * heat
     return {"loss": loss, "nll": nll.detach(), "kl_s0": kl.detach(), "mse": mse, "bg_mse": bg_mse,
-            "overlap": overlap.detach(), "coverage": cover.detach()}
+            "overlap": overlap.detach(), "coverage": cover.detach(), "heat_shape": heat.detach()}
 
 
 @torch.no_grad()
@@ -159,8 +166,8 @@ def dynamics_terms(model, ctx: torch.Tensor, t: torch.Tensor, target_mean: torch
     _, _, v_mean, v_logvar = model.encode_dist(ctx, t[:model.k] - t[0])
     s0 = target_mean[:, 0] + target_var[:, 0].sqrt() * torch.randn_like(target_mean[:, 0])
     v0 = v_mean + (0.5 * v_logvar).exp() * torch.randn_like(v_mean)
-    model.field.draw(B)
-    s = model.integrate(torch.cat([s0, v0], dim=1), t - t[0]).transpose(0, 1)[..., :q]
+    weights = model.field.sample(B)
+    s = model.integrate(torch.cat([s0, v0], dim=1), t - t[0], weights).transpose(0, 1)[..., :q]
     obs = mask.to(s.dtype)
     per = T * q
     nll = (0.5 * ((s - target_mean) ** 2 / var).sum(2) * obs).sum() / B / per

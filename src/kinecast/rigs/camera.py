@@ -9,6 +9,7 @@ import cv2
 import numpy as np
 
 from ..errors import KinecastError
+from ..frames.preprocess import BT601_LUMA
 
 # Frames 0..NEVER_DROP_FIRST-1 are always delivered, so a forecaster has context to start from.
 NEVER_DROP_FIRST = 3
@@ -19,8 +20,6 @@ JITTER_CLIP = 0.4
 BACKGROUND_LEVEL = 0.2
 # Correlation length of the background texture as a fraction of the frame size.
 TEXTURE_SCALE = 1 / 12
-# ITU-R BT.601 luma weights for R, G, B (open standard), used for grey frames.
-BT601_LUMA = (0.299, 0.587, 0.114)
 
 
 @dataclass(frozen=True)
@@ -134,7 +133,7 @@ def develop(image: np.ndarray, rng: np.random.Generator, camera: Camera, gain: f
     if camera.vignette > 0:
         img = img * vignette
     if grey:
-        img = img @ np.asarray(BT601_LUMA, dtype=np.float32)[:, None]
+        img = img @ BT601_LUMA[:, None]
     if camera.noise > 0:
         img = img + rng.standard_normal(img.shape).astype(np.float32) * np.float32(camera.noise)
     return np.clip(np.rint(img * 255.0), 0, 255).astype(np.uint8)

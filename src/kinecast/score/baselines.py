@@ -22,7 +22,8 @@ import cv2
 import numpy as np
 
 from ..errors import KinecastError
-from .tracks import (FOREGROUND_FRACTION, centroid_track, foreground, foreground_mask,
+from ..frames.preprocess import BT601_LUMA
+from ..frames.tracks import (FOREGROUND_FRACTION, centroid_track, foreground, foreground_mask,
                      median_background)
 
 # Farnebäck dense-flow parameters for small model frames (32-128 px): image pyramid halving per level,
@@ -36,8 +37,6 @@ FARNEBACK_ITERATIONS = 3
 FARNEBACK_POLY_N = 5
 FARNEBACK_POLY_SIGMA = 1.1
 FARNEBACK_FLAGS = 0
-# Luma weights of ITU-R BT.601 for turning RGB frames to grey before the flow is computed.
-BT601_LUMA = np.array([0.299, 0.587, 0.114])
 # 8-bit grey levels (the input format of OpenCV's Farnebäck implementation).
 GREY_LEVELS = 255
 # Fixed-point iterations that carry the flow, known at its source pixels, to the pixels it moves to.

@@ -22,7 +22,7 @@ METRICS = ("mse", "mae", "psnr", "ssim", "object_ssim", "position_error_px", "ma
 
 
 def configure(parser) -> None:
-    from ..forecast.cli import add_seed_option
+    from ..verbs import add_seed_option
 
     parser.add_argument("run", nargs="?", metavar="RUN", help="run folder written by `kinecast fit`")
     parser.add_argument("path", nargs="?", metavar="PATH", help="recording (or folder of trials) to score on")
@@ -64,9 +64,8 @@ def write_scores(out: Path, result: dict, cfg, extra: dict) -> None:
                "frames_scored": int(len(times)), "methods": result["summary"],
                "ssim_threshold": cfg.score.ssim_threshold,
                "position_threshold_px": cfg.score.position_threshold_px, **extra}
-    for key in ("periods",):
-        if key in result:
-            summary[key] = result[key]
+    if "periods" in result:
+        summary["periods"] = result["periods"]
     if "coverage" in result:
         summary["band"] = cfg.score.band
         summary["band_coverage_per_frame"] = [None if not np.isfinite(c) else round(float(c), 4)
@@ -93,7 +92,7 @@ def table(result: dict) -> str:
 
 
 def _prepare_out(out: Path, overwrite: bool, inputs: list) -> None:
-    from ..forecast.cli import refuse_inside
+    from ..verbs import refuse_inside
 
     for src in inputs:
         if src:
@@ -138,8 +137,8 @@ def _run_pair(args, cfg, out: Path) -> int:
 
 def _run_model(args, cfg, out: Path) -> int:
     from .. import config as cfgmod
-    from ..forecast.cli import at_least_one, open_run, with_seed
-    from ..forecast.render import comparison_columns, contact_sheet, panel_frames, write_frames
+    from ..verbs import at_least_one, open_run, with_seed
+    from ..render import comparison_columns, contact_sheet, panel_frames, write_frames
     from ..train.checkpoint import load_run
     from .evaluate import evaluate, holdout_split
     from .report import RUN_DIGEST, weights_sha256

@@ -16,7 +16,7 @@ from ..errors import KinecastError
 from ..frames import Recording
 from .baselines import background_only, constant_velocity, flow_warp, persistence
 from .metrics import band_coverage, frame_metrics, leading_run, object_region, ssim
-from .tracks import centroid_track, dominant_period, median_background, object_errors, track_period
+from ..frames.tracks import centroid_track, dominant_period, median_background, object_errors, track_period
 
 # Every baseline is called as fn(context, n, times, background=...) (see baselines.py).
 BASELINES = {"background_only": background_only, "persistence": persistence,

@@ -19,7 +19,7 @@ import numpy as np
 
 from ..config import ScoreConfig
 from ..errors import KinecastError
-from .tracks import FOREGROUND_FRACTION, centroid_track, foreground, median_background
+from ..frames.tracks import FOREGROUND_FRACTION, centroid_track, foreground, median_background
 
 # Frames are intensities in [0, 1] (project convention), so the peak signal (MAX, the data range) is 1.
 DATA_RANGE = 1.0

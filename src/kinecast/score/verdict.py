@@ -29,24 +29,17 @@ import re
 
 import numpy as np
 
-from ..config import Config
+from ..config import FLOOR_MARGIN, Config
 from ..errors import KinecastError
 from .evaluate import BASELINES, evaluate, summarize
 
-__all__ = ["CAUTION", "beats", "judge_recordings", "verdict"]
+__all__ = ["CAUTION", "beats", "judge_recordings", "judge_run", "verdict"]
 
 CAUTION = ("Forecasts are statistical extrapolations from the frames shown, not measurements; do not "
            "use them for safety-critical control.")
 # The floor every model must clear, and the baselines it must also beat over the shortest span to be
 # called good (the strongest simple forecasts of short-term motion).
 FLOOR = "background_only"
-# To beat the floor a model's MSE must be below this × the bare background's, not merely below it:
-# a forecast that draws a blurred mean of the motion (a model that learned nothing) already scores
-# a little under the background, because the temporal mean is the best constant predictor under
-# squared error (least squares). Our choice from measured 5-minute fits at 64 px: runs that had not
-# found the object scored 0.93-1.11× the background (pendulum, air table), runs that track it
-# 0.46-0.59× (pendulum, spring).
-FLOOR_MARGIN = 0.8
 SHORT_RIVALS = ("persistence", "flow_warp")
 # A method that shows no object for more than this share of the true objects (per-object matching)
 # has no position to compare: its position error counts as infinite.
@@ -222,3 +215,23 @@ def judge_recordings(model, cfg: Config, recs, window: int, device="cpu") -> dic
     summaries = {label: {method: _mean_summary(items) for method, items in methods.items()}
                  for label, methods in collected.items()}
     return {**verdict(summaries), "summaries": summaries, "recordings": len(recs)}
+
+
+def judge_run(run, recs, window: int, device="cpu") -> dict:
+    """The verdict on ``recs`` (held-out trials) for the best weights of the run folder ``run``.
+
+    What :func:`kinecast.train.fit` stores as ``verdict`` in summary.json when it is given this
+    function as ``judge``: :func:`judge_recordings` without its per-recording detail, plus
+    ``judged_on`` (the recordings' sources) and ``scores`` {span: {method: facts}}.
+    """
+    from ..train.checkpoint import load_run
+
+    best, cfg = load_run(run, device)  # the run's own config.toml and best weights
+    judged = judge_recordings(best, cfg, recs, window, device)
+    keep = ("level", "ok", "text", "beats", "mse_ratio", "judged_at")
+    out = {k: judged[k] for k in keep if k in judged}
+    out["judged_on"] = [str(r.source) for r in recs]
+    facts = ("mean_mse", "mean_position_error_px", "object_horizon_frames")
+    out["scores"] = {label: {m: {f: v[f] for f in facts if f in v} for m, v in methods.items()}
+                     for label, methods in judged["summaries"].items()}
+    return out

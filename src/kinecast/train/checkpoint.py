@@ -178,7 +178,7 @@ def load_run(run: str | Path, device: str | torch.device = "cpu"):
     check_run_folder(run)
     cfg = cfgmod.load(run / CONFIG)
     tensors, meta = load_tensors(run / WEIGHTS)
-    model = build_model(cfg, channels_of(cfg))
+    model = build_model(cfg, cfg.data.channels)
     restore_model(model, tensors, meta, run / WEIGHTS)
     return model.to(device).eval(), cfg
 
@@ -229,10 +229,6 @@ def weights_mismatch(saved: dict[str, torch.Tensor], expected: dict[str, torch.T
                     f"builds {tuple(want.shape)}")
     extra = sorted(set(saved) - set(expected))
     return f"the file has tensor {extra[0]} that the config does not build" if extra else None
-
-
-def channels_of(cfg: cfgmod.Config) -> int:
-    return 1 if cfg.data.color == "grey" else 3
 
 
 def write_summary(run: Path, summary: dict) -> None:

@@ -29,6 +29,7 @@ def configure(parser) -> None:
 
 
 def run(args, cfg) -> int:
+    from ..score.verdict import judge_run
     from .loop import fit
 
     if args.resume:
@@ -58,7 +59,7 @@ def run(args, cfg) -> int:
     cfg = cfgmod.apply_overrides(cfg, sugar)
     more = bool(args.resume) and (args.budget is not None or args.steps is not None)
     summary = fit(args.paths, out, cfg, resume=bool(args.resume), overwrite=args.overwrite, more=more,
-                  show_progress=not args.quiet)
+                  show_progress=not args.quiet, judge=judge_run)
     if summary:
         print(f"run written to {out}: {summary['steps']} steps in {summary['elapsed_s']:.0f} s, "
               f"best validation MSE {summary['best_val_mse']:.4g} ({summary['stop_reason']})")

@@ -18,7 +18,7 @@ from ..config import Config
 from ..errors import KinecastError
 from ..frames import Recording, read_recording
 from ..frames.images import expand_trials
-from ..score import tracks
+from ..frames import tracks
 
 
 def expand_paths(paths: list[str | Path]) -> list[Path]:

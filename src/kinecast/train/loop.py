@@ -20,14 +20,13 @@ import torch
 from .. import config as cfgmod
 from ..errors import KinecastError
 from ..fileio import check_can_create
-from ..model import build_model, to_model_time
+from ..model import build_model, time_scale_from_times, to_model_time
 from ..model.staged import autoencoder_terms, dynamics_terms
 from . import checkpoint as ck
 from . import stages as S
 from . import distributed as D
 from .progress import Progress, duration, untrained_reason
 from .lock import RunLock
-from ..score.verdict import FLOOR_MARGIN
 from .data import WindowSampler, expand_paths, load_recordings, median_background, split_train_val
 from .schedule import Curriculum, kl_weight, learning_rate, progress
 
@@ -92,21 +91,6 @@ def _validate_and_keep(model, val_sampler, val_window: int, cfg, cur: Curriculum
     return val
 
 
-def _judge(run: Path, recs, window: int, device) -> dict:
-    """The verdict on ``recs`` (held-out trials) for the run's best weights (see score.verdict)."""
-    from ..score.verdict import judge_recordings
-
-    best, cfg = ck.load_run(run, device)  # the run's own config.toml and best weights
-    judged = judge_recordings(best, cfg, recs, window, device)
-    keep = ("level", "ok", "text", "beats", "mse_ratio", "judged_at")
-    out = {k: judged[k] for k in keep if k in judged}
-    out["judged_on"] = [str(r.source) for r in recs]
-    facts = ("mean_mse", "mean_position_error_px", "object_horizon_frames")
-    out["scores"] = {label: {m: {f: v[f] for f in facts if f in v} for m, v in methods.items()}
-                     for label, methods in judged["summaries"].items()}
-    return out
-
-
 def _extend_budget(tc: cfgmod.TrainConfig, meta: dict) -> None:
     """Turn ``tc.steps`` / ``tc.budget`` asked for on resume (more training) into totals from the
     run's start: what the checkpoint ``meta`` has done so far plus the extra."""
@@ -119,7 +103,7 @@ def _extend_budget(tc: cfgmod.TrainConfig, meta: dict) -> None:
 
 
 def fit(paths, out, cfg: cfgmod.Config | None = None, *, resume: bool = False, overwrite: bool = False,
-        more: bool = False, fault_hook=None, show_progress: bool = True) -> dict:
+        more: bool = False, fault_hook=None, show_progress: bool = True, judge=None) -> dict:
     """Train a latent ODE model on recordings and write a run folder.
 
     Parameters
@@ -144,6 +128,11 @@ def fit(paths, out, cfg: cfgmod.Config | None = None, *, resume: bool = False, o
         Replace an existing run folder.
     fault_hook : callable, optional
         ``fault_hook(step) -> bool``; True injects a non-finite loss at that step (tests).
+    judge : callable, optional
+        ``judge(run, recordings, window, device) -> dict``: the verdict on the held-out recordings
+        for the run's best weights, stored as ``verdict`` in the summary (the train verb passes
+        :func:`kinecast.score.verdict.judge_run`; training itself imports no scoring). None: no
+        verdict (``verdict`` is null).
 
     Returns
     -------
@@ -152,10 +141,10 @@ def fit(paths, out, cfg: cfgmod.Config | None = None, *, resume: bool = False, o
     """
     with RunLock(out, defer=True) as run_lock:  # taken once the folder is checked; released however fit ends
         return _fit(paths, out, cfg, run_lock, resume=resume, overwrite=overwrite, more=more,
-                    fault_hook=fault_hook, show_progress=show_progress)
+                    fault_hook=fault_hook, show_progress=show_progress, judge=judge)
 
 
-def _fit(paths, out, cfg, run_lock: RunLock, *, resume, overwrite, more, fault_hook, show_progress) -> dict:
+def _fit(paths, out, cfg, run_lock: RunLock, *, resume, overwrite, more, fault_hook, show_progress, judge) -> dict:
     """:func:`fit`; its main process takes ``run_lock`` before anything is written to the run folder."""
     run = Path(out)
     resumed = None
@@ -183,9 +172,8 @@ def _fit(paths, out, cfg, run_lock: RunLock, *, resume, overwrite, more, fault_h
     # each recording's path as given (expanded); a single recording split in two is named by its slices
     where = {id(r): str(p) for r, p in zip(recs, paths)}
     k = cfg.model.velocity_frames
-    if cfg.solver.time_scale == 0:
-        median_dt = float(np.median(np.concatenate([np.diff(r.times) for r in recs])))
-        cfg.solver.time_scale = cfg.solver.units_per_frame / median_dt
+    if cfg.solver.time_scale == 0:  # resolved on the private copy; the run's config.toml keeps it
+        cfg.solver.time_scale = time_scale_from_times([r.times for r in recs], cfg.solver.units_per_frame)
     train_recs, val_recs = split_train_val(recs, cfg, min_len=max(cfg.train.window_start, k + 1))
     sampler = WindowSampler(train_recs, k, cfg.train.seed + ctx.rank)
     longest = sampler.longest_window()
@@ -198,7 +186,7 @@ def _fit(paths, out, cfg, run_lock: RunLock, *, resume, overwrite, more, fault_h
     total_frames = sum(r.n_frames for r in train_recs)
 
     # --- model ----------------------------------------------------------------------------
-    channels = ck.channels_of(cfg)
+    channels = cfg.data.channels
     model = build_model(cfg, channels)
     background = median_background(train_recs) if cfg.model.background else None
     if background is not None:
@@ -320,7 +308,8 @@ def _fit(paths, out, cfg, run_lock: RunLock, *, resume, overwrite, more, fault_h
             beta = cfg.train.positions_kl * local if stage_state.sampling() else 0.0
             terms = autoencoder_terms(model, frames, sample=stage_state.sampling(), beta=beta,
                                       repulsion=cfg.train.keypoint_repulsion,
-                                      coverage=cfg.train.keypoint_coverage)
+                                      coverage=cfg.train.keypoint_coverage,
+                                      shape=cfg.train.heat_map_shape if stage_state.sampling() else 0.0)
             errors = D.mean_over_ranks(ctx, [float(terms["mse"]), float(terms["bg_mse"])])
             if stage_state.observe(*errors, cfg.train.escape_ratio, step):
                 report.note(f"kinecast: step {step}: the position encoder found the moving object "
@@ -385,7 +374,7 @@ def _fit(paths, out, cfg, run_lock: RunLock, *, resume, overwrite, more, fault_h
                 report.update(step, elapsed_before + time.time() - t0, stage, window, val, bg_val, event=True)
                 # never stop a run that does not clearly beat drawing the bare background (the verdict's
                 # floor): one that draws the mean frame scores just under it (0.99x, measured)
-                if cur.done and not cur.best < FLOOR_MARGIN * bg_val:
+                if cur.done and not cur.best < cfgmod.FLOOR_MARGIN * bg_val:
                     cur.done = False
             good = (copy.deepcopy(model.state_dict()), copy.deepcopy(opt.state_dict()))
         if ctx.main and step % cfg.train.checkpoint_every == 0:
@@ -405,7 +394,7 @@ def _fit(paths, out, cfg, run_lock: RunLock, *, resume, overwrite, more, fault_h
             ck.save_tensors(run / ck.WEIGHTS, model.state_dict(), {"step": step, "val_mse": val})
             cur.best = val if math.isfinite(val) else cur.best
         save_resume()
-        judged = _judge(run, val_recs or train_recs[-1:], longest, ctx.device)
+        judged = judge(run, val_recs or train_recs[-1:], longest, ctx.device) if judge else None
         from ..plots import loss_curve
 
         loss_curve(rows, run / ck.LOSS_PLOT, overwrite=True)

@@ -25,7 +25,7 @@ import torch
 
 from ..model import build_model
 from ..model.staged import encode_all
-from ..score import tracks
+from ..frames import tracks
 
 POSITIONS, DYNAMICS, JOINT = "positions", "dynamics", "joint"
 NUMBER = {POSITIONS: 1, DYNAMICS: 2, JOINT: 3}  # the stage column of log.csv

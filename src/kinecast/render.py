@@ -33,8 +33,8 @@ import matplotlib
 import numpy as np
 from tqdm import tqdm
 
-from ..errors import KinecastError
-from ..fileio import atomic_path, write_bytes
+from .errors import KinecastError
+from .fileio import atomic_path, write_bytes
 
 # --- fixed facts ---------------------------------------------------------------------------------
 ERROR_SCALE = 1.0   # |truth - prediction| of intensities in [0, 1] is at most 1
