@@ -129,7 +129,8 @@ def one_run(rig: str, look: str, seed: int, recipe: str, budget: str, work: Path
     row = {"rig": rig, "look": look, "seed": seed, "recipe": recipe, "budget": budget, "sets": sets,
            "layout": MODEL_LAYOUT, "defaults": DEFAULTS, "tracker": TRACKER, "rescored": rescore,
            "steps": summary["steps"], "train_s": summary.get("elapsed_s") if rescore else round(time.time() - t0, 1),
-           "stop": summary["stop_reason"], "faults": summary.get("faults", 0), "verdict": (summary.get("verdict") or {}).get("level"),
+           "stop": summary["stop_reason"], "faults": summary.get("faults", 0),
+           "spread_scale": summary.get("spread_scale"), "verdict": (summary.get("verdict") or {}).get("level"),
            "positions_found": summary.get("positions_found"), "still_keypoints": summary.get("still_keypoints"),
            "date": datetime.now(timezone.utc).isoformat(timespec="seconds"),
            "load": os.getloadavg()[0], **score_run(run, trials[TRAIN_TRIALS:])}

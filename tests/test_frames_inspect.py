@@ -240,3 +240,24 @@ def test_folder_of_trials_with_an_unreadable_trial(tmp_path, capsys):
     assert lines[0].startswith("a  30 frames") and lines[1].startswith("b  cannot read: ")
     assert "f_004.png" in lines[1] and "1 unreadable" in lines[2]
     assert err.count("\n") == 1 and "f_004.png" in err
+
+
+def test_camera_check_judges_the_picture_not_its_letterbox():
+    # A static wide picture (128 x 40 source, 32 x 10 at model size) whose padding rows have been
+    # filled with a pattern that pans 5 px a frame: judged without the padding, every edge pixel is
+    # explained by the background (share 1.0); with the padding it would look like a moving camera.
+    from kinecast.frames.inspect import camera_check
+    from kinecast.frames.preprocess import square_geometry
+    from kinecast.frames.recording import Recording
+
+    geo = square_geometry(128, 40, 32)
+    x = np.arange(32)
+    frames = np.stack([np.tile(0.5 + 0.4 * np.sin((x + 5 * i) / 3.0), (32, 1)) for i in range(8)])
+    frames = frames[:, None].astype(np.float32)
+    picture = np.tile(np.linspace(0.2, 0.8, 32, dtype=np.float32), (geo.content_h, 1))
+    frames[:, 0, geo.top:geo.top + geo.content_h, :] = picture
+    rec = Recording(frames, np.arange(8) / 30.0, np.zeros(8, bool), "wide", {"source_size": [128, 40]})
+    check = camera_check(rec)
+    assert check["edge_share"] == 1.0 and not check["moves"]
+    unpadded = Recording(frames, rec.times, rec.missing, "square")
+    assert camera_check(unpadded)["edge_share"] < EDGE_SHARE_MIN

@@ -130,13 +130,13 @@ def test_loss_curve_bad_logs_name_file_and_problem(tmp_path):
 def test_metric_curves_panels_lines_and_threshold(tmp_path):
     t = np.arange(1, 21) / 10.0
     per_method = {
-        "model": {"mse": t / 10, "psnr": np.r_[np.inf, 30 - t[1:]], "ssim": 1 - t / 4, "pos_err_px": t * 2},
+        "model": {"mse": t / 10, "psnr": np.r_[np.inf, 30 - t[1:]], "ssim": 1 - t / 4, "position_error_px": t * 2},
         "persistence": {"mse": t / 5, "ssim": 1 - t / 2},
     }
     fig = P.metric_curves_figure(per_method, t, threshold=0.8)
     labels = [ax.get_ylabel() for ax in fig.axes if ax.get_visible()]
-    assert labels == [P.METRIC_LABELS[m] for m in ("mse", "psnr", "ssim", "pos_err_px")]
-    assert "(dB)" in labels[1] and "(px)" in labels[3]
+    assert labels == [P.METRIC_LABELS[m] for m in ("mse", "psnr", "ssim", "position_error_px")]
+    assert "(dB)" in labels[1] and "(model px)" in labels[3]
     ssim_ax = fig.axes[2]
     dashed = [ln for ln in ssim_ax.get_lines() if ln.get_linestyle() == "--"]
     assert len(dashed) == 1 and set(dashed[0].get_ydata()) == {0.8}
@@ -216,7 +216,7 @@ def test_metric_plot_horizon_from_zero_units_and_legend_off_the_curves():
         assert ax.get_xlim()[0] == 0.0 and ax.get_xlabel() == "forecast horizon (s)"
         np.testing.assert_allclose(ax.get_lines()[0].get_xdata(), times - 2.0, atol=1e-12)
         assert ax.get_legend() is None
-    assert "(px)" in fig.axes[2].get_ylabel() and "squared" in fig.axes[0].get_ylabel()
+    assert "(model px)" in fig.axes[2].get_ylabel() and "squared" in fig.axes[0].get_ylabel()
     (legend,) = fig.legends
     texts = [t.get_text() for t in legend.get_texts()]
     assert "last frame held (baseline)" in texts and "persistence" not in texts
@@ -258,3 +258,11 @@ def test_metric_curves_show_band_coverage_against_its_nominal_share():
     assert cov_ax.get_ylabel() == P.METRIC_LABELS["band_coverage"]
     dotted = [ln for ln in cov_ax.get_lines() if ln.get_linestyle() == ":"]
     assert len(dotted) == 1 and set(dotted[0].get_ydata()) == {0.9}
+
+
+def test_every_scored_metric_has_a_plot_label_in_order():
+    # one list of metrics: what the scorer writes per frame is what the plots know how to label
+    from kinecast.score.evaluate import MEAN_KEYS
+
+    assert [m for m in P.METRIC_ORDER if m in MEAN_KEYS] == list(MEAN_KEYS)
+    assert all(m in P.METRIC_LABELS for m in P.METRIC_ORDER)

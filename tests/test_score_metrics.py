@@ -9,7 +9,7 @@ from skimage.metrics import mean_squared_error, peak_signal_noise_ratio, structu
 from skimage.transform import resize
 
 from kinecast.errors import KinecastError
-from kinecast.score import band_coverage, frame_metrics, mae, mse, psnr, ssim, valid_horizon
+from kinecast.score import band_coverage, frame_metrics, mae, mse, position_coverage, psnr, ssim, valid_horizon
 from test_score_tracks import render_disc
 
 
@@ -161,3 +161,42 @@ def test_band_coverage_rejects_bad_input():
         band_coverage(np.zeros((1, 2, 1, 4, 4)), np.zeros((2, 1, 4, 4)))
     with pytest.raises(KinecastError):
         band_coverage(np.zeros((5, 2, 1, 4, 4)), np.zeros((2, 1, 4, 4)), band=0.0)
+
+
+def test_band_coverage_over_a_region_counts_only_its_pixels():
+    # exact by construction: truth at the samples' centre on the left half (always inside the band),
+    # far outside every sample on the right half (never inside)
+    rng = np.random.default_rng(2)
+    samples = rng.normal(0.0, 1.0, (50, 3, 1, 8, 8))
+    truth = np.zeros((3, 1, 8, 8))
+    truth[..., 4:] = 10.0
+    left = np.zeros((3, 8, 8), bool)
+    left[..., :4] = True
+    np.testing.assert_array_equal(band_coverage(samples, truth, 0.9, region=left), [1.0, 1.0, 1.0])
+    np.testing.assert_array_equal(band_coverage(samples, truth, 0.9, region=~left), [0.0, 0.0, 0.0])
+    empty = left.copy()
+    empty[1] = False
+    got = band_coverage(samples, truth, 0.9, region=empty)
+    assert got[0] == 1.0 and np.isnan(got[1])
+
+
+@pytest.mark.parametrize("spread, sigma_ratio", [("calibrated", 1.0), ("over-confident", 1 / 3)])
+def test_position_coverage_of_discs_follows_the_rayleigh_law(spread, sigma_ratio):
+    # The truth and S samples are discs whose centres scatter around a common point, the truth with
+    # std sigma per axis, the samples with sigma_ratio·sigma. Distances in 2-D from the centre follow
+    # the Rayleigh law, P(R <= r) = 1 − exp(−r² / 2s²) (handbook). The region's radius is the 0.9
+    # quantile of the samples' distances from their mean, ≈ sigma_ratio·sigma·sqrt(2 ln 10); the truth
+    # sits at distance ~ Rayleigh(sigma·sqrt(1 + sigma_ratio²/S)) from that mean, so the expected
+    # coverage is 1 − 10^(−sigma_ratio² / (1 + sigma_ratio²/S)). Frames are independent: binomial
+    # tolerance, 4 standard deviations plus 0.03 for the quantile's own sampling error (S = 30).
+    rng = np.random.default_rng(3)
+    frames, s_count, sigma = 100, 30, 2.0
+    centre = rng.uniform(12, 20, (frames, 2))
+    truth = render_disc(centre + rng.normal(0, sigma, (frames, 2)), size=32, radius=3.0)
+    samples = np.stack([render_disc(centre + rng.normal(0, sigma_ratio * sigma, (frames, 2)), size=32,
+                                    radius=3.0) for _ in range(s_count)])
+    background = np.full((1, 32, 32), 0.2)
+    got = position_coverage(samples, truth, background, 0.9)
+    expected = 1 - 10 ** (-sigma_ratio ** 2 / (1 + sigma_ratio ** 2 / s_count))
+    assert got.shape == (frames,) and set(np.unique(got)) <= {0.0, 1.0}
+    assert abs(got.mean() - expected) < 4 * np.sqrt(expected * (1 - expected) / frames) + 0.03, spread

@@ -9,6 +9,7 @@ import csv
 import json
 import re
 
+import imageio.v3 as iio
 import numpy as np
 import pytest
 from skimage.metrics import peak_signal_noise_ratio, structural_similarity
@@ -68,6 +69,18 @@ def test_score_writes_every_method_and_matches_skimage(setup, tmp_path, capsys):
     assert "not measurements" in summary["verdict"]["text"]
     printed = capsys.readouterr().out
     assert printed.index(summary["verdict"]["text"]) < printed.index("| method")  # verdict first
+    # with samples: the coverage sentence, and the share of frames it reports is the per-frame list's
+    assert "central 90 % region" in printed
+    per = [c for c in summary["position_coverage_per_frame"] if c is not None]
+    model = summary["methods"]["model"]
+    if per:
+        assert model["mean_position_coverage"] == pytest.approx(np.mean(per))
+    assert 0.0 <= model["mean_band_coverage"] <= 1.0
+    # units: the recording's own pixels per model pixel (a square picture shrunk to 32 px frames)
+    width = iio.imread(sorted(rec_path.glob("*.png"))[0]).shape[1]
+    assert summary["recording_px_per_model_px"] == pytest.approx(width / 32)
+    err = model["mean_position_error_px"]  # null in summary.json where the model drew no object
+    assert ("pixels of the recording" in printed) == (err is not None and bool(np.isfinite(err)))
 
 
 def test_pair_mode_scores_two_frame_sources(setup, tmp_path):
@@ -96,7 +109,7 @@ def test_report_is_one_self_contained_page(setup, tmp_path):
         assert f"<td>{method_label(method)}</td>" in page
     # section titles in words, numbers with units, raw keys only under "Technical details"
     assert "Scores: " not in page and "<h2>Forecast scores on trial_001</h2>" in page
-    for unit in ("dB", "px", "s"):
+    for unit in ("dB", "model px", "s"):
         assert re.search(rf"<td>[\d.]+ {unit}</td>", page), unit
     assert "the last 20 frames" in page and re.search(r"\(\d+(\.\d+)? s\)", page)  # horizons in s
     technical = page.index("<h2>Technical details</h2>")

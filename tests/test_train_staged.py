@@ -65,6 +65,11 @@ def test_positions_stage_finds_the_moving_object(rig, tmp_path):
     assert saved["recipe"] == "staged" and saved["verdict"]["level"] in ("good", "weak", "failed")
     assert saved["dynamics_window"] >= 9
     assert 0 < saved["positions_found_step"] < 0.75 * 400  # inside the positions stage
+    # the sampled futures' spread scale was fitted on the validation trial and stored with the weights
+    from kinecast.train import load_run
+
+    assert saved["spread_scale"] is not None and 0.01 <= saved["spread_scale"] <= 1000
+    assert float(load_run(tmp_path / "run")[0].spread_scale) == pytest.approx(saved["spread_scale"], rel=1e-6)
 
 
 def test_a_scene_where_nothing_moves_is_not_claimed_found(rig, tmp_path, capsys):

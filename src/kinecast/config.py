@@ -162,6 +162,11 @@ class TrainConfig:
     heat_map_shape: float = _opt(1e-3, "staged, keypoint encoder: weight of a term that keeps each heat map a "
                                  "bump about one cell wide once the object is found, so keypoint positions "
                                  "move smoothly between cells instead of snapping to them; 0 = off", lo=0.0)
+    # 16: enough draws for the 90 % quantile of each frame's spread to be stable to ~10 %, at a cost
+    # of a second or two after training (latent rollouts only, nothing decoded)
+    calibration_samples: int = _opt(16, "futures drawn on each validation trial after training to fit the "
+                                    "spread scale of sampled futures (the truth inside their central "
+                                    "score.band region as often as the band says); 0 = no scale", lo=0, hi=1000)
     still_keypoint_px: float = _opt(1.0, "staged, keypoint encoder: a keypoint whose encoded position moves by "
                                     "less than this (rms over the training frames, model pixels) when the "
                                     "dynamics stage starts is held still by the field (e.g. one parked on a "

@@ -63,17 +63,18 @@ TERM_LABELS = {
     "beta": "KL weight",
     "window": "frames per training window",
 }
-METRIC_ORDER = ("mse", "mae", "psnr", "ssim", "object_ssim", "pos_err_px", "position_error_px",
-                "matched_error_px", "band_coverage")
+# the per-frame metrics of kinecast.score.evaluate (MEAN_KEYS), in the order they are plotted, and the
+# band coverage of sampled futures; tests/test_plots.py checks that every scored metric has a label
+METRIC_ORDER = ("mse", "mae", "psnr", "ssim", "object_ssim", "position_error_px", "matched_error_px",
+                "band_coverage")
 METRIC_LABELS = {
     "mse": f"mean squared error\n({INTENSITY}, squared)",
     "mae": f"mean absolute error\n({INTENSITY})",
     "psnr": "peak signal-to-noise ratio (dB)",
     "ssim": "structural similarity, SSIM\n(no unit; 1 = identical)",
     "object_ssim": "SSIM around the objects\n(no unit; 1 = identical)",
-    "pos_err_px": "object position error (px)",
-    "position_error_px": "object position error (px)",
-    "matched_error_px": "matched-object position error (px)",
+    "position_error_px": "object position error\n(model px)",
+    "matched_error_px": "matched-object position error\n(model px)",
     "band_coverage": "share of true pixels inside the\nsampled futures' band (no unit)",
 }
 # what a reader sees for each scoring method (summary.json and per_frame.csv keep the short names)
@@ -354,7 +355,7 @@ def metric_curves(per_method: Mapping[str, Mapping[str, np.ndarray]], times: np.
     Parameters
     ----------
     per_method : mapping
-        ``{method: {metric: (T,) array}}``; metrics like mse, mae, psnr, ssim, pos_err_px, whichever
+        ``{method: {metric: (T,) array}}``; metrics like mse, mae, psnr, ssim, position_error_px, whichever
         are present. Non-finite values (the infinite PSNR of a perfect frame) leave gaps.
     times : ndarray, shape (T,)
         Time of each scored frame in seconds (the recording's clock).

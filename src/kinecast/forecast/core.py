@@ -68,9 +68,10 @@ def context_start_for(rec: Recording, k: int, start: int | None) -> int:
                                         f"1..{rec.n_frames} ({rec.n_frames} is just after the last frame)")
     if start < 1:
         raise KinecastError(rec.source, f"start frame {start} is outside 1..{rec.n_frames}")
-    for s in range(start - k, -1, -1):
-        if not rec.missing[s:s + k].any():
-            return s
+    starts = rec.present_runs(k)
+    starts = starts[starts <= start - k]
+    if len(starts):
+        return int(starts[-1])
     raise KinecastError(rec.source, f"no {k} consecutive present frames before frame {start}")
 
 
@@ -184,10 +185,10 @@ def resample(model, cfg: Config, rec: Recording, times: np.ndarray, device="cpu"
     Conditions on the first ``k`` present frames and integrates to every requested time.
     """
     k = cfg.model.velocity_frames
-    starts = [s for s in range(rec.n_frames - k + 1) if not rec.missing[s:s + k].any()]
-    if not starts:
+    starts = rec.present_runs(k)
+    if not len(starts):
         raise KinecastError(rec.source, f"no {k} consecutive present frames to start from")
-    return predict_from(model, cfg, rec, starts[0], np.asarray(times, dtype=np.float64), 1, device)
+    return predict_from(model, cfg, rec, int(starts[0]), np.asarray(times, dtype=np.float64), 1, device)
 
 
 def gaps(missing: np.ndarray) -> list[tuple[int, int]]:
@@ -219,16 +220,16 @@ def fill(model, cfg: Config, rec: Recording, device="cpu") -> tuple[np.ndarray, 
     k = cfg.model.velocity_frames
     out = rec.frames.copy()
     filled = np.zeros(rec.n_frames, dtype=bool)
+    runs = rec.present_runs(k)
     for a, b in gaps(rec.missing):
         times = rec.times[a:b]
         preds, weights = [], []
-        before = [s for s in range(a - k, -1, -1) if not rec.missing[s:s + k].any()]
-        after = [s for s in range(b, rec.n_frames - k + 1) if not rec.missing[s:s + k].any()]
-        if before:
-            preds.append(predict_from(model, cfg, rec, before[0], times, 1, device).mean)
+        before, after = runs[runs <= a - k], runs[runs >= b]
+        if len(before):  # the k present frames closest before the gap
+            preds.append(predict_from(model, cfg, rec, int(before[-1]), times, 1, device).mean)
             weights.append(rec.times[b] - times if b < rec.n_frames else np.ones_like(times))
-        if after:
-            preds.append(predict_from(model, cfg, rec, after[0], times, 1, device).mean)  # backward in time
+        if len(after):  # and after it
+            preds.append(predict_from(model, cfg, rec, int(after[0]), times, 1, device).mean)  # backward in time
             weights.append(times - rec.times[a - 1] if a > 0 else np.ones_like(times))
         if not preds:
             raise KinecastError(rec.source, f"cannot fill frames {a}..{b - 1}: no {k} present frames on either side")

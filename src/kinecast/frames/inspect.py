@@ -8,7 +8,7 @@ import cv2
 import numpy as np
 
 from ..config import Config, DataConfig
-from .preprocess import describe_geometry
+from .preprocess import describe_geometry, recording_geometry
 from .read import read_recording
 from .recording import Recording
 
@@ -169,11 +169,15 @@ def camera_check(rec: Recording) -> dict | None:
         frames), ``edge_share`` (the same in the EDGE_BAND along the sides; it decides),
         ``noise`` (σ used, of 1), ``moves`` (edge share below EDGE_SHARE_MIN), and when it moves
         ``drift`` and ``drift_steadiness`` (:func:`global_drift`; None otherwise, as on a still
-        picture they would follow the moving object). None with fewer than 3 real frames.
+        picture they would follow the moving object). None with fewer than 3 real frames. A
+        letterboxed (non-square) picture is judged without its padding.
     """
     real = rec.frames[~rec.missing]
     if len(real) < 3:
         return None
+    geo = recording_geometry(rec.info, rec.size[1])
+    if geo is not None and geo.padded:  # judge the picture, not the letterbox padding around it
+        real = geo.crop(real)
     grey = _grey(real[:CAMERA_CHECK_FRAMES])
     sigma = noise_sigma(grey)
     if len(real) > CAMERA_CHECK_FRAMES:

@@ -193,11 +193,17 @@ def square_geometry(width: int, height: int, size: int) -> SquareGeometry:
     return SquareGeometry(int(width), int(height), int(size), cw, ch, (size - cw) // 2, (size - ch) // 2)
 
 
-def describe_geometry(info: dict, size: int) -> str | None:
-    """:meth:`SquareGeometry.describe` for a recording's picture (its ``roi``, else its
-    ``source_size``, from the recording's ``info``); None when ``info`` names no source size."""
+def recording_geometry(info: dict, size: int) -> SquareGeometry | None:
+    """The :class:`SquareGeometry` of a recording's picture (its ``roi``, else its ``source_size``,
+    from the recording's ``info``); None when ``info`` names no source size."""
     region = info.get("roi") or ([0, 0, *info["source_size"]] if info.get("source_size") else None)
-    return square_geometry(int(region[2]), int(region[3]), size).describe() if region else None
+    return square_geometry(int(region[2]), int(region[3]), size) if region else None
+
+
+def describe_geometry(info: dict, size: int) -> str | None:
+    """:meth:`SquareGeometry.describe` for a recording's picture; None when ``info`` names no source size."""
+    geo = recording_geometry(info, size)
+    return geo.describe() if geo else None
 
 
 def pad_square(small: np.ndarray, geo: SquareGeometry) -> np.ndarray:

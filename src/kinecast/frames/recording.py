@@ -70,6 +70,22 @@ class Recording:
         """Median interval between consecutive slots in seconds."""
         return float(np.median(np.diff(self.times))) if self.n_frames > 1 else 0.0
 
+    def present_runs(self, k: int) -> np.ndarray:
+        """Every slot ``s`` (ascending) where slots ``s .. s+k-1`` are all present frames.
+
+        >>> rec = Recording(np.zeros((6, 1, 2, 2), np.float32), np.arange(6.0),
+        ...                 np.array([0, 0, 1, 0, 0, 0], bool), "demo")
+        >>> rec.present_runs(2).tolist()
+        [0, 3, 4]
+        """
+        n = self.n_frames - int(k) + 1
+        if n <= 0:
+            return np.zeros(0, dtype=int)
+        ok = np.ones(n, dtype=bool)
+        for j in range(int(k)):
+            ok &= ~self.missing[j:j + n]
+        return np.flatnonzero(ok)
+
     def slice(self, start: int, stop: int) -> "Recording":
         """Slots ``start:stop`` as a new Recording sharing the source description."""
         info = dict(self.info)

@@ -38,6 +38,15 @@ def _reparam(mean: torch.Tensor, logvar: torch.Tensor, generator: torch.Generato
     return mean + (0.5 * logvar).exp() * eps
 
 
+def initial_state(dist, sample: bool, generator: torch.Generator | None = None) -> torch.Tensor:
+    """[s0, v0] [B, 2q] from ``dist`` = (s_mean, s_logvar, v_mean, v_logvar) (``encode_dist``): a
+    reparameterised draw of s0 then v0 with ``sample``, else the means."""
+    s_mean, s_logvar, v_mean, v_logvar = dist
+    if sample:
+        return torch.cat([_reparam(s_mean, s_logvar, generator), _reparam(v_mean, v_logvar, generator)], dim=1)
+    return torch.cat([s_mean, v_mean], dim=1)
+
+
 def fd_velocity(m: torch.Tensor, t: torch.Tensor) -> torch.Tensor:
     """Velocity at t[0] from positions m[:, 0..2] at times t[0..2] (second-order one-sided
     difference, a handbook formula; for equal steps h it is (−3·m0 + 4·m1 − m2) / 2h). With only
@@ -103,6 +112,9 @@ class LatentODE(nn.Module):
         else:
             self.log_noise = None
         self.register_buffer("background", torch.full((channels, size, size), 0.5))
+        # Sampled futures spread about their mean by this factor (fitted on validation trials after
+        # training, see kinecast.model.calibration; 1 = the posterior's own spread).
+        self.register_buffer("spread_scale", torch.ones(()))
 
     # ----------------------------------------------------------------- background and decoding
     def set_background(self, bg: torch.Tensor | None) -> None:
@@ -177,11 +189,7 @@ class LatentODE(nn.Module):
 
         ``sample`` draws from q(s0) q(v0) (reparameterised); otherwise the means are returned.
         """
-        s_mean, s_logvar, v_mean, v_logvar = self.encode_dist(ctx)
-        if sample:
-            return torch.cat([_reparam(s_mean, s_logvar, generator),
-                              _reparam(v_mean, v_logvar, generator)], dim=1)
-        return torch.cat([s_mean, v_mean], dim=1)
+        return initial_state(self.encode_dist(ctx), sample, generator)
 
     # ---------------------------------------------------------------------------- dynamics
     def integrate(self, state0: torch.Tensor, t: torch.Tensor, weights: Weights | None = None) -> torch.Tensor:
@@ -268,11 +276,8 @@ class LatentODE(nn.Module):
         obs_f = obs.to(frames.dtype)
         n_obs = obs_f.sum().clamp_min(1.0)
 
-        s_mean, s_logvar, v_mean, v_logvar = self.encode_dist(frames, t[:self.k] - t[0])
-        if sample:
-            state0 = torch.cat([_reparam(s_mean, s_logvar), _reparam(v_mean, v_logvar)], dim=1)
-        else:
-            state0 = torch.cat([s_mean, v_mean], dim=1)
+        s_mean, s_logvar, v_mean, v_logvar = dist = self.encode_dist(frames, t[:self.k] - t[0])
+        state0 = initial_state(dist, sample)
         weights = self.field.sample(B, mean=not sample)
         states = self.integrate(state0, t - t[0], weights).transpose(0, 1)  # [B, T, 2q]
         s = states[..., :self.q]
@@ -345,6 +350,7 @@ class LatentODE(nn.Module):
         -------
         frames : Tensor [S, B, N, C, H, W]
         latents : Tensor [S, B, N, 2q]
+            With ``samples`` > 1, spread about their mean by the buffer ``spread_scale``.
         """
         if samples < 1:
             raise ValueError(f"rollout: samples must be at least 1, got {samples}")
@@ -358,6 +364,9 @@ class LatentODE(nn.Module):
         weights = self.field.sample(samples * B, mean=mean_weights, generator=generator)
         states = self.integrate_any(state0, t, weights)  # [N, S·B, 2q]
         latents = states.transpose(0, 1).reshape(samples, B, states.shape[0], 2 * self.q)
+        if samples > 1 and float(self.spread_scale) != 1.0:  # calibrated spread about the samples' mean
+            centre = latents.mean(dim=0, keepdim=True)
+            latents = centre + self.spread_scale * (latents - centre)
         return self.decode(latents[..., :self.q]), latents
 
 

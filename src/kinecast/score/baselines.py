@@ -24,7 +24,7 @@ import numpy as np
 from ..errors import KinecastError
 from ..frames.preprocess import BT601_LUMA
 from ..frames.tracks import (FOREGROUND_FRACTION, centroid_track, foreground, foreground_mask,
-                     median_background)
+                             median_background)
 
 # Farnebäck dense-flow parameters for small model frames (32-128 px): image pyramid halving per level,
 # three levels (a 64 px frame still has an 8 px top level), 9 px averaging window, three iterations

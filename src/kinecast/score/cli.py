@@ -15,10 +15,10 @@ import numpy as np
 
 from ..errors import KinecastError
 from ..fileio import check_can_create, write_text
+from .evaluate import MEAN_KEYS
 
 CAUTION = ("Scores compare statistical extrapolations with held-out frames of this recording; they are "
            "not measurements. Not for safety-critical control; follow your lab's own safety rules.")
-METRICS = ("mse", "mae", "psnr", "ssim", "object_ssim", "position_error_px", "matched_error_px")
 
 
 def configure(parser) -> None:
@@ -55,10 +55,10 @@ def write_scores(out: Path, result: dict, cfg, extra: dict) -> None:
     from ..plots import metric_curves
 
     times = result["times"]
-    rows = ["method,frame,time_s," + ",".join(METRICS)]
+    rows = ["method,frame,time_s," + ",".join(MEAN_KEYS)]
     for method, per in result["per_frame"].items():
         for i, t in enumerate(times):
-            rows.append(f"{method},{i},{t:.6f}," + ",".join(f"{per[m][i]:.6g}" for m in METRICS))
+            rows.append(f"{method},{i},{t:.6f}," + ",".join(f"{per[m][i]:.6g}" for m in MEAN_KEYS))
     write_text(out / "per_frame.csv", "\n".join(rows) + "\n")
     summary = {"caution": CAUTION, **({"verdict": result["verdict"]} if "verdict" in result else {}),
                "frames_scored": int(len(times)), "methods": result["summary"],
@@ -68,19 +68,29 @@ def write_scores(out: Path, result: dict, cfg, extra: dict) -> None:
         summary["periods"] = result["periods"]
     if "coverage" in result:
         summary["band"] = cfg.score.band
-        summary["band_coverage_per_frame"] = [None if not np.isfinite(c) else round(float(c), 4)
-                                              for c in result["coverage"]]
+        for key, name in (("coverage", "band_coverage_per_frame"),
+                          ("position_coverage", "position_coverage_per_frame")):
+            summary[name] = [None if not np.isfinite(c) else round(float(c), 4) for c in result[key]]
     write_text(out / "summary.json", json.dumps(_finite(summary), indent=2) + "\n")
-    shown = {method: {m: per[m] for m in METRICS} for method, per in result["per_frame"].items()}
+    shown = {method: {m: per[m] for m in MEAN_KEYS} for method, per in result["per_frame"].items()}
     if "coverage" in result:  # samples were drawn: how often the truth falls inside their band
         shown["model"]["band_coverage"] = np.asarray(result["coverage"], dtype=np.float64)
     metric_curves(shown, times, out / "metrics.png", threshold=cfg.score.ssim_threshold, overwrite=True,
                   origin=result.get("origin"), band=cfg.score.band if "coverage" in result else None)
 
 
+def recording_px_per_model_px(rec) -> float | None:
+    """Recording pixels per model pixel (the picture, or its ``data.roi`` crop, shrunk to fit the
+    model frame with its aspect ratio kept); None when the recording does not say its source size."""
+    from ..frames.preprocess import recording_geometry
+
+    geo = recording_geometry(rec.info, rec.size[1])
+    return geo.width / geo.content_w if geo else None
+
+
 def table(result: dict) -> str:
     """The summary as a markdown table (printed and shown in the report)."""
-    head = ("| method | mean MSE | mean SSIM | mean PSNR (dB) | position error (px) | valid horizon "
+    head = ("| method | mean MSE | mean SSIM | mean PSNR (dB) | position error (model px) | valid horizon "
             "(object SSIM) | object horizon |")
     lines = [head, "|---|---|---|---|---|---|---|"]
     for method, s in result["summary"].items():
@@ -140,7 +150,7 @@ def _run_model(args, cfg, out: Path) -> int:
     from ..verbs import at_least_one, open_run, with_seed
     from ..render import comparison_columns, contact_sheet, panel_frames, write_frames
     from ..train.checkpoint import load_run
-    from .evaluate import evaluate, holdout_split
+    from .evaluate import coverage_text, evaluate, holdout_split
     from .report import RUN_DIGEST, weights_sha256
     from .verdict import verdict
 
@@ -167,7 +177,9 @@ def _run_model(args, cfg, out: Path) -> int:
         others[Path(other).name or other] = (m2, c2)
     result = evaluate(model, run_cfg, rec, cond_start, first, n, samples, others, device)
     result["verdict"] = verdict({"all": result["summary"]})
+    scale = recording_px_per_model_px(rec)
     write_scores(out, result, run_cfg, {"run": str(Path(args.run).resolve()), RUN_DIGEST: digest,
+                                        **({"recording_px_per_model_px": scale} if scale else {}),
                                         "recording": str(args.path), "holdout": holdout,
                                         "context_frames": first - cond_start, "samples": samples,
                                         **({"seed": run_cfg.forecast.seed} if samples > 1 else {})})
@@ -180,6 +192,13 @@ def _run_model(args, cfg, out: Path) -> int:
                   overwrite=True, label=False)
     print(f"verdict ({result['verdict']['level']}): {result['verdict']['text']}\n")
     print(table(result))
+    err = result["summary"]["model"]["mean_position_error_px"]
+    if scale and math.isfinite(err):
+        print(f"position errors are in model pixels ({run_cfg.data.size} px frames); one model pixel is "
+              f"{scale:.3g} pixels of the recording, so the model's {err:.2f} px is {err * scale:.3g} "
+              "recording pixels")
+    if samples > 1:
+        print(coverage_text(result["summary"]["model"], run_cfg.score.band))
     p = result["periods"]
     print(f"dominant period: truth {p['truth_track_s']:.3f} s, model track {p['model_track_s']:.3f} s, "
           f"model latent {p['model_latent_s']:.3f} s")

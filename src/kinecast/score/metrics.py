@@ -287,7 +287,7 @@ def leading_run(good, times, origin: float | None = None) -> tuple[int, float]:
     return frames, seconds
 
 
-def band_coverage(samples, truth, band: float = _DEFAULTS.band) -> np.ndarray:
+def band_coverage(samples, truth, band: float = _DEFAULTS.band, region=None) -> np.ndarray:
     """Share of true pixel values inside the central ``band`` interval of sampled futures, per frame.
 
     The interval at each pixel runs from the ``(1 - band) / 2`` to the ``(1 + band) / 2`` empirical
@@ -300,6 +300,10 @@ def band_coverage(samples, truth, band: float = _DEFAULTS.band) -> np.ndarray:
     truth : array (T, C, H, W)
     band : float in (0, 1]
         ``score.band``.
+    region : bool array (T, H, W), optional
+        Count only these pixels (e.g. :func:`object_region`: where truth or forecast shows an
+        object, so that the static background, where every sample agrees, does not dominate);
+        NaN for a frame whose region is empty.
 
     Returns
     -------
@@ -318,4 +322,50 @@ def band_coverage(samples, truth, band: float = _DEFAULTS.band) -> np.ndarray:
     if not 0.0 < band <= 1.0:
         raise KinecastError("score.band", f"bad value {band!r}: allowed a number in (0, 1]")
     lo, hi = np.quantile(s, [(1.0 - band) / 2.0, (1.0 + band) / 2.0], axis=0)
-    return ((t >= lo) & (t <= hi)).mean(axis=(1, 2, 3))
+    inside = (t >= lo) & (t <= hi)
+    if region is None:
+        return inside.mean(axis=(1, 2, 3))
+    r = np.broadcast_to(np.asarray(region, dtype=bool)[:, None], inside.shape)
+    count = r.sum(axis=(1, 2, 3))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(count > 0, (inside & r).sum(axis=(1, 2, 3)) / np.maximum(count, 1), np.nan)
+
+
+def position_coverage(samples, truth, background, band: float = _DEFAULTS.band) -> np.ndarray:
+    """Per frame, 1.0 if the true object position lies inside the central ``band`` region of the
+    sampled futures' object positions, else 0.0 (NaN where the truth or fewer than two samples show
+    an object).
+
+    Positions are the foreground centroids of :func:`~kinecast.frames.tracks.centroid_track`
+    (model pixels). The central region of a frame is the disc around the samples' mean position
+    whose radius is the ``band`` quantile of the samples' distances from that mean (numpy's
+    default interpolation), so that it holds that share of the samples; averaged over frames the
+    result is the share of frames whose truth the samples cover, ``band`` for calibrated samples.
+
+    Parameters
+    ----------
+    samples : array (S, T, C, H, W), S >= 2
+    truth : array (T, C, H, W)
+    background : array (C, H, W) or None (the per-pixel median of ``truth``)
+    band : float in (0, 1]
+
+    Returns
+    -------
+    ndarray (T,)
+    """
+    s = np.asarray(samples, dtype=np.float64)
+    t = np.asarray(truth, dtype=np.float64)
+    if s.ndim != 5 or s.shape[0] < 2 or s.shape[1:] != t.shape:
+        raise KinecastError("samples", f"expected shape (S>=2, {', '.join(map(str, t.shape))}), got {s.shape}")
+    bg = median_background(t) if background is None else background
+    true_xy = centroid_track(t, bg)                                   # (T, 2)
+    drawn = np.stack([centroid_track(one, bg) for one in s])         # (S, T, 2)
+    out = np.full(t.shape[0], np.nan)
+    for i in range(t.shape[0]):
+        pts = drawn[:, i][np.isfinite(drawn[:, i]).all(axis=1)]
+        if len(pts) < 2 or not np.isfinite(true_xy[i]).all():
+            continue
+        centre = pts.mean(axis=0)
+        radius = np.quantile(np.hypot(*(pts - centre).T), band)
+        out[i] = float(np.hypot(*(true_xy[i] - centre)) <= radius)
+    return out

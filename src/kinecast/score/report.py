@@ -67,7 +67,7 @@ SCORE_COLUMNS = (
     ("mean_psnr", "peak signal-to-noise ratio", "dB"),
     ("mean_ssim", "structural similarity, SSIM (1 = identical)", ""),
     ("mean_object_ssim", "SSIM around the objects (1 = identical)", ""),
-    ("mean_position_error_px", "object position error", "px"),
+    ("mean_position_error_px", "object position error", "model px"),
 )
 # facts about what was scored: summary key -> words (the unit, if any, is added by _score_fact)
 SCORE_FACTS = {
@@ -77,8 +77,10 @@ SCORE_FACTS = {
     "ssim_threshold": "the valid horizon ends where the objects' SSIM falls below",
     "position_threshold_px": "the object horizon ends where the position error exceeds",
     "band": "calibration band (central share of the sampled futures)",
+    "recording_px_per_model_px": "pixels of the recording per model pixel",
 }
-SCORES_HIDDEN = ("caution", "verdict", "methods", "periods", "band_coverage_per_frame")
+SCORES_HIDDEN = ("caution", "verdict", "methods", "periods", "band_coverage_per_frame",
+                 "position_coverage_per_frame")
 PERIOD_NAMES = {"truth_track_s": "the recording's objects", "model_track_s": "the model's forecast objects",
                 "model_latent_s": "the model's latent state"}
 
@@ -181,8 +183,19 @@ def _score_fact(key: str, value) -> str:
         return f"trial {html.escape(value[6:])}"
     if key == "band" and isinstance(value, (int, float)):
         return f"{100 * value:.0f} %"
-    unit = {"context_frames": "frames", "frames_scored": "frames", "position_threshold_px": "px"}.get(key, "")
+    unit = {"context_frames": "frames", "frames_scored": "frames", "position_threshold_px": "model px"}.get(key, "")
     return _fmt(value, unit)
+
+
+def _coverage_cell(v) -> str:
+    """A mean coverage as a percentage, flagged outside ``evaluate.COVERAGE_FLAG``; – when not measured."""
+    from .evaluate import COVERAGE_FLAG
+
+    if not isinstance(v, (int, float)) or v != v:
+        return "–"
+    lo, hi = COVERAGE_FLAG
+    flag = " (too narrow)" if v < lo else " (too wide)" if v > hi else ""
+    return f"{100 * v:.1f} %{flag}"
 
 
 def _horizon(s: dict, kind: str) -> str:
@@ -216,13 +229,15 @@ def _scores_section(folder: Path, run: Path, digest: str) -> tuple[str, str]:
     head = ["method"] + [h for _, h, _ in SCORE_COLUMNS] + [
         "valid horizon (objects' SSIM above the threshold)", "object horizon (position error within the threshold)",
         f"pixels inside the {100 * band:.0f} % band of the sampled futures" if isinstance(band, (int, float))
-        else "pixels inside the band of the sampled futures"]
+        else "pixels inside the band of the sampled futures",
+        "of these, pixels where an object is drawn or recorded",
+        "frames with the true object position inside the sampled futures' central region"]
     rows = ""
     for m, s in methods.items():
         cells = [html.escape(method_label(m))] + [_fmt(s.get(k), unit) for k, _, unit in SCORE_COLUMNS]
-        coverage = s.get("mean_band_coverage")
-        cells += [_horizon(s, "valid"), _horizon(s, "object"),
-                  f"{100 * coverage:.1f} %" if isinstance(coverage, (int, float)) else "–"]
+        cells += [_horizon(s, "valid"), _horizon(s, "object")] + [
+            _coverage_cell(s.get(k)) for k in ("mean_band_coverage", "mean_object_band_coverage",
+                                               "mean_position_coverage")]
         rows += "<tr>" + "".join(f"<td>{c}</td>" for c in cells) + "</tr>"
     facts = [(words, _score_fact(k, summary[k])) for k, words in SCORE_FACTS.items() if k in summary]
     periods = summary.get("periods", {})

@@ -188,9 +188,11 @@ def restore_model(model: torch.nn.Module, tensors: dict[str, torch.Tensor], meta
     layout (``meta["layout"]``, see :data:`MODEL_LAYOUT`) is one clear line naming ``path``."""
     if "background" in tensors:
         model.set_background(tensors["background"])
-    if "field.moving" not in tensors and "field.moving" in model.state_dict():
-        # written before still keypoints were held (same layout otherwise): every coordinate moves
-        tensors = {**tensors, "field.moving": torch.ones_like(model.state_dict()["field.moving"])}
+    for name in ("field.moving", "spread_scale"):
+        # written before still keypoints were held / before the spread was calibrated (same layout
+        # otherwise): every coordinate moves, the spread is the posterior's own
+        if name not in tensors and name in model.state_dict():
+            tensors = {**tensors, name: torch.ones_like(model.state_dict()[name])}
     problem = weights_mismatch(tensors, model.state_dict())
     try:
         if problem is None:

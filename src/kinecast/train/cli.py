@@ -67,6 +67,10 @@ def run(args, cfg) -> int:
         if verdict:
             level = {"failed": "FAILED", "weak": "weak"}.get(verdict["level"], verdict["level"])
             print(f"verdict on the held-out frames ({level}): {verdict['text']}")
+        if summary.get("spread_scale"):
+            print(f"sampled futures: spread scaled by {summary['spread_scale']:.3g} (fitted on the validation "
+                  f"trials so that {100 * cfg.score.band:.0f} % of their true keypoint positions fall inside "
+                  "the futures' central region; applies to forecast/score with --samples > 1)")
         if summary.get("untrained"):
             print(f"kinecast: warning: the model is untrained: {summary['untrained']}. Its forecasts mean "
                   f"nothing yet; train longer (kinecast fit --resume {out} --budget 5m adds 5 minutes).")

@@ -95,13 +95,8 @@ class WindowSampler:
 
     def offsets(self, rec: Recording, window: int) -> np.ndarray:
         """Offsets whose conditioning frames are all present."""
-        n = rec.n_frames - window + 1
-        if n <= 0:
-            return np.zeros(0, dtype=int)
-        ok = np.ones(n, dtype=bool)
-        for j in range(self.context):
-            ok &= ~rec.missing[j:j + n]
-        return np.flatnonzero(ok)
+        starts = rec.present_runs(self.context)
+        return starts[starts <= rec.n_frames - window]
 
     def draw(self, batch: int, window: int) -> Batch:
         choices = [self.offsets(r, window) for r in self.recs]

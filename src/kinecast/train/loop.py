@@ -91,6 +91,33 @@ def _validate_and_keep(model, val_sampler, val_window: int, cfg, cur: Curriculum
     return val
 
 
+def _calibrate(run: Path, recs, window: int, cfg, device) -> float | None:
+    """Fit the best weights' spread scale on ``recs`` (held-out trials) and store it in the run's
+    weights file (see :mod:`kinecast.model.calibration`); None when no trial has room for it."""
+    from ..model.calibration import fit_spread_scale
+
+    best, run_cfg = ck.load_run(run, device)
+    k = run_cfg.model.velocity_frames
+    clips = []
+    for rec in recs:
+        starts = rec.present_runs(k)
+        if not len(starts) or rec.n_frames - starts[0] <= k:
+            continue
+        a = int(starts[0])
+        b = min(rec.n_frames, a + k + 3 * window)
+        times = to_model_time(rec.times[a:b] - rec.times[a], run_cfg)
+        clips.append((torch.as_tensor(rec.frames[a:b]).to(device), times.to(device),
+                      ~torch.as_tensor(rec.missing[a:b])))
+    if not clips:
+        return None
+    gen = torch.Generator(device=device).manual_seed(cfg.train.seed)
+    scale = fit_spread_scale(best, clips, cfg.score.band, cfg.train.calibration_samples, gen)
+    tensors, meta = ck.load_tensors(run / ck.WEIGHTS)
+    tensors["spread_scale"] = torch.tensor(scale, dtype=tensors["background"].dtype)
+    ck.save_tensors(run / ck.WEIGHTS, tensors, meta)
+    return scale
+
+
 def _extend_budget(tc: cfgmod.TrainConfig, meta: dict) -> None:
     """Turn ``tc.steps`` / ``tc.budget`` asked for on resume (more training) into totals from the
     run's start: what the checkpoint ``meta`` has done so far plus the extra."""
@@ -394,6 +421,8 @@ def _fit(paths, out, cfg, run_lock: RunLock, *, resume, overwrite, more, fault_h
             ck.save_tensors(run / ck.WEIGHTS, model.state_dict(), {"step": step, "val_mse": val})
             cur.best = val if math.isfinite(val) else cur.best
         save_resume()
+        spread_scale = (_calibrate(run, val_recs, longest, cfg, ctx.device)
+                        if cfg.train.calibration_samples > 1 and val_recs else None)
         judged = judge(run, val_recs or train_recs[-1:], longest, ctx.device) if judge else None
         from ..plots import loss_curve
 
@@ -412,6 +441,7 @@ def _fit(paths, out, cfg, run_lock: RunLock, *, resume, overwrite, more, fault_h
                    "dynamics_window": dyn_longest,
                    "still_keypoints": [i for i, m in enumerate(model.field.moving.tolist()[::2]) if m == 0.0],
                    "tracked_period_s": period, "background_val_mse": bg_val, "verdict": judged,
+                   "spread_scale": spread_scale,
                    "untrained": untrained_reason(cfg.train.recipe, step, stage_state.escaped, cur.best, bg_val),
                    "caution": "Forecasts are statistical extrapolations, not measurements; "
                               "not for safety-critical control."}
