@@ -18,7 +18,6 @@ from __future__ import annotations
 
 import torch
 
-from .latent_ode import _reparam
 from .staged import encode_all
 
 __all__ = ["coverage_scale", "fit_spread_scale"]
@@ -83,13 +82,10 @@ def fit_spread_scale(model, clips, band: float, samples: int, generator: torch.G
         return 1.0
     points, truths = [], []
     for frames, t, present in clips:
-        ctx = frames[None, :k]
-        s_mean, s_logvar, v_mean, v_logvar = model.encode_dist(ctx, t[:k])
-        state0 = _reparam(torch.cat([s_mean, v_mean], 1).repeat(samples, 1),
-                          torch.cat([s_logvar, v_logvar], 1).repeat(samples, 1), generator)
-        weights = model.field.sample(samples, generator=generator)
+        lat = model.sample_latents(frames[None, :k], t, samples, mean_weights=False, sample_init=True,
+                                   generator=generator, ctx_t=t[:k])[:, 0].transpose(0, 1)  # [T, S, 2q]
         keep = torch.as_tensor(present, dtype=torch.bool)[k:]
-        lat = model.integrate(state0, t, weights)[k:, :, :q][keep][..., moving]      # [n, S, m]
+        lat = lat[k:, :, :q][keep][..., moving]                                        # [n, S, m]
         truth = encode_all(model, frames[k:][keep])[0][:, moving]                    # [n, m]
         points.append(lat.reshape(lat.shape[0], samples, -1, dim).transpose(1, 2).reshape(-1, samples, dim))
         truths.append(truth.reshape(-1, dim))

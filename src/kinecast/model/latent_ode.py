@@ -323,6 +323,22 @@ class LatentODE(nn.Module):
         return {"loss": loss, **{k: v.detach() for k, v in terms.items()}}
 
     # --------------------------------------------------------------------------- rollout
+    def sample_latents(self, ctx: torch.Tensor, t: torch.Tensor, samples: int, mean_weights: bool,
+                       sample_init: bool, generator: torch.Generator | None = None,
+                       ctx_t: torch.Tensor | None = None) -> torch.Tensor:
+        """Latent paths [S, B, N, 2q] of :meth:`rollout` (same draws, same order), before any spread
+        scale and without decoding."""
+        B = ctx.shape[0]
+        s_mean, s_logvar, v_mean, v_logvar = self.encode_dist(ctx, ctx_t)
+        state0 = torch.cat([s_mean, v_mean], 1).repeat(samples, 1)
+        if sample_init:
+            logvar = torch.cat([s_logvar, v_logvar], 1).repeat(samples, 1)
+            state0 = _reparam(state0, logvar, generator)
+        weights = self.field.sample(samples * B, mean=mean_weights, generator=generator)
+        states = self.integrate_any(state0, t, weights)  # [N, S·B, 2q]
+        latents = states.transpose(0, 1).reshape(samples, B, states.shape[0], 2 * self.q)
+        return latents
+
     def rollout(self, ctx: torch.Tensor, t: torch.Tensor, samples: int = 1, mean_weights: bool = True,
                 sample_init: bool = False, generator: torch.Generator | None = None,
                 ctx_t: torch.Tensor | None = None):
@@ -355,15 +371,7 @@ class LatentODE(nn.Module):
         if samples < 1:
             raise ValueError(f"rollout: samples must be at least 1, got {samples}")
         self._check_frames(ctx, "rollout", self.k)
-        B = ctx.shape[0]
-        s_mean, s_logvar, v_mean, v_logvar = self.encode_dist(ctx, ctx_t)
-        state0 = torch.cat([s_mean, v_mean], 1).repeat(samples, 1)
-        if sample_init:
-            logvar = torch.cat([s_logvar, v_logvar], 1).repeat(samples, 1)
-            state0 = _reparam(state0, logvar, generator)
-        weights = self.field.sample(samples * B, mean=mean_weights, generator=generator)
-        states = self.integrate_any(state0, t, weights)  # [N, S·B, 2q]
-        latents = states.transpose(0, 1).reshape(samples, B, states.shape[0], 2 * self.q)
+        latents = self.sample_latents(ctx, t, samples, mean_weights, sample_init, generator, ctx_t)
         if samples > 1 and float(self.spread_scale) != 1.0:  # calibrated spread about the samples' mean
             centre = latents.mean(dim=0, keepdim=True)
             latents = centre + self.spread_scale * (latents - centre)
