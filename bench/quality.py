@@ -32,7 +32,7 @@ from kinecast.rigs import write_rig
 from kinecast.score import mse
 from kinecast.score.evaluate import evaluate
 from kinecast.train import fit, load_run
-from kinecast.train import checkpoint as ck
+from kinecast import runfolder as rf
 
 from .common import BEAT_FACTOR, NOMINAL_FPS, Profile, pick_device
 
@@ -74,7 +74,7 @@ class CheckpointWatcher:
     """Copies the run's best-weights file each time the trainer replaces it (polled in a thread)."""
 
     def __init__(self, run: Path, store: Path):
-        self.src = run / ck.WEIGHTS
+        self.src = run / rf.WEIGHTS
         self.store = store
         self.copies: list[Path] = []
         self._last = None
@@ -105,7 +105,7 @@ class CheckpointWatcher:
             return
         self._last = key
         folder = self.store / f"snap_{len(self.copies):04d}"
-        write_bytes(folder / ck.WEIGHTS, data)
+        write_bytes(folder / rf.WEIGHTS, data)
         self.copies.append(folder)
 
 
@@ -113,11 +113,11 @@ def train_variant(train_dir: Path, run: Path, cfg: Config) -> dict:
     """Train one variant; return its summary and the kept checkpoints (step, loop seconds, folder)."""
     with CheckpointWatcher(run, run.parent / f"{run.name}_snaps") as watch:
         summary = fit([train_dir], run, cfg, overwrite=True)
-    times = {int(r["step"]): r["time_s"] for r in ck.read_log(run) if "val_mse" in r}
+    times = {int(r["step"]): r["time_s"] for r in rf.read_log(run) if "val_mse" in r}
     snaps, seen = [], set()
     for folder in watch.copies:
-        write_bytes(folder / ck.CONFIG, (run / ck.CONFIG).read_bytes())
-        step = int(ck.load_tensors(folder / ck.WEIGHTS)[1].get("step", -1))
+        write_bytes(folder / rf.CONFIG, (run / rf.CONFIG).read_bytes())
+        step = int(rf.load_tensors(folder / rf.WEIGHTS)[1].get("step", -1))
         if step not in seen:
             seen.add(step)
             snaps.append({"step": step, "time_s": times.get(step, summary["elapsed_s"]), "folder": folder})

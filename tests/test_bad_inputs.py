@@ -44,7 +44,7 @@ from kinecast.cli import main
 from kinecast.errors import EXIT_BAD_INPUT
 from kinecast.rigs import write_rig
 from kinecast.train import fit
-from kinecast.train import checkpoint as ck
+from kinecast import runfolder as rf
 
 SIZE = 32                        # model frame size of the tiny run
 FRAMES = 20                      # frames per synthetic trial
@@ -125,7 +125,7 @@ def rewrite_times(rec: Path, edit: Callable[[list[str]], list[str]]) -> Path:
 
 def set_key(run: Path, key: str, value: str) -> None:
     """Change one ``key = value`` line of a run's config.toml."""
-    cfg = run / ck.CONFIG
+    cfg = run / rf.CONFIG
     lines = [f"{key} = {value}" if ln.split("=")[0].strip() == key else ln
              for ln in cfg.read_text().splitlines()]
     cfg.write_text("\n".join(lines) + "\n")
@@ -298,7 +298,7 @@ def _(t, w):
 @case("forecast: run folder without weights")
 def _(t, w):
     run = run_copy(t, w)
-    (run / ck.WEIGHTS).unlink()
+    (run / rf.WEIGHTS).unlink()
     return ["forecast", str(run), str(w.trial), "--out", str(t / "clip.mp4")], str(run), \
         "missing weights.safetensors"
 
@@ -307,7 +307,7 @@ def _(t, w):
 def _(t, w):
     run = run_copy(t, w)
     set_key(run, "keypoints", "3")            # config says 3, the weights were saved with 2
-    return ["fill", str(run), str(w.trial), "--out", str(t / "filled")], ck.WEIGHTS, \
+    return ["fill", str(run), str(w.trial), "--out", str(t / "filled")], rf.WEIGHTS, \
         r"do not match the run's config.toml \(tensor .* has shape \(2, .* builds \(3, "
 
 
@@ -315,7 +315,7 @@ def _(t, w):
 def _(t, w):
     run = run_copy(t, w)
     set_key(run, "hidden", "32")
-    return ["forecast", str(run), str(w.trial), "--out", str(t / "clip.mp4")], ck.WEIGHTS, \
+    return ["forecast", str(run), str(w.trial), "--out", str(t / "clip.mp4")], rf.WEIGHTS, \
         "do not match the run's config.toml"
 
 

@@ -5,7 +5,7 @@ no clean-up, as when the machine loses power or the out-of-memory killer strikes
 
 1. between two checkpoints;
 2. while a checkpoint is being written: the test hook ``KINECAST_TEST_CHECKPOINT_PAUSE`` (see
-   kinecast.train.checkpoint._test_pause) holds the written temporary file for a moment before it
+   kinecast.runfolder._test_pause) holds the written temporary file for a moment before it
    is renamed into place, and the process is killed as soon as ``.resume.*.tmp.safetensors`` appears;
 3. before its first checkpoint.
 
@@ -34,7 +34,7 @@ import torch
 from kinecast import config as C
 from kinecast.cli import main
 from kinecast.rigs import write_rig
-from kinecast.train import checkpoint as ck
+from kinecast import runfolder as rf
 from kinecast.train import fit
 
 STEPS = 12
@@ -114,7 +114,7 @@ def kill(proc) -> None:
 
 def saved_step(run: Path) -> int | None:
     try:
-        return ck.load_tensors(run / ck.RESUME)[1]["step"]
+        return rf.load_tensors(run / rf.RESUME)[1]["step"]
     except Exception:  # not there yet
         return None
 
@@ -126,13 +126,13 @@ def temporaries(run: Path, stem: str = "resume") -> list[Path]:
 def every_checkpoint_loads(run: Path) -> int:
     """Load every checkpoint file present (and the config and log); the saved step."""
     present = sorted(p for p in run.glob("*.safetensors") if not p.name.startswith("."))
-    assert run / ck.RESUME in present
+    assert run / rf.RESUME in present
     for path in present:
-        tensors, meta = ck.load_tensors(path)
+        tensors, meta = rf.load_tensors(path)
         assert tensors and all(torch.isfinite(t).all() for t in tensors.values() if t.is_floating_point())
-    C.load(run / ck.CONFIG)
-    ck.read_log(run)
-    return ck.load_tensors(run / ck.RESUME)[1]["step"]
+    C.load(run / rf.CONFIG)
+    rf.read_log(run)
+    return rf.load_tensors(run / rf.RESUME)[1]["step"]
 
 
 def finish(run: Path, tmp: Path) -> None:
@@ -141,14 +141,14 @@ def finish(run: Path, tmp: Path) -> None:
 
 
 def same_as_reference(run: Path, reference: Path) -> None:
-    assert json.loads((run / ck.SUMMARY).read_text())["steps"] == STEPS
-    mine, _ = ck.load_tensors(run / ck.RESUME)
-    ref, _ = ck.load_tensors(reference / ck.RESUME)
+    assert json.loads((run / rf.SUMMARY).read_text())["steps"] == STEPS
+    mine, _ = rf.load_tensors(run / rf.RESUME)
+    ref, _ = rf.load_tensors(reference / rf.RESUME)
     assert mine.keys() == ref.keys()
     for key in ref:
         assert torch.allclose(mine[key].float(), ref[key].float(), atol=1e-6), key
     strip = lambda rows: [{k: v for k, v in r.items() if k != "time_s"} for r in rows]  # noqa: E731
-    rows, ref_rows = strip(ck.read_log(run)), strip(ck.read_log(reference))
+    rows, ref_rows = strip(rf.read_log(run)), strip(rf.read_log(reference))
     assert [r["step"] for r in rows] == [r["step"] for r in ref_rows]  # no row lost or repeated
     for r, q in zip(rows, ref_rows):
         assert r.keys() == q.keys() and all(abs(r[k] - q[k]) <= 1e-5 * (1 + abs(q[k])) for k in q), r
@@ -166,7 +166,7 @@ def test_killed_between_and_during_checkpoints_resumes_to_the_same_result(rig, r
     assert seen <= step < STEPS and step % EVERY == 0
 
     # 2. resume, and kill it while its next checkpoint is being written
-    proc = resume(run, tmp_path, **{ck.PAUSE_ENV: "2"})
+    proc = resume(run, tmp_path, **{rf.PAUSE_ENV: "2"})
     wait_until(proc, lambda: temporaries(run), "a temporary checkpoint")
     kill(proc)
     assert temporaries(run), "the kill did not land mid-checkpoint"
@@ -180,16 +180,16 @@ def test_killed_between_and_during_checkpoints_resumes_to_the_same_result(rig, r
 
 def test_killed_before_the_first_checkpoint_resume_is_refused_cleanly(rig, tmp_path, capsys):
     run = tmp_path / "run"
-    proc = start_fit(rig, run, tmp_path, **{ck.PAUSE_ENV: "5"})
+    proc = start_fit(rig, run, tmp_path, **{rf.PAUSE_ENV: "5"})
     # the config is written before training starts; the first checkpoint is held in its temporary
-    wait_until(proc, lambda: (run / ck.CONFIG).is_file(), "config.toml")
+    wait_until(proc, lambda: (run / rf.CONFIG).is_file(), "config.toml")
     kill(proc)
-    assert not (run / ck.RESUME).exists()
+    assert not (run / rf.RESUME).exists()
     before = {p.name: p.read_bytes() for p in run.iterdir()}
     capsys.readouterr()
     assert main(["fit", "--resume", str(run)]) == 2
     err = capsys.readouterr().err.strip().splitlines()
-    assert len(err) == 1 and err[0].startswith("kinecast: error:") and ck.RESUME in err[0], err
+    assert len(err) == 1 and err[0].startswith("kinecast: error:") and rf.RESUME in err[0], err
     assert {p.name: p.read_bytes() for p in run.iterdir()} == before
 
 
@@ -201,7 +201,7 @@ def test_resume_needs_no_best_weights_yet(rig, tmp_path):
                     tmp_path)
     wait_until(proc, lambda: saved_step(run), "the first checkpoint")
     kill(proc)
-    assert not (run / ck.WEIGHTS).exists()
+    assert not (run / rf.WEIGHTS).exists()
     finish(run, tmp_path)
-    assert ck.load_tensors(run / ck.RESUME)[1]["step"] == STEPS
-    assert ck.load_tensors(run / ck.WEIGHTS)[0]
+    assert rf.load_tensors(run / rf.RESUME)[1]["step"] == STEPS
+    assert rf.load_tensors(run / rf.WEIGHTS)[0]

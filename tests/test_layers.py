@@ -14,7 +14,7 @@ SRC = Path(__file__).resolve().parents[1] / "src" / "kinecast"
 LAYERS = [
     {"errors", "fileio", "config"},
     {"frames", "render", "plots"},
-    {"rigs", "model"},
+    {"rigs", "model", "runfolder"},
     {"train"},
     {"forecast"},
     {"score"},

@@ -4,12 +4,14 @@ from __future__ import annotations
 
 import math
 
+import numpy as np
 import pytest
 import torch
+from scipy import stats
 
 from kinecast.config import Config
 from kinecast.model import build_model
-from kinecast.model.calibration import coverage_scale
+from kinecast.model.calibration import band_inside, coverage_scale, noise_for_coverage
 
 
 @pytest.mark.parametrize("wider", [1.0, 3.0])
@@ -40,3 +42,29 @@ def test_rollout_spreads_samples_about_their_mean_by_the_scale():
     torch.testing.assert_close(b.mean(0), a.mean(0))
     torch.testing.assert_close(b - b.mean(0), 2.5 * (a - a.mean(0)))
     assert float((a - a.mean(0)).abs().max()) > 0  # the samples do differ
+
+
+@pytest.mark.parametrize("noise", [0.0, 0.2])
+def test_band_with_pixel_noise_covers_as_the_normal_law_says(noise):
+    # Samples N(0, 0.1²) blurred by noise N(0, noise²) stand for N(0, 0.1² + noise²) (sum of
+    # independent normals, handbook); a truth N(0, 0.3²) lies inside that law's central 90 % interval
+    # with probability P(|z| < 1.645 · sqrt(0.1² + noise²) / 0.3) (normal quantiles from scipy.stats).
+    # 20000 truths: binomial standard error below 0.0035; tolerance 0.015 also covers the samples'
+    # own finite number (300).
+    rng = np.random.default_rng(2)
+    samples = 0.1 * rng.standard_normal((300, 20000))
+    truth = 0.3 * rng.standard_normal(20000)
+    spread = math.hypot(0.1, noise)
+    expected = 2 * stats.norm.cdf(stats.norm.ppf(0.95) * spread / 0.3) - 1
+    assert band_inside(samples, truth, 0.9, noise).mean() == pytest.approx(expected, abs=0.015)
+
+
+def test_fitted_pixel_noise_is_the_missing_spread():
+    # The truth scatters with std 0.3 around samples of std 0.1: the noise that makes the 90 % band
+    # cover 90 % of it is sqrt(0.3² − 0.1²) ≈ 0.283 (variances of independent normals add); samples
+    # that already cover the truth need none.
+    rng = np.random.default_rng(3)
+    samples = 0.1 * rng.standard_normal((300, 20000))
+    truth = 0.3 * rng.standard_normal(20000)
+    assert noise_for_coverage(samples, truth, 0.9) == pytest.approx(math.sqrt(0.3**2 - 0.1**2), rel=0.04)
+    assert noise_for_coverage(samples, 0.05 * rng.standard_normal(20000), 0.9) == 0.0

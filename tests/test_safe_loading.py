@@ -29,7 +29,7 @@ from kinecast import config as C
 from kinecast.cli import main
 from kinecast.errors import KinecastError
 from kinecast.rigs import write_rig
-from kinecast.train import checkpoint as ck
+from kinecast import runfolder as rf
 from kinecast.train import fit, load_run
 
 TINY = ["data.size=32", "model.latent_dim=4", "model.enc_channels=8", "model.dec_channels=8",
@@ -96,11 +96,11 @@ def test_the_trap_is_armed(no_unpickling, tmp_path):
 
 def test_run_files_are_safetensors_not_pickles(world):
     _, run = world
-    for name in (ck.WEIGHTS, ck.RESUME):
+    for name in (rf.WEIGHTS, rf.RESUME):
         path = run / name
         n, header = header_of(path)
         assert path.read_bytes()[:4] != ZIP_SIGNATURE
-        assert "__metadata__" in header and ck._META_KEY in header["__metadata__"]
+        assert "__metadata__" in header and rf._META_KEY in header["__metadata__"]
         tensors = {k: v for k, v in header.items() if k != "__metadata__"}
         # every tensor's data range lies inside the file, after the header (safetensors layout)
         end = max(v["data_offsets"][1] for v in tensors.values())
@@ -123,7 +123,7 @@ def test_load_run_forecast_fill_and_resume_never_unpickle(world, tmp_path, no_un
     assert len(list((tmp_path / "filled").glob("frame_*.png"))) == 20
     copy = Path(shutil.copytree(run, tmp_path / "run"))
     assert main(["fit", "--resume", str(copy), "--set", "train.steps=6", "--quiet"]) == 0
-    assert ck.load_tensors(copy / ck.RESUME)[1]["step"] == 6
+    assert rf.load_tensors(copy / rf.RESUME)[1]["step"] == 6
     assert no_unpickling == []
 
 
@@ -161,7 +161,7 @@ def test_damaged_weights_are_refused_with_one_line(world, tmp_path, capsys, kind
     rig, run = world
     damage, problem = DAMAGE[kind]
     copy = Path(shutil.copytree(run, tmp_path / "run"))
-    weights = copy / ck.WEIGHTS
+    weights = copy / rf.WEIGHTS
     weights.write_bytes(bytes(damage(bytearray(weights.read_bytes()))))
     with pytest.raises(KinecastError, match=problem):
         load_run(copy)
@@ -170,7 +170,7 @@ def test_damaged_weights_are_refused_with_one_line(world, tmp_path, capsys, kind
     assert main(["forecast", str(copy), str(rig / "trial_001"), "--out", str(tmp_path / "c.mp4")]) == 2
     err = capsys.readouterr().err.splitlines()
     assert len(err) == 1 and err[0].startswith("kinecast: error:"), err
-    assert ck.WEIGHTS in err[0] and problem in err[0], err[0]
+    assert rf.WEIGHTS in err[0] and problem in err[0], err[0]
     assert snapshot(tmp_path, run) == before
 
 
@@ -179,13 +179,13 @@ def test_damaged_resume_checkpoint_is_refused_with_one_line(world, tmp_path, cap
     _, run = world
     damage, problem = DAMAGE[kind]
     copy = Path(shutil.copytree(run, tmp_path / "run"))
-    resume = copy / ck.RESUME
+    resume = copy / rf.RESUME
     resume.write_bytes(bytes(damage(bytearray(resume.read_bytes()))))
     before = snapshot(copy)
     capsys.readouterr()
     assert main(["fit", "--resume", str(copy), "--set", "train.steps=6", "--quiet"]) == 2
     err = capsys.readouterr().err.splitlines()
-    assert len(err) == 1 and ck.RESUME in err[0] and problem in err[0], err
+    assert len(err) == 1 and rf.RESUME in err[0] and problem in err[0], err
     assert snapshot(copy) == before
 
 
@@ -195,15 +195,15 @@ def test_a_foreign_safetensors_file_is_not_taken_for_a_checkpoint(world, tmp_pat
 
     _, run = world
     copy = Path(shutil.copytree(run, tmp_path / "run"))
-    save_file({"x": torch.from_numpy(np.arange(3, dtype=np.float32))}, str(copy / ck.RESUME))
-    save_file({"x": torch.zeros(3)}, str(copy / ck.WEIGHTS))
+    save_file({"x": torch.from_numpy(np.arange(3, dtype=np.float32))}, str(copy / rf.RESUME))
+    save_file({"x": torch.zeros(3)}, str(copy / rf.WEIGHTS))
     capsys.readouterr()
     assert main(["fit", "--resume", str(copy), "--quiet"]) == 2
     assert main(["report", str(copy), "--out", str(tmp_path / "r.html")]) == 0  # needs no weights
     assert main(["forecast", str(copy), str(world[0] / "trial_001"), "--out", str(tmp_path / "c.mp4")]) == 2
     err = capsys.readouterr().err.splitlines()
-    assert "not a kinecast resume checkpoint" in err[0] and ck.RESUME in err[0]
-    assert "do not match the run's config.toml" in err[-1] and ck.WEIGHTS in err[-1]
+    assert "not a kinecast resume checkpoint" in err[0] and rf.RESUME in err[0]
+    assert "do not match the run's config.toml" in err[-1] and rf.WEIGHTS in err[-1]
 
 
 def test_weights_of_an_older_network_layout_are_refused(world, tmp_path, capsys):
@@ -211,11 +211,11 @@ def test_weights_of_an_older_network_layout_are_refused(world, tmp_path, capsys)
     layout 2): refused by name instead of silently computing something else."""
     rig, run = world
     copy = Path(shutil.copytree(run, tmp_path / "run"))
-    tensors, meta = ck.load_tensors(copy / ck.WEIGHTS)
+    tensors, meta = rf.load_tensors(copy / rf.WEIGHTS)
     from safetensors.torch import save_file
 
     meta.pop("layout")  # what files written before the layout key looked like (layout 1)
-    save_file({k: v.contiguous() for k, v in tensors.items()}, str(copy / ck.WEIGHTS),
+    save_file({k: v.contiguous() for k, v in tensors.items()}, str(copy / rf.WEIGHTS),
               metadata={"kinecast": json.dumps(meta)})
     with pytest.raises(KinecastError, match="layout 1"):
         load_run(copy)

@@ -30,7 +30,7 @@ from kinecast import config as C
 from kinecast.cli import main
 from kinecast.errors import KinecastError
 from kinecast.score.report import RUN_DIGEST, weights_sha256
-from kinecast.train import checkpoint as ck
+from kinecast import runfolder as rf
 from kinecast.train import fit, load_run
 from test_fill_native import TINY  # the 4-step tiny run's settings
 
@@ -123,19 +123,19 @@ def test_scores_name_the_run_and_its_weights(setup, tmp_path):
     run, _, scores = setup
     summary = json.loads((scores / "a" / "summary.json").read_text())
     assert summary["run"] == str(run.resolve())
-    assert summary[RUN_DIGEST] == hashlib.sha256((run / ck.WEIGHTS).read_bytes()).hexdigest()
-    (tmp_path / ck.WEIGHTS).write_bytes(b"abc")  # FIPS 180-4 example message
+    assert summary[RUN_DIGEST] == hashlib.sha256((run / rf.WEIGHTS).read_bytes()).hexdigest()
+    (tmp_path / rf.WEIGHTS).write_bytes(b"abc")  # FIPS 180-4 example message
     assert weights_sha256(tmp_path) == "ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad"
 
 
 def _other_run(run: Path, where: Path) -> Path:
     """A copy of ``run`` whose weights differ (one tensor nudged; still a valid weights file)."""
     shutil.copytree(run, where)
-    tensors, meta = ck.load_tensors(where / ck.WEIGHTS)
+    tensors, meta = rf.load_tensors(where / rf.WEIGHTS)
     name = sorted(tensors)[0]
     tensors[name] = tensors[name] + 1e-3
     meta.pop("layout", None)  # save_tensors writes it
-    ck.save_tensors(where / ck.WEIGHTS, tensors, meta)
+    rf.save_tensors(where / rf.WEIGHTS, tensors, meta)
     return where
 
 

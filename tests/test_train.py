@@ -16,7 +16,7 @@ from kinecast.cli import main
 from kinecast.errors import KinecastError
 from kinecast.rigs import write_rig
 from kinecast.train import fit, load_run
-from kinecast.train import checkpoint as ck
+from kinecast import runfolder as rf
 from kinecast.train.schedule import Curriculum, kl_weight, learning_rate
 
 
@@ -38,25 +38,25 @@ def rig(tmp_path_factory):
 
 
 def weights(run):
-    return ck.load_tensors(run / ck.WEIGHTS)[0]
+    return rf.load_tensors(run / rf.WEIGHTS)[0]
 
 
 def test_run_folder_has_every_promised_file(rig, tmp_path):
     run = tmp_path / "run"
     summary = fit([rig], run, small_cfg(steps=12), show_progress=False)
-    for name in (ck.CONFIG, ck.WEIGHTS, ck.RESUME, ck.LOG, ck.SUMMARY, ck.BACKGROUND, ck.LOSS_PLOT):
+    for name in (rf.CONFIG, rf.WEIGHTS, rf.RESUME, rf.LOG, rf.SUMMARY, rf.BACKGROUND, rf.LOSS_PLOT):
         assert (run / name).is_file(), name
     assert summary["steps"] == 12 and summary["train_recordings"] == 2 and summary["val_recordings"] == 1
     # the trials trained on and validated on are named, and split the recordings given
     assert len(summary["trained_on"]) == 2 and len(summary["validated_on"]) == 1
     assert sorted(summary["trained_on"] + summary["validated_on"]) == sorted(summary["recordings"])
-    cfg = C.load(run / ck.CONFIG)
+    cfg = C.load(run / rf.CONFIG)
     # time scale resolved from the data: units_per_frame / median interval (1/20 s)
     assert cfg.solver.time_scale == pytest.approx(0.1 * 20.0)
-    assert json.loads((run / ck.SUMMARY).read_text())["steps"] == 12
+    assert json.loads((run / rf.SUMMARY).read_text())["steps"] == 12
     model, cfg2 = load_run(run)
     assert cfg2 == cfg and not model.training
-    log = ck.read_log(run)
+    log = rf.read_log(run)
     assert any("val_mse" in r for r in log) and any("nll" in r for r in log)
     assert not list(run.glob(".*tmp*")), "temporary files left behind"
 
@@ -81,11 +81,11 @@ def test_resume_continues_and_matches_an_uninterrupted_run(rig, tmp_path):
 
     with pytest.raises(KeyboardInterrupt):
         fit([rig], tmp_path / "part", small_cfg(steps=10), show_progress=False, fault_hook=interrupt)
-    assert ck.load_tensors(tmp_path / "part" / ck.RESUME)[1]["step"] == 5
+    assert rf.load_tensors(tmp_path / "part" / rf.RESUME)[1]["step"] == 5
     summary = fit([], tmp_path / "part", small_cfg(steps=10), resume=True, show_progress=False)
     assert summary["steps"] == 10
-    full = ck.load_tensors(tmp_path / "full" / ck.RESUME)[0]
-    part = ck.load_tensors(tmp_path / "part" / ck.RESUME)[0]
+    full = rf.load_tensors(tmp_path / "full" / rf.RESUME)[0]
+    part = rf.load_tensors(tmp_path / "part" / rf.RESUME)[0]
     # step count, optimiser, schedule and random state all continue: same tensors as one long run
     for key in full:
         assert torch.allclose(full[key].float(), part[key].float(), atol=1e-6), key
@@ -105,7 +105,7 @@ def test_injected_fault_rolls_back_and_repeated_faults_stop(rig, tmp_path):
     with pytest.raises(KinecastError, match="non-finite"):
         fit([rig], tmp_path / "f2", small_cfg(steps=8, max_faults=2), show_progress=False,
             fault_hook=lambda step: step >= 2)
-    assert (tmp_path / "f2" / ck.WEIGHTS).is_file()  # the best checkpoint is kept
+    assert (tmp_path / "f2" / rf.WEIGHTS).is_file()  # the best checkpoint is kept
 
 
 def test_schedules():

@@ -28,7 +28,7 @@ from kinecast import config as C
 from kinecast.cli import main
 from kinecast.errors import KinecastError
 from kinecast.rigs import write_rig
-from kinecast.train import checkpoint as ck
+from kinecast import runfolder as rf
 from kinecast.train import fit
 from kinecast.train.lock import process_alive
 from test_kill_resume import (STEPS, TINY, WAIT_S, kill, kinecast, resume, saved_step, start_fit,
@@ -57,7 +57,7 @@ def paused_in_checkpoint(run: Path) -> list[Path]:
     """The temporary checkpoints once they are completely written (the pause hook then holds them)."""
     held = temporaries(run)
     try:
-        return held if held and all(ck.load_tensors(p)[0] for p in held) else []
+        return held if held and all(rf.load_tensors(p)[0] for p in held) else []
     except KinecastError:  # still being written
         return []
 
@@ -72,7 +72,7 @@ def dead_pid() -> int:
 def write_lock(run: Path, pid: int, host: str | None = None) -> str:
     run.mkdir(parents=True, exist_ok=True)
     text = f'pid = {pid}\nhost = "{host or socket.gethostname()}"\nstarted = "2026-01-01T00:00:00+00:00"\n'
-    (run / ck.LOCK).write_text(text)
+    (run / rf.LOCK).write_text(text)
     return text
 
 
@@ -84,10 +84,10 @@ def one_error_line(err: str) -> str:
 
 def test_second_fit_on_a_folder_being_written_is_refused_and_changes_nothing(rig, tmp_path):
     run = tmp_path / "run"
-    first = start_fit(rig, run, tmp_path, **{ck.PAUSE_ENV: HOLD_S})
+    first = start_fit(rig, run, tmp_path, **{rf.PAUSE_ENV: HOLD_S})
     try:
         wait_until(first, lambda: paused_in_checkpoint(run), "the first fit's first checkpoint")
-        assert f"pid = {first.pid}\n" in (run / ck.LOCK).read_text()
+        assert f"pid = {first.pid}\n" in (run / rf.LOCK).read_text()
         before = snapshot(run)
         sets = [a for s in TINY for a in ("--set", s)]
         second = kinecast(["fit", str(rig), "--out", str(run), "--overwrite", "--steps", str(STEPS),
@@ -107,15 +107,15 @@ def test_resume_takes_over_a_killed_fits_lock_and_refuses_a_second_resume(rig, t
     first = start_fit(rig, run, tmp_path)
     wait_until(first, lambda: saved_step(run), "the first checkpoint")
     kill(first)  # SIGKILL: no clean-up, the lock stays behind
-    assert f"pid = {first.pid}\n" in (run / ck.LOCK).read_text()
+    assert f"pid = {first.pid}\n" in (run / rf.LOCK).read_text()
     assert not process_alive(first.pid)  # killed and reaped: kill(2) gives ESRCH
 
-    resumer = resume(run, tmp_path, **{ck.PAUSE_ENV: HOLD_S})
+    resumer = resume(run, tmp_path, **{rf.PAUSE_ENV: HOLD_S})
     try:
         held = wait_until(resumer, lambda: paused_in_checkpoint(run), "the resumed fit's next checkpoint")
         told = [ln for ln in stderr_of(resumer).splitlines() if "lock" in ln]
         assert len(told) == 1 and f"process {first.pid} " in told[0] and "taking over" in told[0], told
-        assert f"pid = {resumer.pid}\n" in (run / ck.LOCK).read_text()
+        assert f"pid = {resumer.pid}\n" in (run / rf.LOCK).read_text()
         before = snapshot(run)
         second = resume(run, tmp_path)
         assert second.wait(timeout=WAIT_S) == 2
@@ -134,8 +134,8 @@ def test_stale_lock_of_a_dead_process_is_taken_over_and_the_fit_succeeds(rig, tm
     assert not process_alive(pid)
     write_lock(run, pid)
     summary = fit([rig], run, tiny_cfg(4), show_progress=False)
-    assert summary["steps"] == 4 and json.loads((run / ck.SUMMARY).read_text())["steps"] == 4
-    assert not (run / ck.LOCK).exists() and not list(run.glob(f".{ck.LOCK}*"))
+    assert summary["steps"] == 4 and json.loads((run / rf.SUMMARY).read_text())["steps"] == 4
+    assert not (run / rf.LOCK).exists() and not list(run.glob(f".{rf.LOCK}*"))
     told = [ln for ln in capsys.readouterr().err.splitlines() if "lock" in ln]
     assert len(told) == 1 and f"process {pid} " in told[0] and str(run) in told[0], told
 
@@ -154,7 +154,7 @@ def test_a_lock_that_may_be_live_is_respected(rig, tmp_path, capsys, holder):
         write_lock(run, pid, host="other-host.invalid")
     else:
         run.mkdir()
-        (run / ck.LOCK).write_text("")  # as a fit killed between creating it and writing it leaves it
+        (run / rf.LOCK).write_text("")  # as a fit killed between creating it and writing it leaves it
     before = snapshot(run)
     capsys.readouterr()
     assert main(["fit", str(rig), "--out", str(run), "--overwrite", "--steps", "2"]) == 2
@@ -168,13 +168,13 @@ def test_a_lock_that_may_be_live_is_respected(rig, tmp_path, capsys, holder):
 def test_lock_is_gone_after_a_normal_fit_and_after_failed_ones(rig, tmp_path):
     ok = tmp_path / "ok"
     fit([rig], ok, tiny_cfg(2), show_progress=False)
-    assert (ok / ck.SUMMARY).is_file() and not (ok / ck.LOCK).exists()
+    assert (ok / rf.SUMMARY).is_file() and not (ok / rf.LOCK).exists()
 
     # an error after files were written (no budget is found once the folder is prepared)
     nobudget = tmp_path / "nobudget"
     with pytest.raises(KinecastError, match="no budget"):
         fit([rig], nobudget, tiny_cfg(0), show_progress=False)
-    assert (nobudget / ck.CONFIG).is_file() and not (nobudget / ck.LOCK).exists()
+    assert (nobudget / rf.CONFIG).is_file() and not (nobudget / rf.LOCK).exists()
 
     # an interruption mid-training (stands in for Ctrl-C)
     def interrupt(step):
@@ -185,7 +185,7 @@ def test_lock_is_gone_after_a_normal_fit_and_after_failed_ones(rig, tmp_path):
     stopped = tmp_path / "stopped"
     with pytest.raises(KeyboardInterrupt):
         fit([rig], stopped, tiny_cfg(4), show_progress=False, fault_hook=interrupt)
-    assert (stopped / ck.CONFIG).is_file() and not (stopped / ck.LOCK).exists()
+    assert (stopped / rf.CONFIG).is_file() and not (stopped / rf.LOCK).exists()
 
     # bad recordings, found once the lock is taken: the folders made for the lock are removed again
     bad = tmp_path / "bad"

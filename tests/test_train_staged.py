@@ -18,7 +18,7 @@ from kinecast import config as C
 from kinecast.rigs import write_rig
 from kinecast.score.verdict import judge_run
 from kinecast.train import fit
-from kinecast.train import checkpoint as ck
+from kinecast import runfolder as rf
 from kinecast.train import stages as S
 
 
@@ -53,7 +53,7 @@ def test_positions_stage_finds_the_moving_object(rig, tmp_path):
     summary = fit([rig], tmp_path / "run", staged_cfg(400), show_progress=False, judge=judge_run)
     # learning check: the autoencoder beat the bare background by the escape ratio
     assert summary["positions_found"] is True, summary
-    rows = ck.read_log(tmp_path / "run")
+    rows = rf.read_log(tmp_path / "run")
     first = [r for r in rows if r.get("stage") == S.NUMBER[S.POSITIONS] and "bg_mse" in r]
     late = first[-5:]
     # after the switch the encoder is sampled and the coverage term keeps a keypoint on every part of
@@ -61,7 +61,7 @@ def test_positions_stage_finds_the_moving_object(rig, tmp_path):
     # under the bare background's (measured on this clip: 0.26 without the coverage term, 0.40 with)
     assert np.mean([r["mse"] for r in late]) < 0.5 * np.mean([r["bg_mse"] for r in late])
     # the run says what it found and judged
-    saved = json.loads((tmp_path / "run" / ck.SUMMARY).read_text())
+    saved = json.loads((tmp_path / "run" / rf.SUMMARY).read_text())
     assert saved["recipe"] == "staged" and saved["verdict"]["level"] in ("good", "weak", "failed")
     assert saved["dynamics_window"] >= 9
     assert 0 < saved["positions_found_step"] < 0.75 * 400  # inside the positions stage

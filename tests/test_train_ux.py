@@ -19,7 +19,7 @@ import pytest
 from kinecast import config as C
 from kinecast.cli import main
 from kinecast.rigs import write_rig
-from kinecast.train import checkpoint as ck
+from kinecast import runfolder as rf
 from kinecast.train import progress as P
 
 TINY = ["data.size=16", "model.latent_dim=4", "model.enc_channels=8", "model.dec_channels=8",
@@ -38,7 +38,7 @@ def rig(tmp_path_factory):
 
 
 def summary_of(run: Path) -> dict:
-    return json.loads((run / ck.SUMMARY).read_text())
+    return json.loads((run / rf.SUMMARY).read_text())
 
 
 # --- budget forms ---------------------------------------------------------------------------------
@@ -56,7 +56,7 @@ def test_cli_accepts_a_budget_with_a_space(rig, tmp_path, capsys):
     # '--budget "1 min"' (one argument with a space) reaches the run's config.toml as 60 s
     run = tmp_path / "run"
     assert main(["fit", str(rig), "--out", str(run), "--budget", "1 min", "--steps", "2", "--quiet", *SETS]) == 0
-    assert C.parse_budget(C.load(run / ck.CONFIG).train.budget) == 60
+    assert C.parse_budget(C.load(run / rf.CONFIG).train.budget) == 60
     assert summary_of(run)["steps"] == 2  # the step budget ended it first
 
 
@@ -91,7 +91,7 @@ def test_progress_lines_stream_to_a_pipe_during_a_budget_run(rig, tmp_path):
                             text=True, env=env)
     seen = []  # (arrival time, line, summary.json already written?)
     for line in proc.stdout:
-        seen.append((time.monotonic(), line.rstrip("\n"), (run / ck.SUMMARY).exists()))
+        seen.append((time.monotonic(), line.rstrip("\n"), (run / rf.SUMMARY).exists()))
     assert proc.wait(timeout=60) == 0, [s[1] for s in seen]
     lines = [s[1] for s in seen]
     final = next(i for i, text in enumerate(lines) if text.startswith("run written to"))
@@ -140,7 +140,7 @@ def test_resume_with_steps_or_budget_trains_that_much_more(rig, tmp_path, capsys
 
     assert main(["fit", "--resume", str(run), "--steps", "8", "--quiet"]) == 0
     assert summary_of(run)["steps"] == 12 + 8
-    assert C.load(run / ck.CONFIG).train.steps == 20  # a later plain --resume keeps the new total
+    assert C.load(run / rf.CONFIG).train.steps == 20  # a later plain --resume keeps the new total
 
     capsys.readouterr()
     assert main(["fit", "--resume", str(run), "--quiet"]) == 0  # nothing left: says so
@@ -148,7 +148,7 @@ def test_resume_with_steps_or_budget_trains_that_much_more(rig, tmp_path, capsys
     assert "nothing trained" in capsys.readouterr().err
 
     def trained_s():  # training seconds the run has counted (the resume checkpoint's clock)
-        return ck.load_tensors(run / ck.RESUME)[1]["elapsed"]
+        return rf.load_tensors(run / rf.RESUME)[1]["elapsed"]
 
     before = trained_s()
     assert main(["fit", "--resume", str(run), "--budget", "2s", "--quiet"]) == 0

@@ -448,6 +448,17 @@ def apply_overrides(cfg: Config, overrides: list[str] | tuple[str, ...]) -> Conf
     return from_dict(tree, cfg, source="--set")
 
 
+def with_values(cfg: Config, values: dict[str, Any], source: str = "options") -> Config:
+    """``cfg`` with ``{"section.key": value}`` set (None: left as it is), each value validated like a
+    TOML key: how a verb's own flags (``--budget``, ``--seed`` ...) reach the config."""
+    tree: dict[str, dict[str, Any]] = {}
+    for key, value in values.items():
+        if value is not None:
+            section, _, name = key.partition(".")
+            tree.setdefault(section, {})[name] = value
+    return from_dict(tree, cfg, source)
+
+
 def help_keys() -> str:
     """One line per key: name, default, allowed values and help."""
     out = []

@@ -96,3 +96,40 @@ def write_with(target: str | Path, writer: Callable[[Path], None], overwrite: bo
     with atomic_path(target, overwrite) as tmp:
         writer(tmp)
     return Path(target)
+
+
+def read_numeric_csv(path: str | Path, what: str) -> tuple[list[str], list[list[float | None]]]:
+    """``(header, rows)`` of a CSV file of numbers with a header line (``what`` names it in errors);
+    an empty cell is None, so a written ``nan`` stays distinct from a cell left blank."""
+    import csv
+
+    path = Path(path)
+    try:
+        with open(path, newline="", encoding="utf-8") as fh:
+            lines = list(csv.reader(fh))
+    except FileNotFoundError:
+        raise KinecastError(path, f"{what} not found") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise KinecastError(path, f"cannot read {what} ({exc})") from None
+    if not lines or not any(h.strip() for h in lines[0]):
+        raise KinecastError(path, f"{what} is empty (expected a header line)")
+    header = [h.strip() for h in lines[0]]
+    rows = []
+    for number, line in enumerate(lines[1:], start=2):
+        if len(line) != len(header):
+            raise KinecastError(path, f"line {number}: {len(line)} cells but the header has {len(header)}")
+        try:
+            rows.append([float(cell) if cell.strip() else None for cell in line])
+        except ValueError:
+            bad = next(i for i, c in enumerate(line) if c.strip() and not _is_number(c))
+            raise KinecastError(path, f"line {number}: column '{header[bad]}' has a non-number "
+                                      f"{line[bad]!r}") from None
+    return header, rows
+
+
+def _is_number(text: str) -> bool:
+    try:
+        float(text)
+    except ValueError:
+        return False
+    return True

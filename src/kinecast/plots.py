@@ -13,7 +13,6 @@ Forecast scores describe statistical extrapolations, not measurements.
 
 from __future__ import annotations
 
-import csv
 import math
 from pathlib import Path
 from typing import Mapping, NamedTuple, Sequence
@@ -24,7 +23,7 @@ from matplotlib.figure import Figure
 from matplotlib.ticker import FuncFormatter, LogLocator, NullFormatter, ScalarFormatter
 
 from .errors import KinecastError
-from .fileio import write_with
+from .fileio import read_numeric_csv, write_with
 from .render import MIN_SPREAD_SCALE, spread_scale, time_format
 
 PLOT_SUFFIXES = (".png", ".svg", ".pdf")
@@ -189,28 +188,9 @@ def _save(fig: Figure, path: Path, overwrite: bool) -> Path:
 
 def read_training_log(path: str | Path) -> dict[str, np.ndarray]:
     """Numeric columns of a training log CSV; empty cells become NaN."""
-    path = Path(path)
-    try:
-        with open(path, newline="", encoding="utf-8") as fh:
-            rows = list(csv.reader(fh))
-    except FileNotFoundError:
-        raise KinecastError(path, "training log not found") from None
-    except (OSError, UnicodeDecodeError) as exc:
-        raise KinecastError(path, f"cannot read training log ({exc})") from None
-    if not rows or not any(h.strip() for h in rows[0]):
-        raise KinecastError(path, "training log is empty (expected a header line)")
-    header = [h.strip() for h in rows[0]]
-    data = {h: [] for h in header}
-    for line, row in enumerate(rows[1:], start=2):
-        if len(row) != len(header):
-            raise KinecastError(path, f"line {line}: {len(row)} cells but the header has {len(header)}")
-        for name, cell in zip(header, row):
-            try:
-                data[name].append(float(cell) if cell.strip() else math.nan)
-            except ValueError:
-                raise KinecastError(path, f"line {line}: column '{name}' has a non-number "
-                                          f"{cell!r}") from None
-    return {k: np.asarray(v, dtype=np.float64) for k, v in data.items()}
+    header, rows = read_numeric_csv(path, "training log")
+    return {name: np.array([math.nan if row[i] is None else row[i] for row in rows], dtype=np.float64)
+            for i, name in enumerate(header)}
 
 
 def _log_columns(log) -> tuple[str, dict[str, np.ndarray]]:

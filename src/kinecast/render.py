@@ -446,14 +446,16 @@ def contact_sheet(frames_or_panels: np.ndarray, times: np.ndarray, every: int, o
     tile_h = th + (BAND if label else 0)
     # choose the column count that makes the sheet closest to square in pixels
     cols = int(np.clip(round(math.sqrt(len(picks) * tile_h / tw)), 1, len(picks)))
-    rows = -(-len(picks) // cols)
-    sheet = np.full((rows * tile_h + (rows - 1) * GAP, cols * tw + (cols - 1) * GAP, 3), BACKGROUND,
-                    np.uint8)
-    fmt = time_format(times)
-    for n, i in enumerate(picks):
-        y, x = (n // cols) * (tile_h + GAP), (n % cols) * (tw + GAP)
-        xo = x + (tw - frames8.shape[2]) // 2
-        sheet[y:y + th, xo:xo + frames8.shape[2]] = frames8[i]
-        if label:
-            _text(sheet, (y + th, x, y + tile_h, x + tw), fmt.format(times[i]))
+    tiles = np.full((len(picks), tile_h, tw, 3), BACKGROUND, np.uint8)
+    xo = (tw - frames8.shape[2]) // 2
+    tiles[:, :th, xo:xo + frames8.shape[2]] = frames8[picks]
+    if label:
+        fmt = time_format(times)
+        for tile, i in zip(tiles, picks):
+            _text(tile, (th, 0, tile_h, tw), fmt.format(times[i]))
+    import torch
+    from torchvision.utils import make_grid  # lazy: only contact sheets need them
+
+    grid = make_grid(torch.from_numpy(tiles).permute(0, 3, 1, 2), nrow=cols, padding=GAP, pad_value=BACKGROUND)
+    sheet = np.ascontiguousarray(grid.permute(1, 2, 0).numpy())
     return write_bytes(path, iio.imwrite("<bytes>", sheet, extension=".png"), overwrite)

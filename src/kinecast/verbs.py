@@ -28,15 +28,16 @@ def with_seed(args, cfg):
     """``cfg`` with ``--seed`` (when given) as ``forecast.seed``, checked like the config key."""
     from . import config as cfgmod
 
-    return cfg if args.seed is None else cfgmod.apply_overrides(cfg, [f"forecast.seed={args.seed}"])
+    return cfgmod.with_values(cfg, {"forecast.seed": args.seed})
 
 
-def open_run(args, cfg):
-    """The run's model and config (with this command's --set overrides) and the recording."""
+def open_run(args, cfg, path: str | Path | None = None):
+    """The run's model and config (with this command's --set overrides) and the recording
+    (``path``, default ``args.path``)."""
     from . import config as cfgmod
     from .forecast import core
     from .frames import read_recording
-    from .train.checkpoint import load_run
+    from .runfolder import load_run
     from .train.distributed import pick_device
 
     device = pick_device(args.device or cfg.train.device)
@@ -51,7 +52,7 @@ def open_run(args, cfg):
                                                 "colour and model keys cannot change")
     for section in ("forecast", "score"):  # per-use settings come from this command
         setattr(run_cfg, section, getattr(cfg, section))
-    rec = read_recording(args.path, run_cfg.data)
+    rec = read_recording(args.path if path is None else path, run_cfg.data)
     core.check_compatible(rec, run_cfg)
     return model, run_cfg, rec, device
 

@@ -30,6 +30,14 @@ TIFF_SUFFIXES = (".tif", ".tiff")
 Decoder = Callable[[FrameSink], dict]
 
 
+# File readers: (suffixes, decoder, what the user calls it). A new file format is one entry here plus
+# its decoder ``decode(path, sink) -> facts``; a folder of frame images is read by decode_folder.
+READERS = (
+    (TIFF_SUFFIXES, decode_stack, "a TIFF stack"),
+    (VIDEO_SUFFIXES, decode_video, "a video (" + ", ".join(s.lstrip(".") for s in VIDEO_SUFFIXES) + ")"),
+)
+
+
 def _source(path: Path) -> tuple[list[Path], Decoder]:
     """The files behind ``path`` and the function that decodes them into a sink."""
     if path.is_dir():
@@ -38,14 +46,12 @@ def _source(path: Path) -> tuple[list[Path], Decoder]:
     if not path.is_file():
         raise KinecastError(path, "is neither a folder nor a file")
     suffix = path.suffix.lower()
-    if suffix in TIFF_SUFFIXES:
-        return [path], lambda sink: decode_stack(path, sink)
-    if suffix in VIDEO_SUFFIXES:
-        return [path], lambda sink: decode_video(path, sink)
+    for suffixes, decode, _ in READERS:
+        if suffix in suffixes:
+            return [path], lambda sink: decode(path, sink)
     if suffix in IMAGE_SUFFIXES:
         raise KinecastError(path, "is a single image; pass the folder that holds the frames")
-    allowed = "a folder of PNG/JPEG/BMP/TIFF frames, a TIFF stack, or a video (" + \
-        ", ".join(s.lstrip(".") for s in VIDEO_SUFFIXES) + ")"
+    allowed = ", ".join(["a folder of PNG/JPEG/BMP/TIFF frames"] + [label for _, _, label in READERS])
     raise KinecastError(path, f"unknown extension {path.suffix or '(none)'!r}: expected {allowed}")
 
 

@@ -21,6 +21,12 @@ from scipy.optimize import linear_sum_assignment
 
 from ..errors import KinecastError
 
+# A pixel belongs to the object region of a frame pair when truth or prediction differs from the
+# background there by more than this (intensity summed over channels; 0.1 is about 25 grey levels of
+# an 8-bit source, several times the rigs' camera noise). Measured on a 3.7 px disc (the pendulum bob
+# at 64 px): the region's SSIM is 0.95 for a 0.5 px shift, 0.82 for 1 px and 0.57 for 2 px.
+OBJECT_REGION_LEVEL = 0.1
+
 # Foreground pixels are those whose background difference exceeds this share of the frame's largest
 # difference, plus a one-pixel ring around them (so faint anti-aliased edges still weigh in); the rest
 # count as noise.
@@ -101,6 +107,24 @@ def foreground(frames, background=None, blur: float = TRACK_BLUR_PX) -> np.ndarr
     if blur > 0:
         diff = ndimage.gaussian_filter(diff, (0, 0, blur, blur), mode="nearest")
     return np.abs(diff).sum(axis=1)
+
+
+def object_region(pred, truth, background, level: float = OBJECT_REGION_LEVEL) -> np.ndarray:
+    """Pixels where truth or prediction (arrays (T, C, H, W)) differs from the static background by
+    more than ``level``.
+
+    The difference is summed over channels (see :func:`foreground`). A prediction that draws no
+    object is judged on the true object's pixels; one that draws it elsewhere on both places.
+
+    Returns
+    -------
+    bool ndarray (T, H, W)
+    """
+    p, t = _as_frames(pred, "predicted frames"), _as_frames(truth, "truth frames")
+    if p.shape != t.shape:
+        raise KinecastError("predicted frames", f"shape {p.shape} does not match the truth's {t.shape}")
+    # unfiltered: ``level`` is an absolute difference per pixel
+    return (foreground(p, background, blur=0.0) > level) | (foreground(t, background, blur=0.0) > level)
 
 
 def foreground_mask(fg: np.ndarray, threshold: float = FOREGROUND_FRACTION) -> np.ndarray:

@@ -115,6 +115,9 @@ class LatentODE(nn.Module):
         # Sampled futures spread about their mean by this factor (fitted on validation trials after
         # training, see kinecast.model.calibration; 1 = the posterior's own spread).
         self.register_buffer("spread_scale", torch.ones(()))
+        # Std of the pixel noise that belongs to the predictive distribution of sampled futures (fitted
+        # with the spread scale; used by the scores' bands, see calibration.band_inside; 0 = none).
+        self.register_buffer("pixel_noise", torch.zeros(()))
 
     # ----------------------------------------------------------------- background and decoding
     def set_background(self, bg: torch.Tensor | None) -> None:
@@ -261,18 +264,9 @@ class LatentODE(nn.Module):
             ``recon`` the mean frames [B, T, C, H, W]. Only ``loss`` carries gradients; the
             other entries are detached (for logging).
         """
-        self._check_frames(frames, "forward", self.k)
         frames = frames.contiguous()
         B, T = frames.shape[:2]
-        t = torch.as_tensor(t, dtype=frames.dtype).to(frames.device)
-        if t.shape != (T,):
-            raise ValueError(f"forward: t must have shape [{T}], got {list(t.shape)}")
-        if n_total_frames < 1:
-            raise ValueError(f"forward: n_total_frames must be positive, got {n_total_frames}")
-        obs = (torch.ones(B, T, dtype=torch.bool, device=frames.device) if mask is None
-               else torch.as_tensor(mask, dtype=torch.bool).to(frames.device))
-        if obs.shape != (B, T):
-            raise ValueError(f"forward: mask must have shape [{B}, {T}], got {list(obs.shape)}")
+        t, obs = self._check_batch(frames, t, n_total_frames, mask)
         obs_f = obs.to(frames.dtype)
         n_obs = obs_f.sum().clamp_min(1.0)
 
@@ -302,25 +296,46 @@ class LatentODE(nn.Module):
         kl_w = self.field.kl() * (T / float(n_total_frames)) / norm
         mse = (((recon - frames) ** 2).flatten(2).mean(2) * obs_f).sum() / obs_f.sum().clamp_min(1.0)
 
-        agreement = frames.new_zeros(())
-        if self.cfg.agreement_weight > 0 and s.shape[1] > 1:
-            later, x_later, s_later = obs[:, 1:], frames[:, 1:], s[:, 1:]
-            ag_scale = scale
-            if 0 < agreement_frames < later.shape[1]:
-                pick = torch.randperm(later.shape[1], device=frames.device)[:agreement_frames]
-                n_later = later.sum()
-                later, x_later, s_later = later[:, pick], x_later[:, pick], s_later[:, pick]
-                ag_scale = scale * n_later / later.sum().clamp_min(1)
-            if later.any():
-                # both sides learn: the trajectory follows the encoder's reading of each frame and
-                # the encoder learns to read every frame, not only first ones (measured on one clip:
-                # a stop-gradient on the encoder side made weights >= 1 collapse to the mean frame)
-                enc_mean, _ = self.encode_positions(x_later[later])
-                agreement = ag_scale * 0.5 * ((enc_mean - s_later[later]) ** 2).sum() / B / norm
+        agreement = self._agreement(frames, s, obs, scale / B / norm, agreement_frames)
         loss = nll + beta * (kl_s0 + kl_v0 + kl_w) + self.cfg.agreement_weight * agreement
         terms = {"nll": nll, "kl_s0": kl_s0, "kl_v0": kl_v0, "kl_w": kl_w, "agreement": agreement,
                  "mse": mse, "recon": recon}
         return {"loss": loss, **{k: v.detach() for k, v in terms.items()}}
+
+    def _check_batch(self, frames, t, n_total_frames: int, mask) -> tuple[torch.Tensor, torch.Tensor]:
+        """:meth:`forward`'s inputs checked: ``(t as a tensor, mask of present frames [B, T])``."""
+        self._check_frames(frames, "forward", self.k)
+        B, T = frames.shape[:2]
+        t = torch.as_tensor(t, dtype=frames.dtype).to(frames.device)
+        if t.shape != (T,):
+            raise ValueError(f"forward: t must have shape [{T}], got {list(t.shape)}")
+        if n_total_frames < 1:
+            raise ValueError(f"forward: n_total_frames must be positive, got {n_total_frames}")
+        obs = (torch.ones(B, T, dtype=torch.bool, device=frames.device) if mask is None
+               else torch.as_tensor(mask, dtype=torch.bool).to(frames.device))
+        if obs.shape != (B, T):
+            raise ValueError(f"forward: mask must have shape [{B}, {T}], got {list(obs.shape)}")
+        return t, obs
+
+    def _agreement(self, frames, s, obs, scale, agreement_frames: int) -> torch.Tensor:
+        """The agreement term of :meth:`forward` (times ``scale``): the position encoder's means on
+        the present frames 1.. against the trajectory's positions ``s``, on at most
+        ``agreement_frames`` of them drawn at random (0: all; rescaled to stay unbiased)."""
+        if not (self.cfg.agreement_weight > 0 and s.shape[1] > 1):
+            return frames.new_zeros(())
+        later, x_later, s_later = obs[:, 1:], frames[:, 1:], s[:, 1:]
+        if 0 < agreement_frames < later.shape[1]:
+            pick = torch.randperm(later.shape[1], device=frames.device)[:agreement_frames]
+            n_later = later.sum()
+            later, x_later, s_later = later[:, pick], x_later[:, pick], s_later[:, pick]
+            scale = scale * n_later / later.sum().clamp_min(1)
+        if not later.any():
+            return frames.new_zeros(())
+        # both sides learn: the trajectory follows the encoder's reading of each frame and the encoder
+        # learns to read every frame, not only first ones (measured on one clip: a stop-gradient on
+        # the encoder side made weights >= 1 collapse to the mean frame)
+        enc_mean, _ = self.encode_positions(x_later[later])
+        return scale * 0.5 * ((enc_mean - s_later[later]) ** 2).sum()
 
     # --------------------------------------------------------------------------- rollout
     def sample_latents(self, ctx: torch.Tensor, t: torch.Tensor, samples: int, mean_weights: bool,

@@ -149,20 +149,18 @@ def _run_model(args, cfg, out: Path) -> int:
     from .. import config as cfgmod
     from ..verbs import at_least_one, open_run, with_seed
     from ..render import comparison_columns, contact_sheet, panel_frames, write_frames
-    from ..train.checkpoint import load_run
+    from ..runfolder import load_run
     from .evaluate import coverage_text, evaluate, holdout_split
     from .report import RUN_DIGEST, weights_sha256
     from .verdict import verdict
 
-    sets = [f'score.holdout="{args.holdout}"'] if args.holdout else []
-    sets += [f"score.context={args.context}"] if args.context is not None else []
-    cfg = with_seed(args, cfgmod.apply_overrides(cfg, sets))
+    cfg = with_seed(args, cfgmod.with_values(cfg, {"score.holdout": args.holdout or None,
+                                                   "score.context": args.context}))
     holdout = cfg.score.holdout
     samples = at_least_one("--samples", args.samples, cfg.forecast.samples)
     _prepare_out(out, args.overwrite, [args.path, args.run])
-    if holdout.startswith("trial:"):
-        args.path = str(Path(args.path) / holdout.split(":", 1)[1])
-    model, run_cfg, rec, device = open_run(args, cfg)
+    path = Path(args.path) / holdout.split(":", 1)[1] if holdout.startswith("trial:") else Path(args.path)
+    model, run_cfg, rec, device = open_run(args, cfg, path)
     digest = weights_sha256(args.run)  # names the weights scored; `kinecast report` checks it
     if holdout.startswith("trial:"):
         cond_start, first = 0, run_cfg.score.context
@@ -180,7 +178,7 @@ def _run_model(args, cfg, out: Path) -> int:
     scale = recording_px_per_model_px(rec)
     write_scores(out, result, run_cfg, {"run": str(Path(args.run).resolve()), RUN_DIGEST: digest,
                                         **({"recording_px_per_model_px": scale} if scale else {}),
-                                        "recording": str(args.path), "holdout": holdout,
+                                        "recording": str(path), "holdout": holdout,
                                         "context_frames": first - cond_start, "samples": samples,
                                         **({"seed": run_cfg.forecast.seed} if samples > 1 else {})})
     spread = result["samples"].std(axis=0) if samples > 1 else None

@@ -185,8 +185,9 @@ def evaluate(model, cfg: Config, rec: Recording, cond_start: int, first: int, n:
     if samples > 1 and present.any():
         drawn, true = extra["model"].samples[:, present], truth[present]
         region = object_region(preds["model"][present], true, background)
-        measures = {"coverage": band_coverage(drawn, true, cfg.score.band),
-                    "object_coverage": band_coverage(drawn, true, cfg.score.band, region=region),
+        noise = float(model.pixel_noise)
+        measures = {"coverage": band_coverage(drawn, true, cfg.score.band, noise=noise),
+                    "object_coverage": band_coverage(drawn, true, cfg.score.band, region=region, noise=noise),
                     "position_coverage": position_coverage(drawn, true, background, cfg.score.band)}
         for key, per in measures.items():
             result[key] = np.full(n, np.nan)

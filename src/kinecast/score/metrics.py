@@ -19,7 +19,8 @@ import numpy as np
 
 from ..config import ScoreConfig
 from ..errors import KinecastError
-from ..frames.tracks import FOREGROUND_FRACTION, centroid_track, foreground, median_background
+from ..model.calibration import band_inside
+from ..frames.tracks import FOREGROUND_FRACTION, centroid_track, foreground, median_background, object_region
 
 # Frames are intensities in [0, 1] (project convention), so the peak signal (MAX, the data range) is 1.
 DATA_RANGE = 1.0
@@ -29,11 +30,6 @@ SSIM_K2 = 0.03
 # SSIM works through the frames in chunks of at most this many values (about 32 MB per float64
 # temporary), so long or large recordings do not exhaust memory.
 SSIM_CHUNK_VALUES = 1 << 22
-# A pixel belongs to the object region of a frame pair when truth or prediction differs from the
-# background there by more than this (intensity summed over channels; 0.1 is about 25 grey levels of
-# an 8-bit source, several times the rigs' camera noise). Measured on a 3.7 px disc (the pendulum bob
-# at 64 px): the region's SSIM is 0.95 for a 0.5 px shift, 0.82 for 1 px and 0.57 for 2 px.
-OBJECT_REGION_LEVEL = 0.1
 # Defaults of the tunables below are read from the one configuration tree (section `score`);
 # callers pass the values of their own Config.
 _DEFAULTS = ScoreConfig()
@@ -157,21 +153,6 @@ def ssim(pred, truth, window: int = _DEFAULTS.ssim_window, region=None) -> np.nd
     return np.concatenate(out)
 
 
-def object_region(pred, truth, background, level: float = OBJECT_REGION_LEVEL) -> np.ndarray:
-    """Pixels where truth or prediction differs from the static background by more than ``level``.
-
-    The difference is summed over channels (see ``tracks.foreground``). A prediction that draws no
-    object is judged on the true object's pixels; one that draws it elsewhere on both places.
-
-    Returns
-    -------
-    bool ndarray (T, H, W)
-    """
-    p, t = _pair(pred, truth)
-    # unfiltered: ``level`` is an absolute difference per pixel
-    return (foreground(p, background, blur=0.0) > level) | (foreground(t, background, blur=0.0) > level)
-
-
 def frame_metrics(pred, truth, background=None, threshold: float = FOREGROUND_FRACTION,
                   window: int = _DEFAULTS.ssim_window) -> dict[str, np.ndarray]:
     """All per-frame scores of a prediction.
@@ -287,12 +268,14 @@ def leading_run(good, times, origin: float | None = None) -> tuple[int, float]:
     return frames, seconds
 
 
-def band_coverage(samples, truth, band: float = _DEFAULTS.band, region=None) -> np.ndarray:
+def band_coverage(samples, truth, band: float = _DEFAULTS.band, region=None, noise: float = 0.0) -> np.ndarray:
     """Share of true pixel values inside the central ``band`` interval of sampled futures, per frame.
 
     The interval at each pixel runs from the ``(1 - band) / 2`` to the ``(1 + band) / 2`` empirical
-    quantile of the samples (linear interpolation between order statistics, numpy's default). For
-    calibrated samples the share is close to ``band``; well below means over-confident forecasts.
+    quantile of the samples (linear interpolation between order statistics, numpy's default), or,
+    with ``noise`` > 0, of the samples blurred by Gaussian pixel noise of that std (the run's fitted
+    ``pixel_noise``; see :func:`kinecast.model.calibration.band_inside`). For calibrated samples the
+    share is close to ``band``; well below means over-confident forecasts.
 
     Parameters
     ----------
@@ -321,8 +304,7 @@ def band_coverage(samples, truth, band: float = _DEFAULTS.band, region=None) -> 
                                        f"got {s.shape}")
     if not 0.0 < band <= 1.0:
         raise KinecastError("score.band", f"bad value {band!r}: allowed a number in (0, 1]")
-    lo, hi = np.quantile(s, [(1.0 - band) / 2.0, (1.0 + band) / 2.0], axis=0)
-    inside = (t >= lo) & (t <= hi)
+    inside = band_inside(s, t, band, noise)
     if region is None:
         return inside.mean(axis=(1, 2, 3))
     r = np.broadcast_to(np.asarray(region, dtype=bool)[:, None], inside.shape)

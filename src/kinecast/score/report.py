@@ -20,7 +20,7 @@ from pathlib import Path
 from ..errors import KinecastError
 from ..fileio import check_can_create, write_text
 from ..plots import method_label
-from ..train import checkpoint as ck
+from .. import runfolder as rf
 
 CAUTIONS = [
     "Forecasts, filled frames and every score on this page are statistical extrapolations from the "
@@ -93,7 +93,7 @@ DIGEST_CHUNK = 1 << 20  # bytes read at a time while hashing
 def weights_sha256(run: str | Path) -> str:
     """Hex SHA-256 of ``RUN/weights.safetensors``: names the weights a scores folder was made with."""
     digest = hashlib.sha256()
-    with open(Path(run) / ck.WEIGHTS, "rb") as fh:
+    with open(Path(run) / rf.WEIGHTS, "rb") as fh:
         for chunk in iter(lambda: fh.read(DIGEST_CHUNK), b""):
             digest.update(chunk)
     return digest.hexdigest()
@@ -275,9 +275,9 @@ def _training_section(summary: dict) -> tuple[str, str]:
 def build_report(run: str | Path, scores: list = (), clips: list = ()) -> str:
     """The report page as an HTML string."""
     run = Path(run)
-    ck.check_run_folder(run)
-    summary = json.loads((run / ck.SUMMARY).read_text()) if (run / ck.SUMMARY).is_file() else {}
-    config_text = (run / ck.CONFIG).read_text()
+    rf.check_run_folder(run)
+    summary = json.loads((run / rf.SUMMARY).read_text()) if (run / rf.SUMMARY).is_file() else {}
+    config_text = (run / rf.CONFIG).read_text()
     training, technical = _training_section(summary)
     parts = [
         "<!doctype html><html><head><meta charset='utf-8'>",
@@ -286,8 +286,8 @@ def build_report(run: str | Path, scores: list = (), clips: list = ()) -> str:
         "<div class='caution'><strong>Cautions</strong><ul>"
         + "".join(f"<li>{html.escape(c)}</li>" for c in CAUTIONS) + "</ul></div>",
         "<h2>Training</h2>", training,
-        _media(run / ck.LOSS_PLOT, "training terms and validation forecast error against step"),
-        _media(run / ck.BACKGROUND, "static background the decoder adds to (per-pixel median)"),
+        _media(run / rf.LOSS_PLOT, "training terms and validation forecast error against step"),
+        _media(run / rf.BACKGROUND, "static background the decoder adds to (per-pixel median)"),
     ]
     technical = [technical]
     digest = weights_sha256(run) if scores else ""

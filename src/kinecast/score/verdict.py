@@ -224,7 +224,7 @@ def judge_run(run, recs, window: int, device="cpu") -> dict:
     function as ``judge``: :func:`judge_recordings` without its per-recording detail, plus
     ``judged_on`` (the recordings' sources) and ``scores`` {span: {method: facts}}.
     """
-    from ..train.checkpoint import load_run
+    from ..runfolder import load_run
 
     best, cfg = load_run(run, device)  # the run's own config.toml and best weights
     judged = judge_recordings(best, cfg, recs, window, device)

@@ -37,7 +37,7 @@ def run(args, cfg) -> int:
             raise KinecastError("--out", "give either --out RUN or --resume RUN, not both")
         if args.config:
             raise KinecastError("--config", "a resumed run keeps its own config.toml; use --set to change keys")
-        from .checkpoint import CONFIG, check_run_folder
+        from ..runfolder import CONFIG, check_run_folder
 
         check_run_folder(Path(args.resume), need_resume=True)
         cfg = cfgmod.apply_overrides(cfgmod.load(Path(args.resume) / CONFIG), args.overrides)
@@ -48,15 +48,13 @@ def run(args, cfg) -> int:
         if not args.paths:
             raise KinecastError("kinecast fit", "no recordings given")
         out = args.out
-    sugar = [f"train.{key}={value}" for key, value in
-             (("budget", f'"{args.budget}"' if args.budget else None), ("steps", args.steps),
-              ("device", f'"{args.device}"' if args.device else None), ("seed", args.seed))
-             if value is not None]
+    values = {"train.budget": args.budget, "train.steps": args.steps, "train.device": args.device,
+              "train.seed": args.seed}
     if args.steps is not None and args.budget is None:
-        sugar.append('train.budget="0"')
+        values["train.budget"] = "0"  # the steps given are the budget
     if args.budget is not None and args.steps is None:
-        sugar.append("train.steps=0")  # the budget given is the budget (a config's step count would cut it)
-    cfg = cfgmod.apply_overrides(cfg, sugar)
+        values["train.steps"] = 0  # the budget given is the budget (a config's step count would cut it)
+    cfg = cfgmod.with_values(cfg, values)
     more = bool(args.resume) and (args.budget is not None or args.steps is not None)
     summary = fit(args.paths, out, cfg, resume=bool(args.resume), overwrite=args.overwrite, more=more,
                   show_progress=not args.quiet, judge=judge_run)
@@ -71,6 +69,10 @@ def run(args, cfg) -> int:
             print(f"sampled futures: spread scaled by {summary['spread_scale']:.3g} (fitted on the validation "
                   f"trials so that {100 * cfg.score.band:.0f} % of their true keypoint positions fall inside "
                   "the futures' central region; applies to forecast/score with --samples > 1)")
+            if summary.get("pixel_noise"):
+                print(f"sampled futures: pixel noise of std {summary['pixel_noise']:.3g} (intensity 0-1) belongs "
+                      "to their predictive distribution (fitted likewise on the object's pixels; used by the "
+                      "score's coverage bands)")
         if summary.get("untrained"):
             print(f"kinecast: warning: the model is untrained: {summary['untrained']}. Its forecasts mean "
                   f"nothing yet; train longer (kinecast fit --resume {out} --budget 5m adds 5 minutes).")

@@ -35,7 +35,7 @@ try:
 except ModuleNotFoundError:  # Python < 3.11
     import tomli as tomllib  # type: ignore[no-redef]
 
-LOCK_FILE = "fit.lock"
+from ..runfolder import LOCK as LOCK_FILE
 # Tries at taking the lock when a stale one is cleared in between: each failed try means another
 # process took or cleared it meanwhile, which ends after one or two rounds; the bound only stops a loop
 TAKE_TRIES = 5
