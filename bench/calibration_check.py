@@ -27,7 +27,7 @@ if __package__ in (None, ""):  # run as a script: make `kinecast` importable fro
 from kinecast.frames import read_recording  # noqa: E402
 from kinecast.runfolder import SUMMARY, load_run  # noqa: E402
 from kinecast.score.evaluate import evaluate  # noqa: E402
-from kinecast.train.loop import _calibrate  # noqa: E402
+from kinecast.train.loop import calibrate_run  # noqa: E402
 
 SAMPLES, HORIZON = 16, 60
 KEYS = {"position": "mean_position_coverage", "object band": "mean_object_band_coverage",
@@ -45,7 +45,7 @@ def main(argv=None) -> int:
         model, cfg = load_run(run)
         summary = json.loads((run / SUMMARY).read_text())
         vals = [read_recording(p, cfg.data) for p in summary["validated_on"]]
-        fitted = _calibrate(run, vals, summary["longest_window"], cfg, "cpu")
+        fitted = calibrate_run(run, vals, summary["longest_window"], cfg, "cpu")
         print(f"{args.run}: fitted on {len(vals)} validation trial(s): {fitted}")
         for label in ("without pixel noise", "with pixel noise"):
             model, cfg = load_run(run)

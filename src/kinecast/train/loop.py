@@ -95,7 +95,7 @@ def _validate_and_keep(model, val_sampler, val_window: int, cfg, cur: Curriculum
     return val
 
 
-def _calibrate(run: Path, recs, window: int, cfg, device) -> dict:
+def calibrate_run(run: Path, recs, window: int, cfg, device) -> dict:
     """Fit the best weights' spread scale, then their pixel noise, on ``recs`` (held-out trials) and
     store both in the run's weights file (see :mod:`kinecast.model.calibration`); {} when no trial
     has room for it, else ``{"spread_scale": ..., "pixel_noise": ...}``."""
@@ -528,7 +528,7 @@ class _Trainer:
                 rf.save_tensors(run / rf.WEIGHTS, self.model.state_dict(), {"step": st.step, "val_mse": val})
                 st.cur.best = val if math.isfinite(val) else st.cur.best
             self.save_resume()
-            fitted = (_calibrate(run, data.val, data.longest, cfg, self.ctx.device)
+            fitted = (calibrate_run(run, data.val, data.longest, cfg, self.ctx.device)
                       if cfg.train.calibration_samples > 1 and data.val else {})
             judged = judge(run, data.val or data.train[-1:], data.longest, self.ctx.device) if judge else None
             from ..plots import loss_curve
