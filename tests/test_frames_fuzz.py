@@ -11,16 +11,17 @@ import io
 import tempfile
 from pathlib import Path
 
+import cv2
 import imageio.v2 as iio2
 import imageio.v3 as iio
 import numpy as np
 import tifffile
-from hypothesis import HealthCheck, given, settings
+from hypothesis import HealthCheck, example, given, settings
 from hypothesis import strategies as st
 
 from kinecast.config import DataConfig
 from kinecast.errors import KinecastError
-from kinecast.frames import Recording, read_recording
+from kinecast.frames import read_recording
 from kinecast.frames.timestamps import match_times, parse_times_text
 
 FUZZ = settings(max_examples=30, deadline=None, database=None,
@@ -68,17 +69,37 @@ def damaged(draw, suffix: str):
     return bytes(data)
 
 
-def _read_only_kinecast_errors(path: Path, cfg: DataConfig) -> None:
+def _reference_frame(img: np.ndarray, size: int) -> np.ndarray:
+    """An intact 12 x 16 uint8 frame as the model sees it: /255 (8-bit full scale, common practice),
+    OpenCV area resize to 8 x 6 and one replicated edge row above and below (cv2.copyMakeBorder
+    BORDER_REPLICATE), as in tests/test_frames.py."""
+    h, w = img.shape
+    ch = int(np.floor(h * size / w + 0.5))
+    small = cv2.resize(img.astype(np.float32) / 255.0, (size, ch), interpolation=cv2.INTER_AREA)
+    top = (size - ch) // 2
+    return cv2.copyMakeBorder(small, top, size - ch - top, 0, 0, cv2.BORDER_REPLICATE)
+
+
+def _read_only_kinecast_errors(path: Path, cfg: DataConfig, intact: list[np.ndarray] = ()) -> None:
+    """Either one-line KinecastError naming the file, or a recording that keeps the Recording
+    contract the constructor does not enforce, with any ``intact`` leading frames read correctly."""
     try:
         rec = read_recording(path, cfg)
     except KinecastError as exc:
         assert "\n" not in str(exc) and str(path.name) in str(exc)
     else:
-        assert isinstance(rec, Recording) and np.isfinite(rec.frames).all()
+        # Recording's documented contract: intensities in [0, 1], strictly increasing finite times,
+        # frames at the configured model size
+        assert np.isfinite(rec.frames).all() and rec.frames.min() >= 0 and rec.frames.max() <= 1
+        assert np.isfinite(rec.times).all() and np.all(np.diff(rec.times) > 0)
+        assert rec.frames.shape[2:] == (cfg.size, cfg.size)
+        for got, img in zip(rec.frames, intact):
+            np.testing.assert_allclose(got[0], _reference_frame(img, cfg.size), atol=1e-5)
 
 
 @FUZZ
 @given(damaged(".png"))
+@example(VALID[".png"])  # an undamaged third frame: always runs the reference comparison
 def test_damaged_png_in_a_folder(data):
     with tempfile.TemporaryDirectory() as d:
         folder = Path(d) / "rec"
@@ -86,7 +107,7 @@ def test_damaged_png_in_a_folder(data):
         for i, f in enumerate(_frames(2)):
             iio.imwrite(folder / f"f{i}.png", f)
         (folder / "f2.png").write_bytes(data)
-        _read_only_kinecast_errors(folder, DataConfig(size=8, cache=False))
+        _read_only_kinecast_errors(folder, DataConfig(size=8, cache=False), intact=_frames(2))
 
 
 @FUZZ

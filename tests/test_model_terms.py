@@ -1,13 +1,16 @@
 """The ELBO's pieces: Gaussian KLs, pixel likelihoods, their assembly, the mask and the background.
 
 Sources: torch.distributions (kl_divergence, Bernoulli/Normal log_prob) as the reference library
-for the closed-form KL and the likelihoods; the ELBO of a latent ODE VAE (sum of log-likelihoods
-minus the KL terms; Kingma & Welling 2014) for the assembly.
+for the closed-form KL and the likelihoods; scikit-image's mean_squared_error for the frame MSE; the
+ELBO of a latent ODE VAE (sum of log-likelihoods minus the KL terms; Kingma & Welling 2014) for the
+assembly.
 """
 
 from __future__ import annotations
 
+import pytest
 import torch
+from skimage.metrics import mean_squared_error
 from torch.distributions import Bernoulli, Normal, kl_divergence
 
 from kinecast.config import Config
@@ -112,7 +115,9 @@ def test_elbo_assembly_per_pixel():
         torch.testing.assert_close(out["agreement"], agreement)
         torch.testing.assert_close(out["loss"], out["nll"] + 0.3 * (kl_s + kl_v + kl_w)
                                    + 0.5 * out["agreement"])
-        torch.testing.assert_close(out["mse"], ((out["recon"] - x) ** 2).mean())
+        # the frame MSE against scikit-image's mean_squared_error (reference library), in float64
+        ref_mse = mean_squared_error(x.double().numpy(), out["recon"].detach().double().numpy())
+        assert float(out["mse"]) == pytest.approx(ref_mse, rel=1e-5)
 
 
 def test_mask_removes_dropped_frames_from_the_likelihood():
@@ -130,6 +135,10 @@ def test_mask_removes_dropped_frames_from_the_likelihood():
     c = m(y, t, 20, sample=False)
     for key in ("loss", "nll", "mse", "agreement"):
         torch.testing.assert_close(a[key], b[key])
+    # the masked MSE is scikit-image's mean_squared_error over the present frames only
+    keep = mask[0].numpy()
+    ref_mse = mean_squared_error(x[:, keep].double().numpy(), a["recon"][:, keep].detach().double().numpy())
+    assert float(a["mse"]) == pytest.approx(ref_mse, rel=1e-5)
     assert abs(float(c["loss"].detach()) - float(b["loss"].detach())) > 1e-6
     full = m(x, t, 20, sample=False, mask=torch.ones(2, 5, dtype=torch.bool))
     torch.testing.assert_close(full["loss"], m(x, t, 20, sample=False)["loss"])

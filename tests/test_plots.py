@@ -249,7 +249,8 @@ def test_contact_rows_colour_bars_have_units_and_spread_scale_fits_the_data():
 def test_metric_curves_show_band_coverage_against_its_nominal_share():
     # Where samples were drawn the coverage of their band gets its own panel with the nominal share
     # (score.band) dotted: a calibrated band holds the truth that share of the time (definition of a
-    # central prediction interval).
+    # central prediction interval). "band_coverage" is the key the score writer passes (see
+    # test_plotted_metric_keys_are_the_ones_scoring_produces).
     t = np.arange(1, 11) / 10.0
     per_method = {"model": {"mse": t / 10, "band_coverage": np.linspace(0.9, 0.4, 10)},
                   "persistence": {"mse": t / 5}}
@@ -260,9 +261,53 @@ def test_metric_curves_show_band_coverage_against_its_nominal_share():
     assert len(dotted) == 1 and set(dotted[0].get_ydata()) == {0.9}
 
 
-def test_every_scored_metric_has_a_plot_label_in_order():
-    # one list of metrics: what the scorer writes per frame is what the plots know how to label
-    from kinecast.score.evaluate import MEAN_KEYS
+def test_plotted_metric_keys_are_the_ones_scoring_produces(tmp_path, monkeypatch):
+    # The keys the plots read (METRIC_ORDER, METRIC_LABELS) checked against what kinecast.score
+    # actually hands them: a real `evaluate` of an (untrained) model on rendered pendulum frames with
+    # sampled futures, passed through the score verb's own writer. A key on either side that the other
+    # lacks is a panel that silently never appears, or one labelled with a raw key. (Producer/consumer
+    # agreement inside the project: there is no outside reference for key names.)
+    import csv
 
-    assert [m for m in P.METRIC_ORDER if m in MEAN_KEYS] == list(MEAN_KEYS)
-    assert all(m in P.METRIC_LABELS for m in P.METRIC_ORDER)
+    import torch
+
+    from kinecast.config import Config
+    from kinecast.frames import Recording
+    from kinecast.model import build_model
+    from kinecast.rigs import render_trials
+    from kinecast.score.cli import write_scores
+    from kinecast.score.evaluate import COUNT_KEYS, evaluate
+
+    cfg = Config()
+    cfg.data.size = 16
+    cfg.model.enc_channels = cfg.model.dec_channels = 8
+    cfg.model.hidden = 16
+    fps = 20.0
+    cfg.solver.time_scale = cfg.solver.units_per_frame * fps
+    raw = render_trials("pendulum", trials=1, frames=14, seed=0, size=16, channels="grey")[0].frames
+    rec = Recording(raw.transpose(0, 3, 1, 2) / 255.0, np.arange(14) / fps, np.zeros(14, bool), "pendulum")
+    torch.manual_seed(0)
+    result = evaluate(build_model(cfg, 1).eval(), cfg, rec, 0, 4, 10, samples=3)
+
+    seen = {}
+
+    def capture(per_method, times, path, **kw):
+        seen.update(per_method)
+        return real(per_method, times, path, **kw)
+
+    real = P.metric_curves
+    monkeypatch.setattr(P, "metric_curves", capture)
+    write_scores(tmp_path, result, cfg, {})
+    read_png(tmp_path / "metrics.png")
+
+    scored = {m for per in result["per_frame"].values() for m in per} - set(COUNT_KEYS)
+    plotted = {m for per in seen.values() for m in per}
+    assert set(seen) == set(result["per_frame"])  # every scored method reaches the plot
+    assert plotted - scored == {"band_coverage"}  # the one key the writer adds: the sampled band
+    np.testing.assert_array_equal(seen["model"]["band_coverage"], result["coverage"])
+    assert set(P.METRIC_ORDER) == plotted, "plots read keys that scoring never produces, or miss some"
+    assert all(m in P.METRIC_LABELS for m in plotted)
+    # the per-frame table (RFC 4180 CSV, read back with the csv module) carries the same metrics
+    with open(tmp_path / "per_frame.csv", newline="") as fh:
+        header = next(csv.reader(fh))
+    assert header[:3] == ["method", "frame", "time_s"] and set(header[3:]) == scored

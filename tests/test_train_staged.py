@@ -153,11 +153,62 @@ def test_the_keypoint_spread_reset_restores_the_starting_posterior():
     assert torch.allclose((0.5 * logvar).exp(), torch.full_like(logvar, KP.INIT_STD))
 
 
-def test_a_lost_object_in_a_real_run_resets_the_spread_and_training_goes_on(rig, tmp_path, monkeypatch, capsys):
+def test_a_found_object_is_snapshotted_and_not_restarted_after_a_loss():
+    # Errors relative to the background's: 0.25 (found), then 0.1 (better by more than SNAPSHOT_GAIN:
+    # a new snapshot), then 1.0 (lost). An attempt that found the object is never due a restart;
+    # its running error is then far worse than the snapshot's (RESTORE_FACTOR).
+    st = S.StageState()
+    assert any(st.observe(0.25, 1.0, 0.3, i) for i in range(40))
+    st.best_ratio = st.ema_rec / st.ema_bg                       # the loop snapshots at the escape
+    first = st.best_ratio
+    better = []
+    for i in range(100):                                         # the loop's order: observe, improved, lost
+        st.observe(0.1, 1.0, 0.3, i)
+        better += [i] if st.improved() else []
+        assert not st.lost()
+    assert better and st.best_ratio < first / S.SNAPSHOT_GAIN
+    st.observe(0.1, 1.0, 0.3, 100)
+    assert not st.improved()                                     # no gain, no new snapshot
+    assert any(not st.observe(1.0, 1.0, 0.3, i) and not st.improved() and st.lost() for i in range(100))
+    assert not st.escaped and st.worse_than_snapshot()
+    assert not st.due_restart(local=1.0, deadline=0.1)           # found once: restored, not restarted
+    st.restored()
+    assert np.isnan(st.ema_rec) and st.steps == 0
+    fresh = S.StageState()
+    for i in range(40):
+        fresh.observe(1.0, 1.0, 0.3, i)
+    assert fresh.due_restart(local=1.0, deadline=0.1)            # never found: restarted
+
+
+def test_a_snapshot_of_the_positions_weights_comes_back_exactly():
+    from kinecast.model import build_model
+
+    cfg = C.Config()
+    cfg.data.size = 32
+    model = build_model(cfg, 1)
+    opt = torch.optim.Adam(model.parameters())
+    model(torch.rand(2, 6, 1, 32, 32), torch.linspace(0, 0.5, 6), n_total_frames=12)["loss"].backward()
+    opt.step()
+    snap = S.snapshot_positions(model)
+    assert snap and all(k.startswith(S.POSITIONS_PARTS) for k in snap)
+    field_before = {k: v.clone() for k, v in model.field.state_dict().items()}
+    with torch.no_grad():
+        for p in model.parameters():
+            p.add_(1.0)
+    S.restore_positions(model, opt, snap)
+    now = model.state_dict()
+    assert all(torch.equal(now[k], v) for k, v in snap.items())
+    assert any(not torch.equal(model.field.state_dict()[k], v) for k, v in field_before.items())  # untouched
+    assert not any(p in opt.state for p in model.pos_enc.parameters())
+    assert any(p in opt.state for p in model.field.parameters())
+
+
+def test_a_lost_object_in_a_real_run_goes_back_to_the_snapshot_and_training_goes_on(rig, tmp_path, monkeypatch,
+                                                                                    capsys):
     # Force one relapse 5 steps after the escape (the encoder "loses" the object): the run must go
-    # back to deterministic steps, reset the keypoint posterior spread after that step's update
-    # (autograd still holds the old values during it), say so, and finish. The staged test above
-    # shows this clip escapes well inside 400 steps.
+    # back to deterministic steps from the snapshot taken at the escape (put back after that step's
+    # update: autograd still holds the old values during it), say so, and finish. The staged test
+    # above shows this clip escapes well inside 400 steps.
     real_lost = S.StageState.lost
 
     def lost_once(self):
@@ -170,4 +221,5 @@ def test_a_lost_object_in_a_real_run_resets_the_spread_and_training_goes_on(rig,
     torch.manual_seed(0)
     summary = fit([rig], tmp_path / "run", staged_cfg(300), show_progress=False)
     assert summary["positions_relapses"] >= 1 and summary["steps"] == 300
-    assert "lost the object again" in capsys.readouterr().err
+    err = capsys.readouterr().err
+    assert "lost the object again" in err and "from its best weights so far" in err

@@ -27,7 +27,7 @@ import numpy as np
 import torch
 from scipy.special import ndtr
 
-from ..frames.tracks import object_region
+from ..frames.tracks import centroid_track, object_region
 from .staged import encode_all
 
 __all__ = ["band_inside", "coverage_scale", "fit_pixel_noise", "fit_spread_scale", "noise_for_coverage"]
@@ -35,19 +35,25 @@ __all__ = ["band_inside", "coverage_scale", "fit_pixel_noise", "fit_spread_scale
 # Smallest spread radius trusted (normalised image units, ~0.03 px at 64 px): below it the samples
 # agree to rounding and the ratio says nothing.
 MIN_RADIUS = 1e-3
+# Smallest spread radius of tracked positions trusted (model pixels): the centroid of a drawn
+# object moves by less than this for sub-pixel latent changes blurred by the decoder
+MIN_RADIUS_PX = 0.02
 SCALE_RANGE = (1e-2, 1e3)  # the fitted factor is clipped to this range
+# Refinements of the scale on tracked positions. The tracked spread grows about in proportion to
+# the scale, so one round lands near the answer; the second absorbs what is not proportional.
+SCALE_ROUNDS = 2
 NOISE_MAX = 0.5  # largest pixel noise std fitted (intensities in [0, 1])
 NOISE_STEPS = 30  # bisection steps: the noise is found to NOISE_MAX / 2**30
 
 
-def coverage_scale(points: torch.Tensor, truth: torch.Tensor, band: float) -> float:
+def coverage_scale(points: torch.Tensor, truth: torch.Tensor, band: float, min_radius: float = MIN_RADIUS) -> float:
     """The factor for sampled ``points`` [M, S, D] (M cases, S samples of a D-dimensional point)
     that puts ``truth`` [M, D] inside the central ``band`` region in a share ``band`` of the cases.
 
     The central region of a case is the ball around the samples' mean whose radius is the
     ``band`` quantile of the samples' distances from that mean; the factor is the ``band``
     quantile over the cases of (truth's distance from the mean) / radius. Cases whose radius is
-    below :data:`MIN_RADIUS` are left out; 1.0 when none is left.
+    below ``min_radius`` are left out; 1.0 when none is left.
 
     Examples
     --------
@@ -59,7 +65,7 @@ def coverage_scale(points: torch.Tensor, truth: torch.Tensor, band: float) -> fl
     """
     centre = points.mean(dim=1)
     radius = torch.quantile((points - centre[:, None]).norm(dim=-1), band, dim=1)
-    keep = radius > MIN_RADIUS
+    keep = radius > min_radius
     if not bool(keep.any()):
         return 1.0
     ratio = (truth - centre).norm(dim=-1)[keep] / radius[keep]
@@ -68,7 +74,14 @@ def coverage_scale(points: torch.Tensor, truth: torch.Tensor, band: float) -> fl
 
 @torch.no_grad()
 def fit_spread_scale(model, clips, band: float, samples: int, generator: torch.Generator) -> float:
-    """:func:`coverage_scale` of free rollouts against the encoder's readings of the true frames.
+    """The spread scale that puts the true object positions inside the central ``band`` region of
+    the sampled futures' positions in a share ``band`` of the frames.
+
+    First :func:`coverage_scale` of free rollouts against the encoder's readings of the true
+    frames (latent positions, nothing decoded); then :data:`SCALE_ROUNDS` rounds of
+    :func:`coverage_scale` on tracked positions (foreground centroids, as
+    :func:`kinecast.score.metrics.position_coverage` tracks them) of the same futures decoded at
+    the current scale, each multiplying the scale by the factor found.
 
     Parameters
     ----------
@@ -92,16 +105,39 @@ def fit_spread_scale(model, clips, band: float, samples: int, generator: torch.G
     dim = 2 if model.keypoints else 1  # a keypoint's (x, y) is one point; a dense latent is 1-D each
     if not bool(moving.any()):
         return 1.0
-    points, truths = [], []
+    points, truths, paths, frames_after = [], [], [], []
     for frames, t, present in clips:
         lat = model.sample_latents(frames[None, :k], t, samples, mean_weights=False, sample_init=True,
-                                   generator=generator, ctx_t=t[:k])[:, 0].transpose(0, 1)  # [T, S, 2q]
+                                   generator=generator, ctx_t=t[:k])[:, 0]                # [S, T, 2q]
         keep = torch.as_tensor(present, dtype=torch.bool)[k:]
-        lat = lat[k:, :, :q][keep][..., moving]                                        # [n, S, m]
-        truth = encode_all(model, frames[k:][keep])[0][:, moving]                    # [n, m]
+        paths.append(lat[:, k:][:, keep][..., :q])
+        frames_after.append(frames[k:][keep])
+        lat = lat.transpose(0, 1)[k:][keep][..., :q][..., moving]                         # [n, S, m]
+        truth = encode_all(model, frames[k:][keep])[0][:, moving]                         # [n, m]
         points.append(lat.reshape(lat.shape[0], samples, -1, dim).transpose(1, 2).reshape(-1, samples, dim))
         truths.append(truth.reshape(-1, dim))
-    return coverage_scale(torch.cat(points), torch.cat(truths), band)
+    scale = coverage_scale(torch.cat(points), torch.cat(truths), band)
+    return _refine_on_tracks(model, paths, frames_after, band, scale)
+
+
+def _refine_on_tracks(model, paths, frames_after, band: float, scale: float) -> float:
+    """:func:`fit_spread_scale`'s rounds on tracked positions; ``paths`` [S, n, q] are the
+    futures' latent positions, ``frames_after`` [n, C, H, W] the true frames they forecast."""
+    background = model.background.detach().cpu().numpy() if model.cfg.background else None
+    truth = np.concatenate([centroid_track(f.cpu().numpy(), background) for f in frames_after])   # [N, 2]
+    for _ in range(SCALE_ROUNDS):
+        drawn = []
+        for lat in paths:
+            centre = lat.mean(dim=0, keepdim=True)
+            pred = model.decode(centre + scale * (lat - centre)).cpu().numpy()                 # [S, n, C, H, W]
+            drawn.append(np.stack([centroid_track(one, background) for one in pred], axis=1))   # [n, S, 2]
+        drawn = np.concatenate(drawn)
+        ok = np.isfinite(drawn).all(axis=(1, 2)) & np.isfinite(truth).all(axis=1)
+        if not ok.any():
+            break
+        factor = coverage_scale(torch.as_tensor(drawn[ok]), torch.as_tensor(truth[ok]), band, MIN_RADIUS_PX)
+        scale = float(np.clip(scale * factor, *SCALE_RANGE))
+    return scale
 
 
 def band_inside(samples: np.ndarray, truth: np.ndarray, band: float, noise: float = 0.0) -> np.ndarray:

@@ -236,6 +236,7 @@ class TrainState:
     def __init__(self, model, opt, cur: Curriculum, sampler: WindowSampler):
         self.model, self.opt, self.cur, self.sampler = model, opt, cur, sampler
         self.stages = S.StageState()
+        self.best_positions: dict | None = None  # S.snapshot_positions of the escaped encoder
         self.step, self.elapsed_before, self.faults, self.lr_scale = 0, 0.0, 0, 1.0
         self.rows: list[dict] = []
 
@@ -245,6 +246,7 @@ class TrainState:
         opt_tensors, opt_meta = ck.optimizer_tensors(self.opt)
         tensors.update(opt_tensors)
         tensors["rng.torch"] = torch.get_rng_state()
+        tensors.update({S.SNAPSHOT_PREFIX + k: v for k, v in (self.best_positions or {}).items()})
         meta = {"step": self.step, "elapsed": elapsed, "faults": self.faults, "lr_scale": self.lr_scale,
                 "curriculum": self.cur.state(), "stages": self.stages.state(), "optimizer": opt_meta,
                 "sampler_rng": self.sampler.rng.bit_generator.state, **extra}
@@ -253,8 +255,10 @@ class TrainState:
     def load_state_dict(self, tensors: dict, meta: dict, path: Path, rows: list[dict], more: bool) -> None:
         """Restore from a resume checkpoint (``path`` names it in errors); ``more``: an earlier early
         stop does not end the extension asked for."""
-        rf.restore_model(self.model, {k: v for k, v in tensors.items() if not k.startswith(("opt.", "rng."))},
-                         meta, path)
+        rf.restore_model(self.model, {k: v for k, v in tensors.items()
+                                      if not k.startswith(("opt.", "rng.", S.SNAPSHOT_PREFIX))}, meta, path)
+        n = len(S.SNAPSHOT_PREFIX)
+        self.best_positions = {k[n:]: v for k, v in tensors.items() if k.startswith(S.SNAPSHOT_PREFIX)} or None
         ck.restore_optimizer(self.opt, tensors, meta["optimizer"])
         torch.set_rng_state(tensors["rng.torch"])
         self.sampler.rng.bit_generator.state = meta["sampler_rng"]
@@ -385,7 +389,10 @@ class _Trainer:
         terms, window, beta, relapsed = self._terms(stage, local, kl_weight(cfg.train, prog))
         if not self._update(terms["loss"], fault_hook):
             return st.faults <= cfg.train.max_faults
-        if relapsed:
+        if relapsed and st.best_positions is not None:
+            S.restore_positions(self.model, self.opt, st.best_positions)
+            st.stages.restored()
+        elif relapsed:
             S.reset_spread(self.model, self.opt)
         st.step += 1
         if st.step % LOG_EVERY == 0 or st.step == 1:
@@ -406,7 +413,11 @@ class _Trainer:
         self.stage = stage
         S.set_trainable(self.model, stage)
         self.report.soon()  # a line from the new stage's first step
-        if stage == S.DYNAMICS and not st.stages.escaped:
+        if stage == S.DYNAMICS and st.best_positions is not None and st.stages.worse_than_snapshot():
+            S.restore_positions(self.model, self.opt, st.best_positions)
+            self.report.note(f"kinecast: the position encoder is back to its best weights of the positions stage "
+                             f"(reconstruction error {st.stages.best_ratio:.2g}x the bare background's)")
+        elif stage == S.DYNAMICS and not st.stages.escaped:
             self.report.note("kinecast: warning: the position encoder never clearly beat the bare background "
                              f"({st.stages.restarts} restarts); the motion may not be learned")
         if stage == S.DYNAMICS:
@@ -457,15 +468,21 @@ class _Trainer:
         st = self.state.stages
         step = self.state.step
         if st.observe(*errors, self.cfg.train.escape_ratio, step):
+            if st.ema_rec / st.ema_bg < st.best_ratio:  # a re-escape keeps a better earlier snapshot
+                self.state.best_positions = S.snapshot_positions(self.model)
+                st.best_ratio = st.ema_rec / st.ema_bg
             self.report.note(f"kinecast: step {step}: the position encoder found the moving object "
                              f"(reconstruction error {st.ema_rec:.2g}, bare background {st.ema_bg:.2g}); "
                              + ("sampling from now on" if st.sampling() else "staying deterministic"))
             return False
+        if st.improved():
+            self.state.best_positions = S.snapshot_positions(self.model)
         if not st.lost():
             return False
         self.report.note(f"kinecast: step {step}: the position encoder lost the object again "
                          f"(reconstruction error {st.ema_rec:.2g}, bare background {st.ema_bg:.2g}); "
                          "back to deterministic steps"
+                         + (" from its best weights so far" if self.state.best_positions is not None else "")
                          + ("" if st.relapses < S.MAX_RELAPSES else " for the rest of the stage"))
         return True
 

@@ -5,7 +5,8 @@
 1. *positions* (``train.positions_share``): position encoder + decoder as a frame autoencoder over
    the static background, deterministic until it clearly beats the background alone (the escape
    test), then sampled with the KL weight rising to ``train.positions_kl``. An encoder that has not
-   escaped by ``train.escape_deadline`` of the stage starts again from a new seed.
+   escaped by ``train.escape_deadline`` of the stage starts again from a new seed; one that found
+   the object and lost it again goes back to its best weights since then (a snapshot).
 2. *dynamics* (``train.dynamics_share``): encoder and decoder frozen; the field and the velocity
    encoder fit the encoded trajectories (:func:`kinecast.model.staged.dynamics_terms`), with long
    windows (two periods of the tracked object, at least :data:`DYNAMICS_MIN_WINDOW` frames).
@@ -43,9 +44,18 @@ RESTART_SEED_STRIDE = 1000  # restart r of the positions stage re-initialises wi
 # 15 steps after its escape; pendulum dark-on-light: the keypoint log-variance rose to its clamp
 # and the error reached 0.97x 700 steps later); neither run then learned the motion. When the
 # running error climbs back to STUCK_RATIO × the background's, the stage goes back to
-# deterministic steps with the posterior spread reset, and samples again after a new escape;
+# deterministic steps from the best snapshot (see SNAPSHOT_GAIN), and samples again after a new escape;
 # after MAX_RELAPSES it stays deterministic for the rest of the stage.
 MAX_RELAPSES = 2
+# An encoder that lost the object goes back to the best weights it had while it had found it (the
+# snapshot taken whenever its running error ratio improved by this factor), rather than training on
+# from the broken state or restarting: on a rod pendulum drawn by other software the encoder reached
+# 0.1x the background's error by step 400, then drifted back to 0.8x by step 1035, and the restarts
+# that followed had too little of the stage left to find the object again.
+SNAPSHOT_GAIN = 1.1
+# At the end of the positions stage the snapshot replaces the current weights when the current
+# running error ratio is this many times the snapshot's (it has lost much of what it had found).
+RESTORE_FACTOR = 2.0
 
 
 def stage_at(prog: float, tc) -> tuple[str, float]:
@@ -74,6 +84,7 @@ class StageState:
     joint_checked: bool = False  # the weights were validated on entering the joint stage
     relapses: int = 0  # times the encoder lost the object again after an escape
     since_escape: int = 0  # positions steps since the last escape
+    best_ratio: float = math.inf  # best running error ratio (over the background's) since an escape
 
     def observe(self, mse: float, bg_mse: float, ratio: float, step: int) -> bool:
         """Fold one batch's errors in; True when this step passes the escape test."""
@@ -97,15 +108,37 @@ class StageState:
         self.relapses += 1
         return True
 
+    def improved(self) -> bool:
+        """After :meth:`observe`: True when an escaped encoder's running error ratio beat the best so
+        far by :data:`SNAPSHOT_GAIN` (time for a snapshot of its weights)."""
+        if not self.escaped or self.since_escape < ESCAPE_MIN_STEPS:
+            return False
+        ratio = self.ema_rec / self.ema_bg
+        if not ratio * SNAPSHOT_GAIN < self.best_ratio:
+            return False
+        self.best_ratio = ratio
+        return True
+
+    def restored(self) -> None:
+        """The snapshot's weights were put back: warm the running errors up again from them."""
+        self.ema_rec = self.ema_bg = math.nan
+        self.steps = 0
+
+    def worse_than_snapshot(self) -> bool:
+        """True when the running error ratio is :data:`RESTORE_FACTOR` × the snapshot's or more."""
+        return math.isfinite(self.best_ratio) and not self.ema_rec < RESTORE_FACTOR * self.best_ratio * self.ema_bg
+
     def sampling(self) -> bool:
         """Whether the positions stage samples its latent now (escaped, and not given up on it)."""
         return self.escaped and self.relapses < MAX_RELAPSES
 
     def due_restart(self, local: float, deadline: float) -> bool:
         """True when the encoder has found nothing (error still near the background's) by the
-        deadline of its current attempt."""
+        deadline of its current attempt; an attempt that found the object once is not restarted
+        (its snapshot is restored instead)."""
         stuck = not self.ema_rec < STUCK_RATIO * self.ema_bg
-        return not self.escaped and stuck and local >= deadline * (self.restarts + 1)
+        found_once = math.isfinite(self.best_ratio)
+        return not self.escaped and not found_once and stuck and local >= deadline * (self.restarts + 1)
 
     def state(self) -> dict:
         return asdict(self)
@@ -128,13 +161,30 @@ def reset_spread(model, opt) -> None:
             opt.state.pop(p, None)
 
 
+POSITIONS_PARTS = ("pos_enc", "decoder")  # what the positions stage trains
+SNAPSHOT_PREFIX = "best_positions."  # their snapshot's keys in a resume checkpoint
+
+
+def snapshot_positions(model) -> dict[str, torch.Tensor]:
+    """A copy of the position encoder's and decoder's weights (keys as in the model's state dict)."""
+    return {k: v.detach().clone() for k, v in model.state_dict().items() if k.startswith(POSITIONS_PARTS)}
+
+
+def restore_positions(model, opt, snap: dict[str, torch.Tensor]) -> None:
+    """Put a :func:`snapshot_positions` back; forget the optimiser state of those weights."""
+    model.load_state_dict(snap, strict=False)
+    for name in POSITIONS_PARTS:
+        for p in getattr(model, name).parameters():
+            opt.state.pop(p, None)
+
+
 def restart_positions(model, opt, cfg, channels: int, seed: int) -> None:
     """Give the position encoder and decoder fresh weights drawn with ``seed``; forget their
     optimiser state."""
     with torch.random.fork_rng():
         torch.manual_seed(seed)
         fresh = build_model(cfg, channels)
-    for name in ("pos_enc", "decoder"):
+    for name in POSITIONS_PARTS:
         new, old = getattr(fresh, name), getattr(model, name)
         old.load_state_dict(new.state_dict())
         for p in old.parameters():
