@@ -61,8 +61,10 @@ TRACKER = "low-pass 1.5 px"
 # to learning (rows from before this field ran with "3": layout 3, no coverage term, v0 corrected;
 # "4": keypoint_coverage 1, v0 = finite difference alone; "5": as 4, and keypoints that barely move
 # held still, train.still_keypoint_px 1; "6": as 5, keypoint posteriors start at 0.5 px, an encoder that
-# loses the object goes back to deterministic steps, early stop only below 0.8x the background)
-DEFAULTS = "8: as 7, and each heat map kept a bump about one cell wide once the object is found (train.heat_map_shape = 1e-3)"
+# loses the object goes back to deterministic steps, early stop only below 0.8x the background;
+# "7", "8": see DEVELOPERS.md)
+DEFAULTS = ("9: as 8, and an encoder that loses the object goes back to its best snapshot; spread scale "
+            "refined on tracked positions")
 START_FRAMES = 3          # forecast frames over which the drawing offset is measured
 TRIALS, TRAIN_TRIALS, FRAMES, HORIZON, SIZE = 12, 8, 90, 60, 64
 COVERAGE_SAMPLES = 16     # futures drawn per held-out trial for the coverage columns (seeded: cfg.forecast.seed)
