@@ -276,7 +276,7 @@ def test_plotted_metric_keys_are_the_ones_scoring_produces(tmp_path, monkeypatch
     from kinecast.model import build_model
     from kinecast.rigs import render_trials
     from kinecast.score.cli import write_scores
-    from kinecast.score.evaluate import COUNT_KEYS, evaluate
+    from kinecast.score.evaluate import COUNT_KEYS, TRACK_KEYS, evaluate
 
     cfg = Config()
     cfg.data.size = 16
@@ -300,7 +300,7 @@ def test_plotted_metric_keys_are_the_ones_scoring_produces(tmp_path, monkeypatch
     write_scores(tmp_path, result, cfg, {})
     read_png(tmp_path / "metrics.png")
 
-    scored = {m for per in result["per_frame"].values() for m in per} - set(COUNT_KEYS)
+    scored = {m for per in result["per_frame"].values() for m in per} - set(COUNT_KEYS) - set(TRACK_KEYS)
     plotted = {m for per in seen.values() for m in per}
     assert set(seen) == set(result["per_frame"])  # every scored method reaches the plot
     assert plotted - scored == {"band_coverage"}  # the one key the writer adds: the sampled band
@@ -310,4 +310,5 @@ def test_plotted_metric_keys_are_the_ones_scoring_produces(tmp_path, monkeypatch
     # the per-frame table (RFC 4180 CSV, read back with the csv module) carries the same metrics
     with open(tmp_path / "per_frame.csv", newline="") as fh:
         header = next(csv.reader(fh))
-    assert header[:3] == ["method", "frame", "time_s"] and set(header[3:]) == scored
+    tracks = {f"{n}_model_px" for n in ("object_x", "object_y", "true_x", "true_y")}  # no source size given
+    assert header[:3] == ["method", "frame", "time_s"] and set(header[3:]) == scored | tracks

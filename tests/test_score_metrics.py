@@ -98,9 +98,12 @@ def test_frame_metrics_position_error_is_the_centroid_distance():
     pred = render_disc([(23.0, 24.0), (30.0, 25.0)])
     bg = np.full((1, 64, 64), 0.2, np.float32)
     out = frame_metrics(pred, truth, background=bg)
-    assert set(out) == {"mse", "mae", "psnr", "ssim", "position_error_px"}
+    assert set(out) == {"mse", "mae", "psnr", "ssim", "position_error_px", "x_px", "y_px", "true_x_px", "true_y_px"}
     assert all(v.shape == (2,) for v in out.values())
     assert out["position_error_px"] == pytest.approx([5.0, 0.0], abs=0.1)
+    # the centroids themselves: the discs' centres (render_disc draws them at these pixel coordinates)
+    assert np.c_[out["true_x_px"], out["true_y_px"]] == pytest.approx(np.array([[20.0, 20.0], [30.0, 25.0]]), abs=0.1)
+    assert np.c_[out["x_px"], out["y_px"]] == pytest.approx(np.array([[23.0, 24.0], [30.0, 25.0]]), abs=0.1)
     assert out["ssim"][1] == pytest.approx(1.0) and out["ssim"][0] < 1.0
     # an empty predicted frame has no object: no position error can be given
     empty = np.broadcast_to(bg, truth.shape)

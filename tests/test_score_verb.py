@@ -116,3 +116,29 @@ def test_report_is_one_self_contained_page(setup, tmp_path):
     for raw in ("world_size", "replica_spread", "threads"):
         assert technical < page.index(f"<td>{raw}</td>"), raw
     assert "replica spread" not in page and "world size" not in page  # no half-translated keys
+
+
+def test_per_frame_tracks_are_in_the_recording_pixels(setup, tmp_path):
+    # The same rig drawn at 64 px and read by a 32 px model (one model pixel = two recording pixels):
+    # the truth's tracked centroid, mapped to the recording's pixels, must land on the centroid that
+    # OpenCV's image moments (cv2.moments: m10/m00, m01/m00, pixel centres at integer coordinates)
+    # give for the foreground of the full-size frame, |frame - median background|. The tracker
+    # smooths and thresholds its weights, so the two agree to a fraction of a model pixel, not exactly.
+    import cv2
+
+    big = tmp_path / "big"
+    write_rig("pendulum", big, trials=1, frames=40, seed=1, size=64, fps=20.0)
+    out = tmp_path / "scores"
+    assert main(["score", str(setup / "run"), str(big / "trial_000"), "--holdout", "last:30", "--context", "4",
+                 "--out", str(out)]) == 0
+    with open(out / "per_frame.csv", newline="") as fh:
+        rows = [r for r in csv.DictReader(fh) if r["method"] == "persistence"]
+    got = np.array([[float(r["true_x_rec_px"]), float(r["true_y_rec_px"])] for r in rows])
+    full = read_recording(big / "trial_000", C.apply_overrides(C.Config(), ["data.size=64"]).data).frames[:, 0]
+    weight = np.abs(full - np.median(full, axis=0))
+    want = []
+    for w in weight[10:40]:
+        m = cv2.moments(w.astype(np.float32))
+        want.append([m["m10"] / m["m00"], m["m01"] / m["m00"]])
+    err = np.hypot(*(got - np.array(want)).T)
+    assert np.median(err) < 1.0  # half a model pixel; model pixels for recording pixels would be ~6 off

@@ -17,7 +17,7 @@ import torch
 from ..config import Config
 from ..errors import KinecastError
 from ..frames import Recording
-from ..frames.preprocess import square_geometry
+from ..frames.preprocess import model_to_recording_px, recording_geometry
 from ..model import to_model_time
 
 # A requested time this fraction of the median interval from a slot's time is that slot (float
@@ -128,13 +128,11 @@ def keypoint_pixels(latents: np.ndarray, info: dict, cfg: Config) -> np.ndarray:
     """Keypoint positions and velocities of latent states in the recording's own pixels.
 
     The keypoint encoder's latent position is K image coordinates in [-1, 1] across the model frame
-    (pixel centres at ``(2i + 1) / n − 1``); the model frame holds the crop ``data.roi`` (or the
-    whole source frame), ``w`` x ``h``, resized to ``cw`` x ``ch`` model pixels and padded
-    by ``left`` and ``top`` (:func:`kinecast.frames.preprocess.square_geometry`; no padding and
-    ``cw = n`` for a square picture). Model pixel i covers source pixels
-    ``x0 + [i − left, i + 1 − left)·w/cw``, so a normalised x maps to
-    ``x0 − left·w/cw + (x + 1)/2 · n·w/cw − 0.5`` in pixel-centre coordinates (x right, y down),
-    and a velocity in model units per model time unit to ``v · n·w/(2·cw) · time_scale`` px/s.
+    (pixel centres at ``(2i + 1) / n − 1``), so a normalised x is model pixel ``(x + 1)·n/2 − 0.5``,
+    which :func:`kinecast.frames.preprocess.model_to_recording_px` maps to the recording's pixels
+    (crop ``data.roi`` or the whole frame, ``w`` x ``h``, shrunk to ``cw`` x ``ch`` model pixels and
+    padded to the square). A velocity in model units per model time unit becomes
+    ``v · n·w/(2·cw) · time_scale`` px/s.
     Positions on the padding map outside the crop.
 
     Parameters
@@ -150,14 +148,12 @@ def keypoint_pixels(latents: np.ndarray, info: dict, cfg: Config) -> np.ndarray:
         ``x_px, y_px, vx_px_s, vy_px_s`` per keypoint.
     """
     q = latents.shape[-1] // 2
-    x0, y0, w, h = info.get("roi") or [0, 0, *info["source_size"]]
-    geo = square_geometry(w, h, cfg.data.size)
     pos = latents[..., :q].reshape(*latents.shape[:-1], q // 2, 2)
     vel = latents[..., q:].reshape(*latents.shape[:-1], q // 2, 2)
-    n, cw, ch = geo.size, geo.content_w, geo.content_h
-    scale = np.array([n * w / cw, n * h / ch], dtype=np.float64) / 2.0    # w/2, h/2 when square
-    origin = np.array([x0 - geo.left * w / cw, y0 - geo.top * h / ch], dtype=np.float64)
-    px = origin + (pos + 1.0) * scale - 0.5
+    n = cfg.data.size
+    px = model_to_recording_px((pos + 1.0) * n / 2.0 - 0.5, info, n)   # normalised → model px → source px
+    geo = recording_geometry(info, n)
+    scale = np.array([n * geo.width / geo.content_w, n * geo.height / geo.content_h]) / 2.0
     return np.concatenate([px, vel * scale * cfg.solver.time_scale], axis=-1)
 
 

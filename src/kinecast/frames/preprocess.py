@@ -200,6 +200,29 @@ def recording_geometry(info: dict, size: int) -> SquareGeometry | None:
     return square_geometry(int(region[2]), int(region[3]), size) if region else None
 
 
+def model_to_recording_px(xy: np.ndarray, info: dict, size: int) -> np.ndarray | None:
+    """Positions in model pixels (..., 2) → the recording's own pixels; None when ``info`` names no
+    source size.
+
+    Both in pixel-centre coordinates, x right and y down from the top-left pixel's centre. The model
+    frame holds the crop ``roi`` (or the whole source frame), ``w`` x ``h``, resized to ``cw`` x ``ch``
+    model pixels and padded by ``left`` and ``top`` (:func:`square_geometry`); model pixel i covers
+    source pixels ``x0 + [i − left, i + 1 − left)·w/cw``, so model ``u`` maps to
+    ``x0 + (u + 0.5 − left)·w/cw − 0.5``. Positions on the padding map outside the crop.
+
+    >>> edges = np.array([[-0.5, 18.5], [63.5, 44.5]])  # corners of the picture (rows 19-44 of 64)
+    >>> model_to_recording_px(edges, {"source_size": [776, 310]}, 64).round(6).tolist()
+    [[-0.5, -0.5], [775.5, 309.5]]
+    """
+    geo = recording_geometry(info, size)
+    if geo is None:
+        return None
+    x0, y0 = (info.get("roi") or [0, 0])[:2]
+    step = np.array([geo.width / geo.content_w, geo.height / geo.content_h])
+    shift = np.array([geo.left, geo.top])
+    return np.array([x0, y0]) + (np.asarray(xy, dtype=np.float64) + 0.5 - shift) * step - 0.5
+
+
 def describe_geometry(info: dict, size: int) -> str | None:
     """:meth:`SquareGeometry.describe` for a recording's picture; None when ``info`` names no source size."""
     geo = recording_geometry(info, size)

@@ -50,15 +50,23 @@ def _finite(x):
     return x
 
 
-def write_scores(out: Path, result: dict, cfg, extra: dict) -> None:
-    """per_frame.csv, summary.json and metrics.png for a scoring result."""
+def write_scores(out: Path, result: dict, cfg, extra: dict, info: dict | None = None) -> None:
+    """per_frame.csv, summary.json and metrics.png for a scoring result.
+
+    per_frame.csv also carries each method's tracked object centroid and the truth's, in the
+    recording's own pixels when ``info`` (the recording's) names its source size, else in model
+    pixels; the column names say which.
+    """
     from ..plots import metric_curves
 
     times = result["times"]
-    rows = ["method,frame,time_s," + ",".join(MEAN_KEYS)]
+    unit, tracks = _tracks(result["per_frame"], info or {}, cfg.data.size)
+    rows = ["method,frame,time_s," + ",".join(MEAN_KEYS) + ","
+            + ",".join(f"{name}_{unit}" for name in ("object_x", "object_y", "true_x", "true_y"))]
     for method, per in result["per_frame"].items():
         for i, t in enumerate(times):
-            rows.append(f"{method},{i},{t:.6f}," + ",".join(f"{per[m][i]:.6g}" for m in MEAN_KEYS))
+            rows.append(f"{method},{i},{t:.6f}," + ",".join(f"{per[m][i]:.6g}" for m in MEAN_KEYS)
+                        + "," + ",".join(f"{v:.6g}" for v in tracks[method][i]))
     write_text(out / "per_frame.csv", "\n".join(rows) + "\n")
     summary = {"caution": CAUTION, **({"verdict": result["verdict"]} if "verdict" in result else {}),
                "frames_scored": int(len(times)), "methods": result["summary"],
@@ -77,6 +85,21 @@ def write_scores(out: Path, result: dict, cfg, extra: dict) -> None:
         shown["model"]["band_coverage"] = np.asarray(result["coverage"], dtype=np.float64)
     metric_curves(shown, times, out / "metrics.png", threshold=cfg.score.ssim_threshold, overwrite=True,
                   origin=result.get("origin"), band=cfg.score.band if "coverage" in result else None)
+
+
+def _tracks(per_frame: dict, info: dict, size: int) -> tuple[str, dict]:
+    """``(unit, {method: (T, 4) object x, y and true x, y})`` in the recording's pixels ("rec_px")
+    where ``info`` allows, else in model pixels ("model_px")."""
+    from ..frames.preprocess import model_to_recording_px
+
+    unit, out = "rec_px", {}
+    for method, per in per_frame.items():
+        xy = np.stack([np.stack([per[a], per[b]], axis=-1) for a, b in (("x_px", "y_px"), ("true_x_px", "true_y_px"))])
+        mapped = model_to_recording_px(xy, info, size)
+        if mapped is None:
+            unit, mapped = "model_px", xy
+        out[method] = np.concatenate([mapped[0], mapped[1]], axis=-1)
+    return unit, out
 
 
 def recording_px_per_model_px(rec) -> float | None:
@@ -139,7 +162,7 @@ def _run_pair(args, cfg, out: Path) -> int:
     per, summ = score_prediction(pred.frames, truth.frames, present, truth.times, origin, cfg)
     result = {"times": truth.times, "origin": origin, "per_frame": {"prediction": per},
               "summary": {"prediction": summ}}
-    write_scores(out, result, cfg, {"pred": str(args.pred), "truth": str(args.truth)})
+    write_scores(out, result, cfg, {"pred": str(args.pred), "truth": str(args.truth)}, truth.info)
     print(table(result))
     print(f"scores written to {out}\nnote: {CAUTION}")
     return 0
@@ -180,7 +203,8 @@ def _run_model(args, cfg, out: Path) -> int:
                                         **({"recording_px_per_model_px": scale} if scale else {}),
                                         "recording": str(path), "holdout": holdout,
                                         "context_frames": first - cond_start, "samples": samples,
-                                        **({"seed": run_cfg.forecast.seed} if samples > 1 else {})})
+                                        **({"seed": run_cfg.forecast.seed} if samples > 1 else {})},
+                 rec.info)
     spread = result["samples"].std(axis=0) if samples > 1 else None
     truth = np.where(result["present"][:, None, None, None], result["truth"], 0.0)
     panels = panel_frames(comparison_columns(result["forecast"], truth, spread), result["times"],

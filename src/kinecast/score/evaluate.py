@@ -25,6 +25,8 @@ BASELINES = {"background_only": background_only, "persistence": persistence,
 # counts, summarised as shares.
 MEAN_KEYS = ("mse", "mae", "psnr", "ssim", "object_ssim", "position_error_px", "matched_error_px")
 COUNT_KEYS = ("true_objects", "missed_objects", "spurious_objects")
+# per-frame object centroids (model pixels) of the prediction and of the truth: tracks, not scores
+TRACK_KEYS = ("x_px", "y_px", "true_x_px", "true_y_px")
 # With sampled futures: per-frame coverage arrays in evaluate's result → their means in the summary
 # (all pixels; pixels where truth or forecast shows an object; the object's position).
 COVERAGE_SUMMARY = {"coverage": "mean_band_coverage", "object_coverage": "mean_object_band_coverage",
@@ -121,10 +123,11 @@ def score_prediction(pred: np.ndarray, truth: np.ndarray, present: np.ndarray, t
     Per frame: ``mse``, ``mae``, ``psnr``, ``ssim`` (whole frame), ``object_ssim`` (SSIM over the
     ``object_region``), ``position_error_px`` (centroid of all foreground), ``matched_error_px``
     (mean over objects matched one to one, ``tracks.object_errors``) and the object counts
-    ``true_objects``, ``missed_objects``, ``spurious_objects``. ``background`` None uses the
+    ``true_objects``, ``missed_objects``, ``spurious_objects``, and the object tracks
+    :data:`TRACK_KEYS` (model pixels). ``background`` None uses the
     per-pixel median of the present true frames for every object measure.
     """
-    per_frame = {k: np.full(len(times), np.nan) for k in MEAN_KEYS + COUNT_KEYS}
+    per_frame = {k: np.full(len(times), np.nan) for k in MEAN_KEYS + COUNT_KEYS + TRACK_KEYS}
     if present.any():
         p, t = pred[present], truth[present]
         bg = median_background(t) if background is None else background

@@ -171,9 +171,10 @@ def frame_metrics(pred, truth, background=None, threshold: float = FOREGROUND_FR
     Returns
     -------
     dict
-        ``mse``, ``mae``, ``psnr`` (dB), ``ssim`` and ``position_error_px`` (distance between the
-        object centroids of prediction and truth; NaN where either frame shows no object), each an
-        array of length T.
+        ``mse``, ``mae``, ``psnr`` (dB), ``ssim``, ``position_error_px`` (distance between the
+        object centroids of prediction and truth; NaN where either frame shows no object) and the
+        centroids themselves, ``x_px``, ``y_px`` (prediction) and ``true_x_px``, ``true_y_px``
+        (model pixels, x right and y down from the top-left pixel's centre), each an array of length T.
     """
     p, t = _pair(pred, truth)
     bg = median_background(t) if background is None else background
@@ -185,6 +186,7 @@ def frame_metrics(pred, truth, background=None, threshold: float = FOREGROUND_FR
         "psnr": psnr(p, t),
         "ssim": ssim(p, t, window),
         "position_error_px": np.hypot(*(c_pred - c_true).T),
+        "x_px": c_pred[:, 0], "y_px": c_pred[:, 1], "true_x_px": c_true[:, 0], "true_y_px": c_true[:, 1],
     }
 
 
