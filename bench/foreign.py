@@ -1,4 +1,4 @@
-"""Recordings that kinecast's own rigs did not make: ``python bench/foreign.py OUT [--trials N]``.
+"""Recordings that kinecast's own rigs did not make: ``python bench/foreign.py OUT [--trials N] [--video S]``.
 
 kinecast is used on recordings made by other software, with other objects, backgrounds, lighting,
 frame sizes and file formats. Tuning the recipe on the rigs that kinecast renders itself could hide
@@ -19,6 +19,9 @@ Scenes (each a folder of trial folders, like a rig scene, so ``bench/recipe.py -
     A striped ball bouncing on a checkered floor seen in perspective, with a shadow; free fall with
     restitution e at each bounce (handbook: successive apex heights h·e^(2n)). PNG frames,
     320 × 240, RGB.
+
+``--video SECONDS`` writes instead one MPEG-4 video of the rod pendulum (``OUT/rod_pendulum.mp4``),
+one long take as a user would record it, for trying the command line on a single recording.
 
 These are synthetic scenes for the bench, not measurements of a real apparatus.
 """
@@ -67,11 +70,11 @@ def _wall(rng: np.random.Generator) -> np.ndarray:
     return np.broadcast_to(base * shade, (HEIGHT, WIDTH, 3)).astype(np.float32)
 
 
-def rod_pendulum(trial: int, rng: np.random.Generator) -> list[np.ndarray]:
+def rod_pendulum(rng: np.random.Generator, frames_n: int = FRAMES) -> list[np.ndarray]:
     length_m, damping = 0.62, 0.08        # s⁻¹
     theta0 = rng.uniform(0.35, 1.0) * rng.choice([-1.0, 1.0])
     sol = solve_ivp(lambda t, y: [y[1], -(G / length_m) * math.sin(y[0]) - damping * y[1]],
-                    (0.0, FRAMES / FPS), [theta0, 0.0], t_eval=np.arange(FRAMES) / FPS,
+                    (0.0, frames_n / FPS), [theta0, 0.0], t_eval=np.arange(frames_n) / FPS,
                     rtol=1e-9, atol=1e-9)
     pivot, rod_px = np.array([160.0, 38.0]), 150.0
     wall = _wall(rng)
@@ -100,7 +103,7 @@ def _floor(img: np.ndarray, horizon: int) -> None:
     img[horizon:] = np.where(check[..., None], [150.0, 160.0, 170.0], [70.0, 80.0, 95.0])
 
 
-def ball_floor(trial: int, rng: np.random.Generator) -> list[np.ndarray]:
+def ball_floor(rng: np.random.Generator, frames_n: int = FRAMES) -> list[np.ndarray]:
     e, radius = 0.8, 11.0
     floor_y = 200.0                                      # image row of the ball's lowest point at contact
     h0 = rng.uniform(90.0, 140.0)                        # drop height, px
@@ -108,7 +111,7 @@ def ball_floor(trial: int, rng: np.random.Generator) -> list[np.ndarray]:
     if vx < 0:
         x0 = WIDTH - x0
     g_px = 900.0                                         # px/s² (sets the bounce time scale)
-    t = np.arange(FRAMES) / FPS
+    t = np.arange(frames_n) / FPS
     # closed form between bounces: fall from h0, then each flight lasts e times the one before
     y = np.empty_like(t)
     t_hit, v_hit = math.sqrt(2 * h0 / g_px), math.sqrt(2 * g_px * h0)
@@ -124,7 +127,7 @@ def ball_floor(trial: int, rng: np.random.Generator) -> list[np.ndarray]:
     base = np.broadcast_to(np.array([120.0, 105.0, 95.0]), (HEIGHT, WIDTH, 3)).astype(np.float32).copy()
     _floor(base, 150)
     frames = []
-    for i in range(FRAMES):
+    for i in range(frames_n):
         img = base.copy()
         cx, cy = x0 + vx * t[i], floor_y - radius - y[i]
         shadow_w = int(radius * (1.2 - 0.4 * min(y[i] / 140.0, 1.0)))
@@ -143,6 +146,15 @@ def ball_floor(trial: int, rng: np.random.Generator) -> list[np.ndarray]:
 
 
 SCENES = {"rod_pendulum": (rod_pendulum, ".jpg"), "ball_floor": (ball_floor, ".png")}
+LONG_TAKE = ("rod_pendulum",)  # the ball rolls out of view and comes to rest within a few seconds
+
+
+def write_video(path: Path, frames: list[np.ndarray]) -> None:
+    """One recording as an MPEG-4 video (OpenCV's "mp4v" encoder) at :data:`FPS`."""
+    out = cv2.VideoWriter(str(path), cv2.VideoWriter_fourcc(*"mp4v"), FPS, (WIDTH, HEIGHT))
+    for img in frames:
+        out.write(img)
+    out.release()
 
 
 def main(argv=None) -> int:
@@ -150,11 +162,20 @@ def main(argv=None) -> int:
     p.add_argument("out", type=Path, help="folder to write the scenes into (one sub-folder each)")
     p.add_argument("--trials", type=int, default=12)
     p.add_argument("--seed", type=int, default=7)
+    p.add_argument("--video", type=float, default=0.0, metavar="SECONDS",
+                   help="instead of trial folders, one video of this length (OUT/NAME.mp4) of each scene that "
+                        "stays in view that long (the rod pendulum), as a user would record one long take")
     a = p.parse_args(argv)
+    a.out.mkdir(parents=True, exist_ok=True)
     for name, (draw, suffix) in SCENES.items():
         rng = np.random.default_rng(a.seed)
+        if a.video > 0 and name in LONG_TAKE:
+            write_video(a.out / f"{name}.mp4", draw(rng, int(round(a.video * FPS))))
+            print(f"wrote {a.out / (name + '.mp4')}: {a.video:g} s at {FPS:g} frames/s")
+        if a.video > 0:
+            continue
         for k in range(a.trials):
-            _write_trial(a.out / f"foreign_{name}" / f"trial_{k:03d}", draw(k, rng), suffix)
+            _write_trial(a.out / f"foreign_{name}" / f"trial_{k:03d}", draw(rng), suffix)
         print(f"wrote {a.out / ('foreign_' + name)}: {a.trials} trials of {FRAMES} frames")
     return 0
 
