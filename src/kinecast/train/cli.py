@@ -67,8 +67,8 @@ def run(args, cfg) -> int:
             print(f"verdict on the held-out frames ({level}): {verdict['text']}")
         if summary.get("spread_scale"):
             print(f"sampled futures: spread scaled by {summary['spread_scale']:.3g} (fitted on the validation "
-                  f"trials so that {100 * cfg.score.band:.0f} % of their true object positions (tracked in the frames) fall inside "
-                  "the futures' central region; applies to forecast/score with --samples > 1)")
+                  f"trials so that {100 * cfg.score.band:.0f} % of their true object positions (tracked in the "
+                  "frames) fall inside the futures' central region; applies to forecast/score with --samples > 1)")
             if summary.get("pixel_noise"):
                 print(f"sampled futures: pixel noise of std {summary['pixel_noise']:.3g} (intensity 0-1) belongs "
                       "to their predictive distribution (fitted likewise on the object's pixels; used by the "
