@@ -4,14 +4,18 @@ The posterior draws (s0, v0 and the field's weights) of a model trained for minu
 too confident: the truth falls inside the sampled futures' central band much less often than the
 band's share. :func:`coverage_scale` finds the one factor by which the samples' deviations from
 their mean must be multiplied for the truth to lie inside the central ``band`` region in ``band``
-of the cases; :func:`fit_spread_scale` measures it on latent positions — the keypoints' image
+of the cases; :func:`calibrate` measures it first on latent positions — the keypoints' image
 coordinates (the encoder's readings of the true frames against free rollouts from the first
-frames) — so no frame is decoded. The forecast applies it in :meth:`LatentODE.rollout`.
+frames) — then refines it on what the score measures: the object positions tracked (foreground
+centroids) in the decoded futures against those tracked in the true frames. The tracked positions
+include what the latents leave out (the decoder's drawing offset, a keypoint that sits off the
+object's centroid), and their spread is in pixels, not in a latent posterior that may be tiny.
+The forecast applies the scale in :meth:`LatentODE.rollout`.
 
 The drawn futures alone leave out the likelihood's observation noise: where every future draws the
 object's edge at the same place the band is a point, and a true pixel a little brighter or darker
 lies outside it (object-region band coverage 0.28-0.53 at a calibrated position coverage, measured
-on the pendulum and spring). :func:`fit_pixel_noise` fits the standard deviation of Gaussian pixel
+on the pendulum and spring). :func:`calibrate` then fits the standard deviation of Gaussian pixel
 noise that, added to the futures, makes the object-region band cover the truth as often as the
 band says; :func:`band_inside` is the band test of that predictive distribution, used by the scores.
 
@@ -30,7 +34,7 @@ from scipy.special import ndtr
 from ..frames.tracks import centroid_track, object_region
 from .staged import encode_all
 
-__all__ = ["band_inside", "coverage_scale", "fit_pixel_noise", "fit_spread_scale", "noise_for_coverage"]
+__all__ = ["band_inside", "calibrate", "coverage_scale", "noise_for_coverage"]
 
 # Smallest spread radius trusted (normalised image units, ~0.03 px at 64 px): below it the samples
 # agree to rounding and the ratio says nothing.
@@ -73,15 +77,18 @@ def coverage_scale(points: torch.Tensor, truth: torch.Tensor, band: float, min_r
 
 
 @torch.no_grad()
-def fit_spread_scale(model, clips, band: float, samples: int, generator: torch.Generator) -> float:
-    """The spread scale that puts the true object positions inside the central ``band`` region of
-    the sampled futures' positions in a share ``band`` of the frames.
+def calibrate(model, clips, band: float, samples: int, generator: torch.Generator) -> tuple[float, float]:
+    """The spread scale and then the pixel noise of the sampled futures, from one set of drawn futures.
 
-    First :func:`coverage_scale` of free rollouts against the encoder's readings of the true
-    frames (latent positions, nothing decoded); then :data:`SCALE_ROUNDS` rounds of
-    :func:`coverage_scale` on tracked positions (foreground centroids, as
-    :func:`kinecast.score.metrics.position_coverage` tracks them) of the same futures decoded at
-    the current scale, each multiplying the scale by the factor found.
+    The spread scale puts the true object positions inside the central ``band`` region of the
+    futures' positions in a share ``band`` of the frames: first :func:`coverage_scale` of the
+    futures' latent positions against the encoder's readings of the true frames (nothing
+    decoded); then :data:`SCALE_ROUNDS` rounds of :func:`coverage_scale` on tracked positions
+    (foreground centroids, as :func:`kinecast.score.metrics.position_coverage` tracks them) of the
+    same futures decoded at the current scale, each multiplying the scale by the factor found.
+    The pixel noise is :func:`noise_for_coverage` of the futures decoded at that scale against
+    the true frames, over the object region of every frame
+    (:func:`kinecast.frames.tracks.object_region`, around the futures' mean).
 
     Parameters
     ----------
@@ -97,39 +104,63 @@ def fit_spread_scale(model, clips, band: float, samples: int, generator: torch.G
 
     Returns
     -------
-    float
-        The spread scale (1.0 for a model without positions that move).
+    (float, float)
+        The spread scale (1.0 for a model without positions that move) and the pixel noise's
+        standard deviation (intensities in [0, 1]; 0.0 when no frame can be judged).
     """
+    draws = _draw(model, clips, samples, generator)
+    scale = _spread_scale(model, draws, band)
+    return scale, _pixel_noise(model, draws, band, scale)
+
+
+def _draw(model, clips, samples: int, generator) -> list[tuple[torch.Tensor, torch.Tensor]]:
+    """Per clip with a present frame after the context: the futures' latent positions [S, n, q] at
+    those frames (drawn as :meth:`LatentODE.rollout` draws them, before any spread scale) and the
+    true frames [n, C, H, W]."""
     k, q = model.k, model.q
-    moving = model.field.moving.bool()
-    dim = 2 if model.keypoints else 1  # a keypoint's (x, y) is one point; a dense latent is 1-D each
-    if not bool(moving.any()):
-        return 1.0
-    points, truths, paths, frames_after = [], [], [], []
+    draws = []
     for frames, t, present in clips:
         lat = model.sample_latents(frames[None, :k], t, samples, mean_weights=False, sample_init=True,
                                    generator=generator, ctx_t=t[:k])[:, 0]                # [S, T, 2q]
-        keep = torch.as_tensor(present, dtype=torch.bool)[k:]
-        paths.append(lat[:, k:][:, keep][..., :q])
-        frames_after.append(frames[k:][keep])
-        lat = lat.transpose(0, 1)[k:][keep][..., :q][..., moving]                         # [n, S, m]
-        truth = encode_all(model, frames[k:][keep])[0][:, moving]                         # [n, m]
-        points.append(lat.reshape(lat.shape[0], samples, -1, dim).transpose(1, 2).reshape(-1, samples, dim))
+        keep = torch.as_tensor(present, dtype=torch.bool, device=lat.device)[k:]
+        if bool(keep.any()):
+            draws.append((lat[:, k:][:, keep][..., :q], frames[k:][keep]))
+    return draws
+
+
+def _scaled(paths: torch.Tensor, scale: float) -> torch.Tensor:
+    """Latent paths [S, ...] spread about their mean by ``scale``, as :meth:`LatentODE.rollout` does."""
+    centre = paths.mean(dim=0, keepdim=True)
+    return centre + scale * (paths - centre)
+
+
+def _background(model):
+    return model.background.detach().cpu().numpy() if model.cfg.background else None
+
+
+def _spread_scale(model, draws, band: float) -> float:
+    moving = model.field.moving.bool()
+    if not bool(moving.any()) or not draws:
+        return 1.0
+    dim = 2 if model.keypoints else 1  # a keypoint's (x, y) is one point; a dense latent is 1-D each
+    points, truths = [], []
+    for paths, after in draws:
+        lat = paths.transpose(0, 1)[..., moving]                                          # [n, S, m]
+        truth = encode_all(model, after)[0][:, moving]                                    # [n, m]
+        points.append(lat.reshape(lat.shape[0], lat.shape[1], -1, dim).transpose(1, 2).reshape(-1, lat.shape[1], dim))
         truths.append(truth.reshape(-1, dim))
     scale = coverage_scale(torch.cat(points), torch.cat(truths), band)
-    return _refine_on_tracks(model, paths, frames_after, band, scale)
+    return _refine_on_tracks(model, draws, band, scale)
 
 
-def _refine_on_tracks(model, paths, frames_after, band: float, scale: float) -> float:
-    """:func:`fit_spread_scale`'s rounds on tracked positions; ``paths`` [S, n, q] are the
-    futures' latent positions, ``frames_after`` [n, C, H, W] the true frames they forecast."""
-    background = model.background.detach().cpu().numpy() if model.cfg.background else None
-    truth = np.concatenate([centroid_track(f.cpu().numpy(), background) for f in frames_after])   # [N, 2]
+def _refine_on_tracks(model, draws, band: float, scale: float) -> float:
+    """:func:`calibrate`'s rounds on tracked positions of the futures decoded at ``scale``."""
+    background = _background(model)
+    truth = np.concatenate([centroid_track(after.cpu().numpy(), background) for _, after in draws])  # [N, 2]
     for _ in range(SCALE_ROUNDS):
         drawn = []
-        for lat in paths:
-            centre = lat.mean(dim=0, keepdim=True)
-            pred = model.decode(centre + scale * (lat - centre)).cpu().numpy()                 # [S, n, C, H, W]
+        for paths, _ in draws:
+            pred = model.decode(_scaled(paths, scale)).cpu().numpy()                          # [S, n, C, H, W]
             drawn.append(np.stack([centroid_track(one, background) for one in pred], axis=1))   # [n, S, 2]
         drawn = np.concatenate(drawn)
         ok = np.isfinite(drawn).all(axis=(1, 2)) & np.isfinite(truth).all(axis=1)
@@ -182,23 +213,12 @@ def noise_for_coverage(samples: np.ndarray, truth: np.ndarray, band: float) -> f
     return hi
 
 
-@torch.no_grad()
-def fit_pixel_noise(model, clips, band: float, samples: int, generator: torch.Generator) -> float:
-    """:func:`noise_for_coverage` of decoded futures (drawn as :meth:`LatentODE.rollout` draws them,
-    with the model's spread scale) against the true frames, over the object region of every present
-    frame after the context (:func:`kinecast.frames.tracks.object_region`, around the futures' mean).
-    ``clips`` and ``samples`` as for :func:`fit_spread_scale`."""
-    k = model.k
-    background = model.background.detach().cpu().numpy() if model.cfg.background else None
+def _pixel_noise(model, draws, band: float, scale: float) -> float:
+    background = _background(model)
     drawn_all, truth_all = [], []
-    for frames, t, present in clips:
-        pred, _ = model.rollout(frames[None, :k], t, samples, mean_weights=False, sample_init=True,
-                                generator=generator, ctx_t=t[:k])
-        keep = torch.as_tensor(present, dtype=torch.bool)[k:].cpu().numpy()
-        drawn = pred[:, 0, k:].cpu().numpy()[:, keep]                    # [S, n, C, H, W]
-        truth = frames[k:].cpu().numpy()[keep]                           # [n, C, H, W]
-        if not len(truth):
-            continue
+    for paths, after in draws:
+        drawn = model.decode(_scaled(paths, scale)).cpu().numpy()                          # [S, n, C, H, W]
+        truth = after.cpu().numpy()                                                       # [n, C, H, W]
         region = np.broadcast_to(object_region(drawn.mean(axis=0), truth, background)[:, None], truth.shape)
         drawn_all.append(drawn[:, region])
         truth_all.append(truth[region])

@@ -99,7 +99,7 @@ def calibrate_run(run: Path, recs, window: int, cfg, device) -> dict:
     """Fit the best weights' spread scale, then their pixel noise, on ``recs`` (held-out trials) and
     store both in the run's weights file (see :mod:`kinecast.model.calibration`); {} when no trial
     has room for it, else ``{"spread_scale": ..., "pixel_noise": ...}``."""
-    from ..model.calibration import fit_pixel_noise, fit_spread_scale
+    from ..model.calibration import calibrate
 
     best, run_cfg = rf.load_run(run, device)
     k = run_cfg.model.velocity_frames
@@ -116,9 +116,9 @@ def calibrate_run(run: Path, recs, window: int, cfg, device) -> dict:
     if not clips:
         return {}
     gen = torch.Generator(device=device).manual_seed(cfg.train.seed)
-    draws = cfg.train.calibration_samples
-    best.spread_scale.fill_(fit_spread_scale(best, clips, cfg.score.band, draws, gen))
-    best.pixel_noise.fill_(fit_pixel_noise(best, clips, cfg.score.band, draws, gen))
+    scale, noise = calibrate(best, clips, cfg.score.band, cfg.train.calibration_samples, gen)
+    best.spread_scale.fill_(scale)
+    best.pixel_noise.fill_(noise)
     tensors, meta = rf.load_tensors(run / rf.WEIGHTS)
     fitted = {name: float(getattr(best, name)) for name in ("spread_scale", "pixel_noise")}
     for name, value in fitted.items():
