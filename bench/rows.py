@@ -6,7 +6,7 @@ import math
 
 from .common import (BEAT_FACTOR, EFFICIENCY_GOAL, FLAT_RSS_RATIO, READ_RATIO_GOAL, ROLLOUT_GOAL_FPS,
                      RSS_GOAL_BYTES, Profile, Row, fmt_si, goal_row)
-from .quality import BASELINES, EVAL_SEED, HORIZONS, LEARNED, TRAIN_SEED, TTQ_RIG
+from .quality import BASELINES, COVERAGE_GOAL, COVERAGE_SAMPLES, EVAL_SEED, HORIZONS, LEARNED, TRAIN_SEED, TTQ_RIG
 
 GOAL_SAMPLES = 10  # the rollout goal is stated for 10 samples
 
@@ -85,6 +85,19 @@ def _method_value(s: dict, persistence_mse: float, is_persistence: bool) -> str:
     return value
 
 
+def coverage_rows(rig: str, cover: dict) -> list[Row]:
+    """One row per learned method and coverage ({method: {"position": x, "object band": y}}),
+    judged against :data:`bench.quality.COVERAGE_GOAL`; NaN (nothing could be judged) is unjudged."""
+    lo, hi = COVERAGE_GOAL
+    rows = []
+    for method, cov in cover.items():
+        for name, value in cov.items():
+            ok = None if value != value else lo <= value <= hi
+            rows.append(Row("coverage", f"{rig}: {method} {name} coverage ({COVERAGE_SAMPLES} futures, "
+                            "nominal 0.90)", f"{value:.2f}", f"{lo:g}-{hi:g}", ok))
+    return rows
+
+
 def quality_rows(quality: dict, budget: str) -> tuple[list[Row], list[str]]:
     """One row per rig and method, then the time-to-quality rows; plus notes for the table."""
     rows, notes = [], []
@@ -102,6 +115,7 @@ def quality_rows(quality: dict, budget: str) -> tuple[list[Row], list[str]]:
             steps = f" ({train[method]['summary']['steps']} steps in {budget})" if method in LEARNED else ""
             rows.append(Row("quality", f"{rig}: {method}{steps}",
                             _method_value(scores[method], pers, method == "persistence")))
+        rows += coverage_rows(rig, entry.get("coverage", {}))
         for variant, t in entry.get("time_to_quality", {}).items():
             reached = t["reached"]
             text = (f"{reached['time_s']:.1f} s (step {reached['step']})" if reached

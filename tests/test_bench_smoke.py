@@ -130,3 +130,18 @@ def test_profiles_keep_the_quick_run_smaller_than_the_full_one():
     from kinecast.config import parse_budget
     assert parse_budget(quick.budget) < parse_budget(full.budget)
     assert np.all(np.diff(full.memory_frames) > 0)
+
+
+def test_coverage_rows_judge_against_the_issue_goal():
+    # The scores issue's goal for both coverages at a nominal 0.90 band: 0.85-0.95 (bench.quality
+    # COVERAGE_GOAL). A calibrated 0.90 meets it, an over-confident 0.30 and an over-wide 0.99 do not,
+    # and a coverage that could not be measured (NaN) is neither.
+    from bench.quality import COVERAGE_GOAL
+    from bench.rows import coverage_rows
+
+    assert COVERAGE_GOAL == (0.85, 0.95)
+    rows = coverage_rows("pendulum", {"second_order": {"position": 0.90, "object band": 0.30},
+                                      "first_order": {"position": 0.99, "object band": math.nan}})
+    got = {r.measure.split(" coverage")[0]: r.met for r in rows if r.area == "coverage"}
+    assert got == {"pendulum: second_order position": True, "pendulum: second_order object band": False,
+                   "pendulum: first_order position": False, "pendulum: first_order object band": None}
