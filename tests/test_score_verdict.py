@@ -163,3 +163,16 @@ def test_judge_recordings_on_a_still_model(cfg, recs):
     full = [evaluate(still_model(cfg, recs), cfg, r, 0, K, 15)["summary"]["persistence"]["mean_mse"]
             for r in recs]
     assert out["summaries"]["3W"]["persistence"]["mean_mse"] == pytest.approx(np.mean(full), rel=1e-9)
+
+
+def test_a_good_verdict_says_when_a_baseline_stays_on_the_object_longer():
+    # Object horizons in frames (the definition in README "What the metrics mean"): a model that is
+    # closer on average but leaves the tolerance after 1 frame, against persistence staying within it
+    # for 5, must say so; with the model's horizon the longest, nothing is added.
+    from kinecast.score.verdict import _longer_horizon
+
+    methods = {"model": {"object_horizon_frames": 1}, "persistence": {"object_horizon_frames": 5},
+               "flow_warp": {"object_horizon_frames": 3}, "background_only": {"object_horizon_frames": 0}}
+    text = _longer_horizon(methods, 1)
+    assert "persistence" in text and "(5 frames)" in text and "leaves the tolerance sooner" in text
+    assert _longer_horizon(methods, 5) == "" and _longer_horizon(methods, 9) == ""

@@ -144,6 +144,7 @@ def run(args, cfg) -> int:
     write_bytes(side["forecast"], buf.getvalue())
     print(f"forecast of {n} frames ({fc.times[0]:.3f}–{fc.times[-1]:.3f} s, {samples} sample(s)"
           f"{f', seed {cfg.forecast.seed}' if samples > 1 else ''}) "
-          f"written to {out}; contact sheet {side['sheet']}; latents {side['latents']}")
+          f"written to {out}; contact sheet {side['sheet']}; latents {side['latents']}; "
+          f"phase portrait {side['phase']}; arrays (mean, spread, samples) {side['forecast']}")
     print(f"note: {CAUTION}")
     return 0

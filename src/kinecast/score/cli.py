@@ -111,6 +111,10 @@ def recording_px_per_model_px(rec) -> float | None:
     return geo.width / geo.content_w if geo else None
 
 
+def _frames(n) -> str:
+    return f"{n} frame" if n == 1 else f"{n} frames"
+
+
 def table(result: dict) -> str:
     """The summary as a markdown table (printed and shown in the report)."""
     head = ("| method | mean MSE | mean SSIM | mean PSNR (dB) | position error (model px) | valid horizon "
@@ -118,8 +122,8 @@ def table(result: dict) -> str:
     lines = [head, "|---|---|---|---|---|---|---|"]
     for method, s in result["summary"].items():
         lines.append(f"| {method} | {s['mean_mse']:.4g} | {s['mean_ssim']:.3f} | {s['mean_psnr']:.1f} | "
-                     f"{s['mean_position_error_px']:.2f} | {s['valid_horizon_frames']} frames "
-                     f"({s['valid_horizon_s']:.2f} s) | {s['object_horizon_frames']} frames "
+                     f"{s['mean_position_error_px']:.2f} | {_frames(s['valid_horizon_frames'])} "
+                     f"({s['valid_horizon_s']:.2f} s) | {_frames(s['object_horizon_frames'])} "
                      f"({s['object_horizon_s']:.2f} s) |")
     return "\n".join(lines)
 
@@ -217,8 +221,8 @@ def _run_model(args, cfg, out: Path) -> int:
     err = result["summary"]["model"]["mean_position_error_px"]
     if scale and math.isfinite(err):
         print(f"position errors are in model pixels ({run_cfg.data.size} px frames); one model pixel is "
-              f"{scale:.3g} pixels of the recording, so the model's {err:.2f} px is {err * scale:.3g} "
-              "recording pixels")
+              f"{scale:.3g} pixel{'' if scale == 1 else 's'} of the recording, so the model's {err:.2f} px "
+              f"is {err * scale:.3g} recording pixels")
     if samples > 1:
         print(coverage_text(result["summary"]["model"], run_cfg.score.band))
     p = result["periods"]

@@ -40,16 +40,19 @@ def coverage_text(summary: dict, band: float) -> str:
     pos, obj, pix = (summary.get(k) for k in ("mean_position_coverage", "mean_object_band_coverage",
                                               "mean_band_coverage"))
     pct = lambda v: "–" if v is None or not np.isfinite(v) else f"{100 * v:.0f} %"  # noqa: E731
-    text = (f"spread of the sampled futures: the true object position lay inside their central "
-            f"{100 * band:.0f} % region in {pct(pos)} of the frames; pixels where an object is drawn or "
-            f"recorded lay inside their {100 * band:.0f} % band {pct(obj)} of the time (all pixels {pct(pix)})")
-    shown = [v for v in (pos, obj) if v is not None and np.isfinite(v)]
     lo, hi = COVERAGE_FLAG
+    flag = lambda v: ("" if v is None or not np.isfinite(v) else  # noqa: E731
+                      f" (BELOW {100 * lo:.0f} %)" if v < lo else f" (ABOVE {100 * hi:.0f} %)" if v > hi else "")
+    text = (f"spread of the sampled futures: the true object position lay inside their central "
+            f"{100 * band:.0f} % region in {pct(pos)}{flag(pos)} of the frames; pixels where an object is "
+            f"drawn or recorded lay inside their {100 * band:.0f} % band {pct(obj)}{flag(obj)} of the time "
+            f"(all pixels {pct(pix)}, near 100 % on a still background)")
+    shown = [v for v in (pos, obj) if v is not None and np.isfinite(v)]
     if any(v < lo for v in shown):
-        text += (f" — BELOW {100 * lo:.0f} %: the futures are more certain than they should be; "
+        text += ("; the figure marked BELOW means the futures are more certain than they should be: "
                  "treat their spread as a lower bound on the real uncertainty")
     elif any(v > hi for v in shown):
-        text += f" — ABOVE {100 * hi:.0f} %: the futures spread wider than the errors they make"
+        text += "; the figure marked ABOVE means the futures spread wider than the errors they make"
     return text
 
 

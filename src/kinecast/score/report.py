@@ -187,14 +187,16 @@ def _score_fact(key: str, value) -> str:
     return _fmt(value, unit)
 
 
-def _coverage_cell(v) -> str:
-    """A mean coverage as a percentage, flagged outside ``evaluate.COVERAGE_FLAG``; – when not measured."""
+def _coverage_cell(v, flagged: bool = True) -> str:
+    """A mean coverage as a percentage, flagged outside ``evaluate.COVERAGE_FLAG`` when ``flagged``
+    (not the all-pixel band: with the fitted pixel noise the static background puts it near 1, and
+    README says to read the other two); – when not measured."""
     from .evaluate import COVERAGE_FLAG
 
     if not isinstance(v, (int, float)) or v != v:
         return "–"
     lo, hi = COVERAGE_FLAG
-    flag = " (too narrow)" if v < lo else " (too wide)" if v > hi else ""
+    flag = "" if not flagged else " (too narrow)" if v < lo else " (too wide)" if v > hi else ""
     return f"{100 * v:.1f} %{flag}"
 
 
@@ -236,8 +238,8 @@ def _scores_section(folder: Path, run: Path, digest: str) -> tuple[str, str]:
     for m, s in methods.items():
         cells = [html.escape(method_label(m))] + [_fmt(s.get(k), unit) for k, _, unit in SCORE_COLUMNS]
         cells += [_horizon(s, "valid"), _horizon(s, "object")] + [
-            _coverage_cell(s.get(k)) for k in ("mean_band_coverage", "mean_object_band_coverage",
-                                               "mean_position_coverage")]
+            _coverage_cell(s.get(k), k != "mean_band_coverage")
+            for k in ("mean_band_coverage", "mean_object_band_coverage", "mean_position_coverage")]
         rows += "<tr>" + "".join(f"<td>{c}</td>" for c in cells) + "</tr>"
     facts = [(words, _score_fact(k, summary[k])) for k, words in SCORE_FACTS.items() if k in summary]
     periods = summary.get("periods", {})

@@ -18,7 +18,7 @@ from . import stages as S
 
 REDRAW_S = 0.5  # terminal: redraw the live line at most this often (smooth, no flicker)
 PLAIN_EVERY_S = 10.0  # log file or pipe: a plain line at least this often, so a run never looks hung
-STAGE_WORDS = {S.POSITIONS: "finding the moving object", S.DYNAMICS: "learning the motion",
+STAGE_WORDS = {S.POSITIONS: "finding and drawing the moving object", S.DYNAMICS: "learning the motion",
                S.JOINT: "refining both together"}
 
 
