@@ -136,11 +136,13 @@ def test_durations_read_back_as_budgets(seconds, decimals, text):
 def test_resume_with_steps_or_budget_trains_that_much_more(rig, tmp_path, capsys):
     run = tmp_path / "run"
     assert main(["fit", str(rig), "--out", str(run), "--steps", "12", "--quiet", *SETS]) == 0
-    assert summary_of(run)["steps"] == 12
+    assert summary_of(run)["steps"] == 12 and C.load(run / rf.CONFIG).train.early_stop is True
 
     assert main(["fit", "--resume", str(run), "--steps", "8", "--quiet"]) == 0
     assert summary_of(run)["steps"] == 12 + 8
     assert C.load(run / rf.CONFIG).train.steps == 20  # a later plain --resume keeps the new total
+    # an extension trains as long as asked: no early stop, kept in the run's config for later resumes
+    assert C.load(run / rf.CONFIG).train.early_stop is False
 
     capsys.readouterr()
     assert main(["fit", "--resume", str(run), "--quiet"]) == 0  # nothing left: says so

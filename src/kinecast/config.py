@@ -207,6 +207,9 @@ class TrainConfig:
     val_fraction: float = _opt(0.25, "tail share of a single recording held out for validation",
                                lo=0.0, hi=0.9)
     patience: int = _opt(6, "validations without improvement before growing the window / stopping", lo=1)
+    early_stop: bool = _opt(True, "end the run when validation has stalled at the longest window; an extension "
+                            "asked for with fit --resume --budget/--steps turns it off, so that it trains as "
+                            "long as asked (the weights kept are still the best validated)")
     checkpoint_every: int = _opt(100, "steps between checkpoints", lo=1)
     threads: int = _opt(0, "torch threads; 0 = the core count", lo=0)
     device: str = _opt("auto", "compute device", choices=("auto", "cpu", "cuda"))

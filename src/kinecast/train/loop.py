@@ -129,7 +129,10 @@ def calibrate_run(run: Path, recs, window: int, cfg, device) -> dict:
 
 def _extend_budget(tc: cfgmod.TrainConfig, meta: dict) -> None:
     """Turn ``tc.steps`` / ``tc.budget`` asked for on resume (more training) into totals from the
-    run's start: what the checkpoint ``meta`` has done so far plus the extra."""
+    run's start: what the checkpoint ``meta`` has done so far plus the extra. An extension trains as
+    long as asked: no early stop (``train.early_stop``; saved with the run, so a resume of the
+    extension keeps it)."""
+    tc.early_stop = False
     if tc.steps:
         tc.steps += int(meta["step"])
     extra_s = cfgmod.parse_budget(tc.budget)
@@ -364,13 +367,14 @@ class _Trainer:
         elapsed = self.elapsed()
         prog = progress(st.step, elapsed, cfg.train.steps, self.budget_s)
         stop = (cfg.train.steps and st.step >= cfg.train.steps) or (self.budget_s and elapsed >= self.budget_s) \
-            or st.cur.done
+            or (st.cur.done and cfg.train.early_stop)
         stage, local = S.stage_at(prog, cfg.train)
         if stage == S.JOINT:
             st.cur.follow(min(cfg.train.window_start, self.data.longest), prog, cfg.train.window_schedule)
         stop, st.cur.window = D.sync_decision(self.ctx, bool(stop), st.cur.window)
         if stop:
-            self.stop_reason = "early stop: validation stalled at the longest window" if st.cur.done else "budget"
+            early = st.cur.done and cfg.train.early_stop
+            self.stop_reason = "early stop: validation stalled at the longest window" if early else "budget"
             return False
         if stage != self.stage:
             self._enter(stage, elapsed)
