@@ -421,7 +421,7 @@ class _Trainer:
             S.restore_positions(self.model, self.opt, st.best_positions)
             self.report.note(f"kinecast: the position encoder is back to its best weights of the positions stage "
                              f"(reconstruction error {st.stages.best_ratio:.2g}x the bare background's)")
-        elif stage == S.DYNAMICS and not st.stages.escaped:
+        elif stage == S.DYNAMICS and not st.stages.escaped and st.best_positions is None:
             self.report.note("kinecast: warning: the position encoder never clearly beat the bare background "
                              f"({st.stages.restarts} restarts); the motion may not be learned")
         if stage == S.DYNAMICS:
