@@ -32,6 +32,7 @@ import torch
 from scipy.special import ndtr
 
 from ..frames.tracks import centroid_track, object_region
+from .latent_ode import spread_about_mean
 from .staged import encode_all
 
 __all__ = ["band_inside", "calibrate", "coverage_scale", "noise_for_coverage"]
@@ -128,12 +129,6 @@ def _draw(model, clips, samples: int, generator) -> list[tuple[torch.Tensor, tor
     return draws
 
 
-def _scaled(paths: torch.Tensor, scale: float) -> torch.Tensor:
-    """Latent paths [S, ...] spread about their mean by ``scale``, as :meth:`LatentODE.rollout` does."""
-    centre = paths.mean(dim=0, keepdim=True)
-    return centre + scale * (paths - centre)
-
-
 def _background(model):
     return model.background.detach().cpu().numpy() if model.cfg.background else None
 
@@ -160,7 +155,7 @@ def _refine_on_tracks(model, draws, band: float, scale: float) -> float:
     for _ in range(SCALE_ROUNDS):
         drawn = []
         for paths, _ in draws:
-            pred = model.decode(_scaled(paths, scale)).cpu().numpy()                          # [S, n, C, H, W]
+            pred = model.decode(spread_about_mean(paths, scale)).cpu().numpy()        # [S, n, C, H, W]
             drawn.append(np.stack([centroid_track(one, background) for one in pred], axis=1))   # [n, S, 2]
         drawn = np.concatenate(drawn)
         ok = np.isfinite(drawn).all(axis=(1, 2)) & np.isfinite(truth).all(axis=1)
@@ -217,7 +212,7 @@ def _pixel_noise(model, draws, band: float, scale: float) -> float:
     background = _background(model)
     drawn_all, truth_all = [], []
     for paths, after in draws:
-        drawn = model.decode(_scaled(paths, scale)).cpu().numpy()                          # [S, n, C, H, W]
+        drawn = model.decode(spread_about_mean(paths, scale)).cpu().numpy()       # [S, n, C, H, W]
         truth = after.cpu().numpy()                                                       # [n, C, H, W]
         region = np.broadcast_to(object_region(drawn.mean(axis=0), truth, background)[:, None], truth.shape)
         drawn_all.append(drawn[:, region])

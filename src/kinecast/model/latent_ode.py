@@ -388,9 +388,14 @@ class LatentODE(nn.Module):
         self._check_frames(ctx, "rollout", self.k)
         latents = self.sample_latents(ctx, t, samples, mean_weights, sample_init, generator, ctx_t)
         if samples > 1 and float(self.spread_scale) != 1.0:  # calibrated spread about the samples' mean
-            centre = latents.mean(dim=0, keepdim=True)
-            latents = centre + self.spread_scale * (latents - centre)
+            latents = spread_about_mean(latents, self.spread_scale)
         return self.decode(latents[..., :self.q]), latents
+
+
+def spread_about_mean(samples: torch.Tensor, scale) -> torch.Tensor:
+    """Samples [S, ...] with their deviations from the samples' mean multiplied by ``scale``."""
+    centre = samples.mean(dim=0, keepdim=True)
+    return centre + scale * (samples - centre)
 
 
 def latent_size(model_cfg) -> int:
