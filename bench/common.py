@@ -28,6 +28,18 @@ EFFICIENCY_GOAL = 0.35        # achieved training FLOP/s over the machine's meas
 ROLLOUT_GOAL_FPS = 2000.0     # rollout + decode frames/s with 10 samples at 64 px on 2 cores
 RSS_GOAL_BYTES = 1.5e9        # peak RSS while training, 64 px (1.5 GB, decimal)
 READ_RATIO_GOAL = 0.8         # kinecast read throughput over a raw ffmpeg decode of the same file
+COVERAGE_SAMPLES = 16         # futures drawn per trial for the coverage figures (seeded: forecast.seed)
+COVERAGE_KEYS = ("mean_position_coverage", "mean_object_band_coverage")
+
+
+def trial_coverage(model, cfg, rec, n: int, device="cpu") -> dict[str, float]:
+    """Position and object-pixel band coverage of :data:`COVERAGE_SAMPLES` sampled futures of ``rec``
+    forecast for ``n`` frames from its first ``model.velocity_frames`` (nominal ``score.band``)."""
+    from kinecast.score.evaluate import evaluate
+
+    k = cfg.model.velocity_frames
+    got = evaluate(model, cfg, rec, 0, k, n, samples=COVERAGE_SAMPLES, device=device)["summary"]["model"]
+    return {key: got.get(key, math.nan) for key in COVERAGE_KEYS}
 BEAT_FACTOR = 10.0            # time-to-quality: model MSE at 3× window ≤ persistence MSE / 10
 # Our reading of "flat in length" (the issue gives no number): a recording 10× longer may cost at
 # most 20 % more peak RSS.

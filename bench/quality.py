@@ -34,14 +34,13 @@ from kinecast.score.evaluate import evaluate
 from kinecast.train import fit, load_run
 from kinecast import runfolder as rf
 
-from .common import BEAT_FACTOR, NOMINAL_FPS, Profile, pick_device
+from .common import BEAT_FACTOR, NOMINAL_FPS, Profile, pick_device, trial_coverage
 
 TRAIN_SEED, EVAL_SEED = 1, 2
 LEARNED = ("second_order", "first_order")
 BASELINES = ("background_only", "persistence", "constant_velocity", "flow_warp")
 METRICS = ("mse", "ssim", "position_error_px")
 HORIZONS = (1, 2, 3)                 # multiples of the training window W
-COVERAGE_SAMPLES = 16                # futures per evaluation trial for the coverage rows (seeded)
 COVERAGE_GOAL = (0.85, 0.95)         # position and object-pixel band coverage at a nominal 0.90 (the scores issue)
 TTQ_RIG = "pendulum"
 POLL_S = 0.2                         # how often the checkpoint watcher looks for a new best checkpoint
@@ -158,14 +157,13 @@ def score_models(models: dict, recs: list, window: int, device) -> dict:
 
 
 def coverages(model, cfg: Config, recs: list, window: int, device) -> dict:
-    """Mean position and object-pixel band coverage of :data:`COVERAGE_SAMPLES` sampled futures per
+    """Mean position and object-pixel band coverage of :data:`bench.common.COVERAGE_SAMPLES` sampled futures per
     evaluation trial over the first 3·W forecast frames (``score.band``, nominal 0.90)."""
-    k, got = cfg.model.velocity_frames, {"position": [], "object band": []}
+    got = {"position": [], "object band": []}
     for rec in recs:
-        m = evaluate(model, cfg, rec, 0, k, max(HORIZONS) * window, samples=COVERAGE_SAMPLES,
-                     device=device)["summary"]["model"]
-        got["position"].append(m.get("mean_position_coverage", np.nan))
-        got["object band"].append(m.get("mean_object_band_coverage", np.nan))
+        m = trial_coverage(model, cfg, rec, max(HORIZONS) * window, device)
+        got["position"].append(m["mean_position_coverage"])
+        got["object band"].append(m["mean_object_band_coverage"])
     return {name: _nanmean(np.asarray(v, dtype=float)) for name, v in got.items()}
 
 

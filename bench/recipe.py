@@ -39,7 +39,7 @@ import numpy as np
 if __package__ in (None, ""):  # run as a script: make `bench` and `kinecast` importable
     sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from bench.common import NOMINAL_FPS, RESULTS_DIR  # noqa: E402
+from bench.common import NOMINAL_FPS, RESULTS_DIR, trial_coverage  # noqa: E402
 from kinecast.config import Config, apply_overrides  # noqa: E402
 from kinecast.fileio import write_text  # noqa: E402
 from kinecast.frames import read_recording  # noqa: E402
@@ -67,7 +67,6 @@ DEFAULTS = ("9: as 8, and an encoder that loses the object goes back to its best
             "refined on tracked positions")
 START_FRAMES = 3          # forecast frames over which the drawing offset is measured
 TRIALS, TRAIN_TRIALS, FRAMES, HORIZON, SIZE = 12, 8, 90, 60, 64
-COVERAGE_SAMPLES = 16     # futures drawn per held-out trial for the coverage columns (seeded: cfg.forecast.seed)
 RUNS_FILE = "recipe_runs.jsonl"
 TABLE_FILE = "recipe.md"
 
@@ -94,9 +93,8 @@ def score_run(run: Path, trials: list[Path]) -> dict:
         acc.setdefault("period_model", []).append(per["model_track_s"])
         # coverage of the sampled futures (issue goal 0.85-0.95 at band 0.9); a separate call, so the
         # point forecast above stays the mean-weights rollout of earlier rows
-        drawn = evaluate(model, cfg, rec, 0, k, HORIZON, samples=COVERAGE_SAMPLES)["summary"]["model"]
-        for key in ("mean_position_coverage", "mean_object_band_coverage"):
-            acc.setdefault(key, []).append(drawn.get(key, math.nan))
+        for key, value in trial_coverage(model, cfg, rec, HORIZON).items():
+            acc.setdefault(key, []).append(value)
     out = {key: float(np.nanmean(v)) if np.isfinite(v).any() else math.nan for key, v in acc.items()}
     p_t, p_m = np.array(acc["period_truth"]), np.array(acc["period_model"])
     ok = np.isfinite(p_t)

@@ -4,9 +4,9 @@ from __future__ import annotations
 
 import math
 
-from .common import (BEAT_FACTOR, EFFICIENCY_GOAL, FLAT_RSS_RATIO, READ_RATIO_GOAL, ROLLOUT_GOAL_FPS,
+from .common import (BEAT_FACTOR, COVERAGE_SAMPLES, EFFICIENCY_GOAL, FLAT_RSS_RATIO, READ_RATIO_GOAL, ROLLOUT_GOAL_FPS,
                      RSS_GOAL_BYTES, Profile, Row, fmt_si, goal_row)
-from .quality import BASELINES, COVERAGE_GOAL, COVERAGE_SAMPLES, EVAL_SEED, HORIZONS, LEARNED, TRAIN_SEED, TTQ_RIG
+from .quality import BASELINES, COVERAGE_GOAL, EVAL_SEED, HORIZONS, LEARNED, TRAIN_SEED, TTQ_RIG
 
 GOAL_SAMPLES = 10  # the rollout goal is stated for 10 samples
 
