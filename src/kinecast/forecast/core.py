@@ -151,9 +151,9 @@ def keypoint_pixels(latents: np.ndarray, info: dict, cfg: Config) -> np.ndarray:
     pos = latents[..., :q].reshape(*latents.shape[:-1], q // 2, 2)
     vel = latents[..., q:].reshape(*latents.shape[:-1], q // 2, 2)
     n = cfg.data.size
-    px = model_to_recording_px((pos + 1.0) * n / 2.0 - 0.5, info, n)   # normalised → model px → source px
     geo = recording_geometry(info, n)
-    scale = np.array([n * geo.width / geo.content_w, n * geo.height / geo.content_h]) / 2.0
+    px = model_to_recording_px((pos + 1.0) * n / 2.0 - 0.5, info, n, geo)   # normalised → model px → source px
+    scale = n * geo.step / 2.0
     return np.concatenate([px, vel * scale * cfg.solver.time_scale], axis=-1)
 
 

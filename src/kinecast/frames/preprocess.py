@@ -146,6 +146,11 @@ class SquareGeometry:
     def padded(self) -> bool:
         return self.content_w != self.size or self.content_h != self.size
 
+    @property
+    def step(self) -> np.ndarray:
+        """Source pixels per model pixel, ``[w/cw, h/ch]`` (along x, along y)."""
+        return np.array([self.width / self.content_w, self.height / self.content_h])
+
     def crop(self, frame: np.ndarray) -> np.ndarray:
         """The picture's part of a model-size frame ``(..., size, size)``: the padding cut away."""
         return frame[..., self.top:self.top + self.content_h, self.left:self.left + self.content_w]
@@ -200,9 +205,10 @@ def recording_geometry(info: dict, size: int) -> SquareGeometry | None:
     return square_geometry(int(region[2]), int(region[3]), size) if region else None
 
 
-def model_to_recording_px(xy: np.ndarray, info: dict, size: int) -> np.ndarray | None:
+def model_to_recording_px(xy: np.ndarray, info: dict, size: int, geo: SquareGeometry | None = None
+                          ) -> np.ndarray | None:
     """Positions in model pixels (..., 2) → the recording's own pixels; None when ``info`` names no
-    source size.
+    source size. ``geo``: :func:`recording_geometry` ``(info, size)`` when the caller has it already.
 
     Both in pixel-centre coordinates, x right and y down from the top-left pixel's centre. The model
     frame holds the crop ``roi`` (or the whole source frame), ``w`` x ``h``, resized to ``cw`` x ``ch``
@@ -214,13 +220,12 @@ def model_to_recording_px(xy: np.ndarray, info: dict, size: int) -> np.ndarray |
     >>> model_to_recording_px(edges, {"source_size": [776, 310]}, 64).round(6).tolist()
     [[-0.5, -0.5], [775.5, 309.5]]
     """
-    geo = recording_geometry(info, size)
+    geo = geo if geo is not None else recording_geometry(info, size)
     if geo is None:
         return None
     x0, y0 = (info.get("roi") or [0, 0])[:2]
-    step = np.array([geo.width / geo.content_w, geo.height / geo.content_h])
     shift = np.array([geo.left, geo.top])
-    return np.array([x0, y0]) + (np.asarray(xy, dtype=np.float64) + 0.5 - shift) * step - 0.5
+    return np.array([x0, y0]) + (np.asarray(xy, dtype=np.float64) + 0.5 - shift) * geo.step - 0.5
 
 
 def describe_geometry(info: dict, size: int) -> str | None:

@@ -269,38 +269,69 @@ class LatentODE(nn.Module):
         t, obs = self._check_batch(frames, t, n_total_frames, mask)
         obs_f = obs.to(frames.dtype)
         n_obs = obs_f.sum().clamp_min(1.0)
-
-        s_mean, s_logvar, v_mean, v_logvar = dist = self.encode_dist(frames, t[:self.k] - t[0])
-        state0 = initial_state(dist, sample)
-        weights = self.field.sample(B, mean=not sample)
-        states = self.integrate(state0, t - t[0], weights).transpose(0, 1)  # [B, T, 2q]
-        s = states[..., :self.q]
-        pixels_per_frame = float(self.channels * self.size * self.size)
-        norm = n_obs / B * pixels_per_frame  # observed pixels per sequence
+        dist, s = self._trajectory(frames, t, sample)
+        norm = n_obs / B * float(self.channels * self.size * self.size)  # observed pixels per sequence
         if 0 < decode_frames < T:
-            # Decode a random subset of the window's frames: an unbiased estimate of the sum over
-            # all frames (rescaled by the observed-frame ratio), at a cost that does not grow with T.
-            idx = torch.randperm(T, device=frames.device)[:decode_frames].sort().values
-            s, frames, obs, obs_f = s[:, idx], frames[:, idx], obs[:, idx], obs_f[:, idx]
+            s, frames, obs, obs_f = self._frame_subset(decode_frames, s, frames, obs, obs_f)
         scale = n_obs / obs_f.sum().clamp_min(1.0)
-        logits = self.decode_logits(s)
-        recon = torch.sigmoid(logits)
-
-        if self.log_noise is None:
-            nll_pix = bernoulli_nll(logits, frames)
-        else:
-            nll_pix = gaussian_nll(recon, frames, self.log_noise.view(-1, 1, 1))
-        nll = scale * (nll_pix.flatten(2).sum(2) * obs_f).sum() / B / norm
-        kl_s0 = kl_std_normal(s_mean, s_logvar).sum() / B / norm
-        kl_v0 = kl_std_normal(v_mean, v_logvar).sum() / B / norm
-        kl_w = self.field.kl() * (T / float(n_total_frames)) / norm
-        mse = (((recon - frames) ** 2).flatten(2).mean(2) * obs_f).sum() / obs_f.sum().clamp_min(1.0)
-
+        nll_sum, mse, recon = self._reconstruction(s, frames, obs_f)
+        nll = scale * nll_sum / B / norm
+        kl_s0, kl_v0, kl_w = self._kl_terms(dist, B, norm, T / float(n_total_frames))
         agreement = self._agreement(frames, s, obs, scale / B / norm, agreement_frames)
         loss = nll + beta * (kl_s0 + kl_v0 + kl_w) + self.cfg.agreement_weight * agreement
         terms = {"nll": nll, "kl_s0": kl_s0, "kl_v0": kl_v0, "kl_w": kl_w, "agreement": agreement,
                  "mse": mse, "recon": recon}
         return {"loss": loss, **{k: v.detach() for k, v in terms.items()}}
+
+    def _trajectory(self, frames: torch.Tensor, t: torch.Tensor, sample: bool) -> tuple[tuple, torch.Tensor]:
+        """:meth:`forward`'s latent path: ``(dist, s)`` with ``dist`` the encoder's
+        (s_mean, s_logvar, v_mean, v_logvar) and ``s`` [B, T, q] the positions at ``t``.
+
+        With ``sample``, draws s0 then v0 (:func:`initial_state`) and then the field's weights, in
+        that order from the global random stream; otherwise uses the means."""
+        dist = self.encode_dist(frames, t[:self.k] - t[0])
+        state0 = initial_state(dist, sample)
+        weights = self.field.sample(frames.shape[0], mean=not sample)
+        states = self.integrate(state0, t - t[0], weights).transpose(0, 1)  # [B, T, 2q]
+        return dist, states[..., :self.q]
+
+    @staticmethod
+    def _frame_subset(count: int, *per_frame: torch.Tensor) -> tuple[torch.Tensor, ...]:
+        """``count`` of the window's frames drawn at random (kept in time order), taken from each
+        tensor of ``per_frame`` [B, T, ...] alike.
+
+        Decoding a random subset gives an unbiased estimate of the sum over all frames (rescaled
+        by the observed-frame ratio), at a cost that does not grow with T."""
+        T = per_frame[0].shape[1]
+        idx = torch.randperm(T, device=per_frame[0].device)[:count].sort().values
+        return tuple(x[:, idx] for x in per_frame)
+
+    def _reconstruction(self, s: torch.Tensor, frames: torch.Tensor, obs_f: torch.Tensor
+                        ) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor]:
+        """``(nll, mse, recon)`` of the positions ``s`` [B, T, q] against ``frames`` [B, T, C, H, W]:
+        the likelihood's negative log summed over the pixels of the observed frames (weights
+        ``obs_f`` [B, T]; not yet normalised), the mean squared error per pixel of the observed
+        frames' means, and the mean frames."""
+        logits = self.decode_logits(s)
+        recon = torch.sigmoid(logits)
+        if self.log_noise is None:
+            nll_pix = bernoulli_nll(logits, frames)
+        else:
+            nll_pix = gaussian_nll(recon, frames, self.log_noise.view(-1, 1, 1))
+        nll = (nll_pix.flatten(2).sum(2) * obs_f).sum()
+        mse = (((recon - frames) ** 2).flatten(2).mean(2) * obs_f).sum() / obs_f.sum().clamp_min(1.0)
+        return nll, mse, recon
+
+    def _kl_terms(self, dist, B: int, norm: torch.Tensor, share: float
+                  ) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor]:
+        """``(kl_s0, kl_v0, kl_w)`` of :meth:`forward` per observed pixel (``norm``: observed
+        pixels per sequence, ``B`` sequences); the weight KL is counted at ``share`` = the window's
+        share of the training set's frames."""
+        s_mean, s_logvar, v_mean, v_logvar = dist
+        kl_s0 = kl_std_normal(s_mean, s_logvar).sum() / B / norm
+        kl_v0 = kl_std_normal(v_mean, v_logvar).sum() / B / norm
+        kl_w = self.field.kl() * share / norm
+        return kl_s0, kl_v0, kl_w
 
     def _check_batch(self, frames, t, n_total_frames: int, mask) -> tuple[torch.Tensor, torch.Tensor]:
         """:meth:`forward`'s inputs checked: ``(t as a tensor, mask of present frames [B, T])``."""

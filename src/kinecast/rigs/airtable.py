@@ -137,16 +137,6 @@ def _draw(canvas: Canvas, p: dict, y: np.ndarray, look: Look) -> None:
             canvas.disc(x, y_, radius, colour)
 
 
-AIRTABLE = Rig(
-    name="airtable",
-    summary="one to three pucks gliding on an air table, bouncing off the rails with restitution e < 1",
-    defaults=DEFAULTS,
-    state=("x_{i}", "y_{i}", "vx_{i}", "vy_{i}"),
-    check=_check,
-    timescale=_timescale,
-    rhs=_rhs,
-    initial=_initial,
-    truth=_truth,
-    draw=_draw,
-    event=Rails,
-)
+AIRTABLE = Rig.from_module(
+    globals(), name="airtable", state=("x_{i}", "y_{i}", "vx_{i}", "vy_{i}"), event=Rails,
+    summary="one to three pucks gliding on an air table, bouncing off the rails with restitution e < 1")

@@ -184,17 +184,6 @@ def _draw(canvas: Canvas, p: dict, y: np.ndarray, look: Look) -> None:
         canvas.disc(bx, by, radius, colour)
 
 
-BALL = Rig(
-    name="ball",
-    summary="ball tossed sideways onto a floor in perspective, bouncing with restitution e, then resting",
-    defaults=DEFAULTS,
-    state=("x", "height", "vx", "vheight"),
-    check=_check,
-    timescale=_timescale,
-    rhs=_rhs,
-    initial=_initial,
-    truth=_truth,
-    draw=_draw,
-    event=Contacts,
-    scenery=_scenery,
-)
+BALL = Rig.from_module(
+    globals(), name="ball", state=("x", "height", "vx", "vheight"), event=Contacts, scenery=_scenery,
+    summary="ball tossed sideways onto a floor in perspective, bouncing with restitution e, then resting")

@@ -11,6 +11,20 @@ from .catalog import RIGS
 from .look import CLASSIC, LOOKS, MIXED, look_names
 from .write import DROPPED_DIR, write_rig
 
+# The camera-realism options, one per Camera field of the same name: (flag without "--", type,
+# metavar, help). Each option's default is the field's default in Camera (a clean camera), so the
+# defaults have one home.
+CAMERA_FLAGS = (
+    ("noise", float, "SIGMA", "Gaussian sensor noise, fraction of full scale"),
+    ("blur", int, "N", "exposure blur: average N sub-frame renders over the exposure (1 = sharp)"),
+    ("exposure", float, "FRACTION", "shutter-open time as a fraction of the frame interval (with --blur)"),
+    ("vignette", float, "STRENGTH", "brightness lost at the corners (0 to 1)"),
+    ("texture", float, "CONTRAST", "smooth random static background texture (0 to 1)"),
+    ("flicker", float, "SIGMA", "per-frame lighting gain standard deviation"),
+    ("drop", float, "P", "probability of dropping each frame (never the first 3)"),
+    ("jitter", float, "SECONDS", "capture-time jitter standard deviation"),
+)
+
 
 def _epilog() -> str:
     lines = ["rigs and their parameters (set with --param KEY=VALUE):"]
@@ -44,22 +58,9 @@ def configure(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--param", dest="params", action="append", default=[], metavar="KEY=VALUE",
                         help="set a physical parameter of the rig (see below); may be repeated")
     cam = parser.add_argument_group("camera realism (defaults: a clean camera)")
-    cam.add_argument("--noise", type=float, default=0.0, metavar="SIGMA",
-                     help="Gaussian sensor noise, fraction of full scale")
-    cam.add_argument("--blur", type=int, default=1, metavar="N",
-                     help="exposure blur: average N sub-frame renders over the exposure (1 = sharp)")
-    cam.add_argument("--exposure", type=float, default=0.5, metavar="FRACTION",
-                     help="shutter-open time as a fraction of the frame interval (with --blur)")
-    cam.add_argument("--vignette", type=float, default=0.0, metavar="STRENGTH",
-                     help="brightness lost at the corners (0 to 1)")
-    cam.add_argument("--texture", type=float, default=0.0, metavar="CONTRAST",
-                     help="smooth random static background texture (0 to 1)")
-    cam.add_argument("--flicker", type=float, default=0.0, metavar="SIGMA",
-                     help="per-frame lighting gain standard deviation")
-    cam.add_argument("--drop", type=float, default=0.0, metavar="P",
-                     help="probability of dropping each frame (never the first 3)")
-    cam.add_argument("--jitter", type=float, default=0.0, metavar="SECONDS",
-                     help="capture-time jitter standard deviation")
+    clean = Camera()
+    for flag, kind, metavar, text in CAMERA_FLAGS:
+        cam.add_argument(f"--{flag}", type=kind, default=getattr(clean, flag), metavar=metavar, help=text)
     parser.add_argument("--overwrite", action="store_true",
                         help="write into an existing non-empty DIR, replacing its trial files")
 
@@ -96,8 +97,7 @@ def _dropped_note(folders: list[Path]) -> str:
 
 def run(args: argparse.Namespace, cfg) -> int:
     """Render and write the trials; print where they went."""
-    camera = Camera(noise=args.noise, blur=args.blur, exposure=args.exposure, vignette=args.vignette,
-                    texture=args.texture, flicker=args.flicker, drop=args.drop, jitter=args.jitter)
+    camera = Camera(**{flag: getattr(args, flag) for flag, *_ in CAMERA_FLAGS})
     camera.check(prefix="--")
     folders = write_rig(args.name, args.out, trials=args.trials, frames=args.frames, seed=args.seed,
                         size=args.size, fps=args.fps, camera=camera, channels=args.channels,

@@ -92,15 +92,6 @@ def _draw(canvas: Canvas, p: dict, y: np.ndarray, look: Look) -> None:
     canvas.disc(bx, by, radius, look.object(BOB_COLOUR))
 
 
-PENDULUM = Rig(
-    name="pendulum",
-    summary="bob on a light rod swinging under gravity, lightly damped, released from rest",
-    defaults=DEFAULTS,
-    state=("theta", "omega"),
-    check=_check,
-    timescale=_timescale,
-    rhs=_rhs,
-    initial=_initial,
-    truth=_truth,
-    draw=_draw,
-)
+PENDULUM = Rig.from_module(
+    globals(), name="pendulum", state=("theta", "omega"),
+    summary="bob on a light rod swinging under gravity, lightly damped, released from rest")

@@ -19,6 +19,9 @@ if TYPE_CHECKING:
 # RK4 sub-steps per characteristic time of a rig (its swing period, decay time, ...). RK4's global
 # error scales as step⁴ (Butcher 2016), so 2000 steps per period keeps truth errors far below 1e-8.
 STEPS_PER_TIMESCALE = 2000
+# The functions every rig module defines, each under its Rig field's name with a leading underscore
+# (``_check``, ``_timescale``, ...), next to its ``DEFAULTS``: what :meth:`Rig.from_module` collects.
+STANDARD_PARTS = ("check", "timescale", "rhs", "initial", "truth", "draw")
 
 
 @dataclass(frozen=True)
@@ -67,6 +70,52 @@ class Rig:
     draw: Callable[[Canvas, dict, np.ndarray, "Look"], None]
     event: Callable[[dict], Event | None] = lambda params: None
     scenery: Callable[[Canvas, dict, "Look"], None] = lambda canvas, params, look: None
+
+    @classmethod
+    def from_module(cls, namespace: Mapping[str, object], *, name: str, summary: str,
+                    state: tuple[str, ...], event: Callable[[dict], Event | None] | None = None,
+                    scenery: Callable[[Canvas, dict, "Look"], None] | None = None) -> "Rig":
+        """The rig a rig module defines by convention: its ``DEFAULTS`` and its functions named
+        after :data:`STANDARD_PARTS` with a leading underscore (``_check``, ``_timescale``,
+        ``_rhs``, ``_initial``, ``_truth``, ``_draw``).
+
+        Parameters
+        ----------
+        namespace : Mapping[str, object]
+            The rig module's ``globals()``.
+        name, summary : str
+            As the attributes of the same names.
+        state : tuple of str
+            As the attribute of the same name.
+        event, scenery : callable, optional
+            As the attributes of the same names; None keeps their defaults (no walls, no static
+            scenery).
+
+        Returns
+        -------
+        Rig
+
+        Raises
+        ------
+        TypeError
+            When the module lacks ``DEFAULTS`` or one of the standard functions (a programming
+            error, not bad input).
+
+        Examples
+        --------
+        The last statement of a rig module (see pendulum.py)::
+
+            PENDULUM = Rig.from_module(globals(), name="pendulum", summary="...",
+                                       state=("theta", "omega"))
+        """
+        keys = ("DEFAULTS", *(f"_{part}" for part in STANDARD_PARTS))
+        missing = [key for key in keys if key not in namespace]
+        if missing:
+            raise TypeError(f"rig module {namespace.get('__name__', '?')} lacks {', '.join(missing)}")
+        parts = {part: namespace[f"_{part}"] for part in STANDARD_PARTS}
+        extras = {key: value for key, value in (("event", event), ("scenery", scenery)) if value is not None}
+        return cls(name=name, summary=summary, defaults=namespace["DEFAULTS"], state=tuple(state), **parts,
+                   **extras)
 
     def resolve(self, params: Mapping[str, float] | None = None) -> dict:
         """The rig's defaults updated with ``params``; raise :class:`KinecastError` on a bad key

@@ -102,15 +102,6 @@ def _draw(canvas: Canvas, p: dict, y: np.ndarray, look: Look) -> None:
     canvas.box(cx - wide, wy - half, cx + wide, wy + half, look.object(WEIGHT_COLOUR), corner=half * CORNER)
 
 
-SPRING = Rig(
-    name="spring",
-    summary="weight bobbing on a vertical spring, damped harmonic motion, released from rest",
-    defaults=DEFAULTS,
-    state=("x", "v"),
-    check=_check,
-    timescale=_timescale,
-    rhs=_rhs,
-    initial=_initial,
-    truth=_truth,
-    draw=_draw,
-)
+SPRING = Rig.from_module(
+    globals(), name="spring", state=("x", "v"),
+    summary="weight bobbing on a vertical spring, damped harmonic motion, released from rest")

@@ -108,7 +108,7 @@ def recording_px_per_model_px(rec) -> float | None:
     from ..frames.preprocess import recording_geometry
 
     geo = recording_geometry(rec.info, rec.size[1])
-    return geo.width / geo.content_w if geo else None
+    return float(geo.step[0]) if geo else None
 
 
 def _frames(n) -> str:
