@@ -62,9 +62,9 @@ TRACKER = "low-pass 1.5 px"
 # "4": keypoint_coverage 1, v0 = finite difference alone; "5": as 4, and keypoints that barely move
 # held still, train.still_keypoint_px 1; "6": as 5, keypoint posteriors start at 0.5 px, an encoder that
 # loses the object goes back to deterministic steps, early stop only below 0.8x the background;
-# "7", "8": see DEVELOPERS.md)
-DEFAULTS = ("9: as 8, and an encoder that loses the object goes back to its best snapshot; spread scale "
-            "refined on tracked positions")
+# "7", "8", "9": see DEVELOPERS.md)
+DEFAULTS = ("10: as 9, and the conv nets in bfloat16 where the CPU has it (train.precision auto; the row's "
+            "precision field says which ran)")
 START_FRAMES = 3          # forecast frames over which the drawing offset is measured
 TRIALS, TRAIN_TRIALS, FRAMES, HORIZON, SIZE = 12, 8, 90, 60, 64
 RUNS_FILE = "recipe_runs.jsonl"
@@ -137,7 +137,7 @@ def one_run(rig: str, look: str, seed: int, recipe: str, budget: str, work: Path
            "layout": MODEL_LAYOUT, "defaults": DEFAULTS, "tracker": TRACKER, "rescored": rescore,
            "steps": summary["steps"], "train_s": summary.get("elapsed_s") if rescore else round(time.time() - t0, 1),
            "stop": summary["stop_reason"], "faults": summary.get("faults", 0),
-           "spread_scale": summary.get("spread_scale"),
+           "spread_scale": summary.get("spread_scale"), "precision": summary.get("precision", "fp32"),
            "pixel_noise": summary.get("pixel_noise"), "verdict": (summary.get("verdict") or {}).get("level"),
            "positions_found": summary.get("positions_found"), "still_keypoints": summary.get("still_keypoints"),
            "date": datetime.now(timezone.utc).isoformat(timespec="seconds"),

@@ -128,7 +128,7 @@ def check_run_folder(run: Path, need_resume: bool = False) -> None:
         raise KinecastError(run, f"not a complete run folder (missing {', '.join(missing)})")
 
 
-def load_run(run: str | Path, device: str | torch.device = "cpu"):
+def load_run(run: str | Path, device: str | torch.device = "cpu", precision: str | None = None):
     """Load a trained run: ``(model, cfg)`` with the best weights, in eval mode.
 
     Parameters
@@ -137,12 +137,16 @@ def load_run(run: str | Path, device: str | torch.device = "cpu"):
         A run folder written by ``kinecast fit``.
     device : str or torch.device
         Where to put the model.
+    precision : str, optional
+        ``train.precision`` to run the conv nets in (see :mod:`kinecast.model.precision`); default:
+        the run's own. The weights are the same in either.
 
     Examples
     --------
     >>> model, cfg = load_run("runs/pendulum")  # doctest: +SKIP
     """
     from .model import build_model
+    from .model.precision import use_precision
 
     run = Path(run)
     check_run_folder(run)
@@ -150,7 +154,9 @@ def load_run(run: str | Path, device: str | torch.device = "cpu"):
     tensors, meta = load_tensors(run / WEIGHTS)
     model = build_model(cfg, cfg.data.channels)
     restore_model(model, tensors, meta, run / WEIGHTS)
-    return model.to(device).eval(), cfg
+    model.to(device).eval()
+    use_precision(model, cfg.train.precision if precision is None else precision, device)
+    return model, cfg
 
 
 def restore_model(model: torch.nn.Module, tensors: dict[str, torch.Tensor], meta: dict, path: Path) -> None:

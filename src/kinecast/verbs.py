@@ -37,11 +37,12 @@ def open_run(args, cfg, path: str | Path | None = None):
     from . import config as cfgmod
     from .forecast import core
     from .frames import read_recording
+    from .model.precision import use_precision
     from .runfolder import load_run
     from .train.distributed import pick_device
 
     device = pick_device(args.device or cfg.train.device)
-    model, trained = load_run(args.run, device)
+    model, trained = load_run(args.run, device, precision="fp32")  # the format in use may be --set below
     run_cfg = cfgmod.apply_overrides(trained, args.overrides)
     was, now = cfgmod.to_dict(trained), cfgmod.to_dict(run_cfg)
     for section, name in fixed_keys(was):  # the model was built for these: --set cannot change them
@@ -52,6 +53,7 @@ def open_run(args, cfg, path: str | Path | None = None):
                                                 "colour and model keys cannot change")
     for section in ("forecast", "score"):  # per-use settings come from this command
         setattr(run_cfg, section, getattr(cfg, section))
+    use_precision(model, run_cfg.train.precision, device)
     rec = read_recording(args.path if path is None else path, run_cfg.data)
     core.check_compatible(rec, run_cfg)
     return model, run_cfg, rec, device

@@ -14,6 +14,8 @@ import torch
 import torch.nn.functional as F
 from torch import nn
 
+from .precision import compute, conv_layout
+
 BOTTOM = 4  # spatial size (pixels) of the coarsest feature map
 LOGVAR_MIN, LOGVAR_MAX = -12.0, 6.0  # clamp on predicted log-variances, for numerical safety
 OUT_GAIN = 0.1  # the decoder's last layer starts small: the first prediction is close to the base image
@@ -56,7 +58,12 @@ class GaussEncoder(nn.Module):
     extra_dim : int
         Size of an optional vector joined to the conv features before the head (the velocity
         encoder gets the position encoder's readings of the context frames).
+
+    The conv trunk runs in ``compute_dtype`` (set by :func:`kinecast.model.precision.use_precision`;
+    None = as given), the head in the input's type (float32).
     """
+
+    compute_dtype: torch.dtype | None = None
 
     def __init__(self, in_channels: int, size: int, base: int, out_dim: int, extra_dim: int = 0):
         super().__init__()
@@ -73,7 +80,8 @@ class GaussEncoder(nn.Module):
 
     def forward(self, x: torch.Tensor, extra: torch.Tensor | None = None
                 ) -> tuple[torch.Tensor, torch.Tensor]:
-        h = self.trunk(x).flatten(1)
+        with compute(self.compute_dtype, x.device.type):
+            h = self.trunk(conv_layout(x, self.compute_dtype)).to(x.dtype).flatten(1)
         if extra is not None:
             h = torch.cat([h, extra], dim=1)
         mean, logvar = self.head(h).chunk(2, dim=1)
@@ -116,7 +124,11 @@ class Decoder(nn.Module):
         Output height and width.
     base : int
         ``cfg.model.dec_channels``.
+
+    Runs in ``compute_dtype`` (see :class:`GaussEncoder`); the logits come out in the latent's type.
     """
+
+    compute_dtype: torch.dtype | None = None
 
     def __init__(self, q: int, channels: int, size: int, base: int):
         super().__init__()
@@ -137,8 +149,9 @@ class Decoder(nn.Module):
 
     def forward(self, s: torch.Tensor) -> torch.Tensor:
         lead = s.shape[:-1]
-        h = F.silu(self.fc(s.reshape(-1, s.shape[-1]))).view(-1, self.c0, BOTTOM, BOTTOM)
-        h = self.out(self.up(h.contiguous(memory_format=torch.channels_last)))
+        with compute(self.compute_dtype, s.device.type):
+            h = F.silu(self.fc(s.reshape(-1, s.shape[-1]))).view(-1, self.c0, BOTTOM, BOTTOM)
+            h = self.out(self.up(h.contiguous(memory_format=torch.channels_last))).to(s.dtype)
         if self.native != self.size:  # sizes that are not BOTTOM·2^k
             h = F.interpolate(h, size=(self.size, self.size), mode="bilinear", align_corners=False)
         return h.contiguous().view(*lead, *h.shape[1:])

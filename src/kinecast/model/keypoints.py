@@ -37,6 +37,7 @@ import torch.nn.functional as F
 from torch import nn
 
 from .convnets import OUT_GAIN, Activation, bounded_logvar
+from .precision import compute, conv_layout
 
 DILATIONS = (1, 2, 4)  # dilations of the decoder's 3×3 convs: receptive field ≈ 2·(1+2·Σd) px at full size
 UPSCALE = 2  # both nets work at 1/UPSCALE of the frame size (pixel shuffle back up in the decoder)
@@ -148,8 +149,12 @@ def _half(size: int) -> int:
 class KeypointEncoder(nn.Module):
     """Frame (B, C, H, W) and background (C, H, W) → keypoint means and log-variances, each (B, 2K).
 
-    The output interleaves coordinates as ``[x1, y1, x2, y2, ...]``.
+    The output interleaves coordinates as ``[x1, y1, x2, y2, ...]``. The conv trunk and the heat
+    maps' logits run in ``compute_dtype`` (set by :func:`kinecast.model.precision.use_precision`;
+    None = float32); the softmax, the coordinates and the spread, in float32.
     """
+
+    compute_dtype: torch.dtype | None = None
 
     def __init__(self, channels: int, size: int, base: int, keypoints: int, init_std: float = INIT_STD,
                  max_std: float = 1.0):
@@ -177,15 +182,25 @@ class KeypointEncoder(nn.Module):
     def forward(self, x: torch.Tensor, background: torch.Tensor, with_maps: bool = False) -> tuple:
         """Means and log-variances (B, 2K); with ``with_maps`` also the heat maps' log-probabilities
         (B, K, h, w)."""
-        h = self.trunk(torch.cat([x, x - background.to(x)], dim=1))
-        log_maps = heat_softmax(self.heat(h), log=True)
+        with compute(self.compute_dtype, x.device.type):
+            stack = conv_layout(torch.cat([x, x - background.to(x)], dim=1), self.compute_dtype)
+            h = self.trunk(stack)
+            heat = self.heat(h).to(x.dtype)
+        h = h.to(x.dtype)
+        log_maps = heat_softmax(heat, log=True)
         points = expected_xy(log_maps.exp())
         logvar = bounded_logvar(self.logvar(h.mean(dim=(2, 3))), self.logvar_max)
         return (points.flatten(1), logvar, log_maps) if with_maps else (points.flatten(1), logvar)
 
 
 class KeypointDecoder(nn.Module):
-    """Keypoints (..., 2K) and background (C, H, W) → residual logits (..., C, size, size)."""
+    """Keypoints (..., 2K) and background (C, H, W) → residual logits (..., C, size, size).
+
+    The blobs are drawn in float32; the conv body runs in ``compute_dtype`` (see
+    :class:`KeypointEncoder`) and the logits come out in float32.
+    """
+
+    compute_dtype: torch.dtype | None = None
 
     def __init__(self, keypoints: int, channels: int, size: int, base: int, blob_std: float):
         super().__init__()
@@ -213,7 +228,8 @@ class KeypointDecoder(nn.Module):
         grid = torch.stack([g.expand(self.half, -1), g[:, None].expand(-1, self.half)])[None]
         x = torch.cat([blobs, bg.expand(n, -1, -1, -1), grid.expand(n, -1, -1, -1)], dim=1)
         x = x.contiguous(memory_format=torch.channels_last)
-        h = F.pixel_shuffle(self.out(self.body(x)), UPSCALE)
+        with compute(self.compute_dtype, x.device.type):
+            h = F.pixel_shuffle(self.out(self.body(x)).to(s.dtype), UPSCALE)
         if h.shape[-1] != self.size:  # odd sizes
             h = F.interpolate(h, size=(self.size, self.size), mode="bilinear", align_corners=False)
         return h.contiguous().view(*lead, *h.shape[1:])

@@ -24,6 +24,7 @@ from .. import config as cfgmod
 from ..errors import KinecastError
 from ..fileio import check_can_create, write_with
 from ..model import build_model, time_scale_from_times, to_model_time
+from ..model.precision import resolve as resolve_precision, use_precision
 from ..model.staged import autoencoder_terms, dynamics_terms
 from .. import runfolder as rf
 from . import checkpoint as ck
@@ -301,6 +302,7 @@ class _Trainer:
             _extend_budget(cfg.train, resumed[1])
         paths = expand_paths(paths)
         ctx = D.setup(cfg.train.device)
+        resolve_precision(cfg.train.precision, ctx.device)  # refuses bf16 where absent, before touching the folder
         if ctx.main:  # only the main process writes the run folder, so only it holds the lock
             _prepare_folder(run, paths, resume, overwrite, run_lock)  # refuses before touching anything
             run_lock.take()  # atomic: of two fits started at once on this folder, the second stops here
@@ -315,6 +317,7 @@ class _Trainer:
         if data.background is not None:
             model.set_background(torch.from_numpy(data.background))
         model.to(ctx.device)
+        use_precision(model, cfg.train.precision, ctx.device)  # before the optimiser: its state follows
         opt = torch.optim.Adam(model.parameters(), lr=cfg.train.lr)
         cur = Curriculum(min(cfg.train.window_start, data.longest), data.longest, cfg.train.window_growth,
                          cfg.train.patience)
@@ -575,6 +578,7 @@ class _Trainer:
                 "validated_on": [data.where.get(id(r), r.source) for r in data.val],
                 "time_scale": cfg.solver.time_scale, "world_size": self.ctx.world, "replica_spread": spread,
                 "device": str(self.ctx.device), "threads": torch.get_num_threads(), "recipe": cfg.train.recipe,
+                "precision": "fp32" if resolve_precision(cfg.train.precision, self.ctx.device) is None else "bf16",
                 "positions_found": stages.escaped if cfg.train.recipe == "staged" else None,
                 "positions_found_step": stages.escaped_step, "positions_restarts": stages.restarts,
                 "positions_relapses": stages.relapses, "dynamics_window": data.dyn_longest,
