@@ -3,7 +3,9 @@
 Both counts come from :class:`torch.utils.flop_counter.FlopCounterMode`, which counts the matrix
 products and convolutions (a multiply-add is 2 FLOPs; element-wise work is not counted). The peak
 is the faster of a large matrix product and a large 3×3 convolution, measured in this run with all
-cores, so the efficiency ratio compares two numbers taken under the same load.
+cores, so the efficiency ratio compares two numbers taken under the same load. It is measured per
+number format (float32, and bfloat16 where the CPU has it): a step is compared with the peak of the
+format its convolutions run in.
 """
 
 from __future__ import annotations
@@ -29,19 +31,23 @@ def count_flops(fn) -> int:
     return int(counter.get_total_flops())
 
 
-def matmul_rate(n: int, repeats: int, device: torch.device) -> dict:
-    """FLOP/s of an ``n`` × ``n`` fp32 matrix product (best of ``repeats``)."""
-    a = torch.randn(n, n, device=device)
-    b = torch.randn(n, n, device=device)
+def matmul_rate(n: int, repeats: int, device: torch.device, dtype: torch.dtype = torch.float32) -> dict:
+    """FLOP/s of an ``n`` × ``n`` matrix product in ``dtype`` (best of ``repeats``)."""
+    a = torch.randn(n, n, device=device, dtype=dtype)
+    b = torch.randn(n, n, device=device, dtype=dtype)
     flops = count_flops(lambda: a @ b)
     seconds = best_time(lambda: a @ b, repeats, device)
     return {"op": f"matmul {n}×{n}", "flops": flops, "seconds": seconds, "flops_per_s": flops / seconds}
 
 
-def conv_rate(batch: int, channels: int, side: int, repeats: int, device: torch.device) -> dict:
-    """FLOP/s of a 3×3 fp32 convolution, ``channels`` in and out, ``side`` × ``side`` images."""
-    x = torch.randn(batch, channels, side, side, device=device)
-    w = torch.randn(channels, channels, CONV_KERNEL, CONV_KERNEL, device=device)
+def conv_rate(batch: int, channels: int, side: int, repeats: int, device: torch.device,
+              dtype: torch.dtype = torch.float32) -> dict:
+    """FLOP/s of a 3×3 convolution in ``dtype``, ``channels`` in and out, ``side`` × ``side`` images
+    (channels-last for bfloat16, the layout the trainer uses in that format)."""
+    layout = torch.contiguous_format if dtype == torch.float32 else torch.channels_last
+    x = torch.randn(batch, channels, side, side, device=device, dtype=dtype).contiguous(memory_format=layout)
+    w = torch.randn(channels, channels, CONV_KERNEL, CONV_KERNEL, device=device,
+                    dtype=dtype).contiguous(memory_format=layout)
 
     def conv():
         return F.conv2d(x, w, padding=CONV_KERNEL // 2)
@@ -53,7 +59,7 @@ def conv_rate(batch: int, channels: int, side: int, repeats: int, device: torch.
 
 
 def peak_rate(device: torch.device, repeats: int, matmul_n: int | None = None,
-              conv: tuple[int, int, int] | None = None) -> dict:
+              conv: tuple[int, int, int] | None = None, dtype: torch.dtype = torch.float32) -> dict:
     """The machine's measured peak: the faster of the matrix product and the convolution.
 
     Parameters
@@ -63,6 +69,8 @@ def peak_rate(device: torch.device, repeats: int, matmul_n: int | None = None,
         Timed repetitions per probe (best counts).
     matmul_n, conv : optional
         Probe sizes; default the CPU or GPU constants of this module.
+    dtype : torch.dtype
+        Number format of the probes (float32 or bfloat16).
 
     Returns
     -------
@@ -73,7 +81,18 @@ def peak_rate(device: torch.device, repeats: int, matmul_n: int | None = None,
     gpu = device.type == "cuda"
     n = matmul_n or (GPU_MATMUL_N if gpu else CPU_MATMUL_N)
     b, c, s = conv or (GPU_CONV if gpu else CPU_CONV)
-    mm = matmul_rate(n, repeats, device)
-    cv = conv_rate(b, c, s, repeats, device)
+    mm = matmul_rate(n, repeats, device, dtype)
+    cv = conv_rate(b, c, s, repeats, device, dtype)
     return {"matmul": mm, "conv": cv, "peak": max(mm["flops_per_s"], cv["flops_per_s"]),
-            "threads": threads}
+            "threads": threads, "precision": "fp32" if dtype == torch.float32 else "bf16"}
+
+
+def peak_rates(device: torch.device, repeats: int) -> dict[str, dict]:
+    """:func:`peak_rate` in float32, and in bfloat16 where the device has it natively; keyed by
+    ``train.precision`` name."""
+    from kinecast.model.precision import bf16_supported
+
+    peaks = {"fp32": peak_rate(device, repeats)}
+    if bf16_supported(device):
+        peaks["bf16"] = peak_rate(device, repeats, dtype=torch.bfloat16)
+    return peaks

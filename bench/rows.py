@@ -4,37 +4,47 @@ from __future__ import annotations
 
 import math
 
-from .common import (BEAT_FACTOR, COVERAGE_SAMPLES, EFFICIENCY_GOAL, FLAT_RSS_RATIO, READ_RATIO_GOAL, ROLLOUT_GOAL_FPS,
+from .common import (BEAT_FACTOR, BF16_GAIN_GOAL, COVERAGE_SAMPLES, EFFICIENCY_GOAL, FLAT_RSS_RATIO, READ_RATIO_GOAL, ROLLOUT_GOAL_FPS,
                      RSS_GOAL_BYTES, Profile, Row, fmt_si, goal_row)
 from .quality import BASELINES, COVERAGE_GOAL, EVAL_SEED, HORIZONS, LEARNED, TRAIN_SEED, TTQ_RIG
 
 GOAL_SAMPLES = 10  # the rollout goal is stated for 10 samples
 
 
-def peak_rows(peak: dict) -> list[Row]:
-    """The machine's measured peak FLOP/s."""
-    mm, cv = peak["matmul"], peak["conv"]
-    return [Row("machine", f"peak FLOP/s, {peak['threads']} threads (best of {mm['op']}, {cv['op']})",
-                f"{fmt_si(peak['peak'], 'FLOP/s')} (matmul {fmt_si(mm['flops_per_s'], 'FLOP/s')}, "
-                f"conv {fmt_si(cv['flops_per_s'], 'FLOP/s')})")]
+def peak_rows(peaks: dict[str, dict]) -> list[Row]:
+    """The machine's measured peak FLOP/s, one row per number format (``flops.peak_rates``)."""
+    rows = []
+    for name, peak in peaks.items():
+        mm, cv = peak["matmul"], peak["conv"]
+        rows.append(Row("machine", f"peak FLOP/s {name}, {peak['threads']} threads (best of {mm['op']}, {cv['op']})",
+                        f"{fmt_si(peak['peak'], 'FLOP/s')} (matmul {fmt_si(mm['flops_per_s'], 'FLOP/s')}, "
+                        f"conv {fmt_si(cv['flops_per_s'], 'FLOP/s')})"))
+    return rows
 
 
-def train_rows(peak: dict, train: list[dict], p: Profile) -> list[Row]:
-    """Per-size step throughput and achieved FLOP/s, and the efficiency ratios against ``peak``."""
+def train_rows(peaks: dict[str, dict], train: list[dict], p: Profile) -> list[Row]:
+    """Per-size step throughput and achieved FLOP/s, the efficiency ratios against the peak of the
+    format each step ran in, and the speed-up of bfloat16 over float32 where both ran."""
     rows = []
     for r in train:
-        rows.append(Row("train", f"training step {r['size']} px, batch {r['batch']} × {r['window']} frames",
-                        f"{r['frames_per_s']:.0f} frames/s ({r['step_s'] * 1e3:.0f} ms/step)"))
+        rows.append(Row("train", f"training step {r['size']} px {r['precision']}, batch {r['batch']} × "
+                        f"{r['window']} frames", f"{r['frames_per_s']:.0f} frames/s ({r['step_s'] * 1e3:.0f} ms/step)"))
         per_step = fmt_si(r["flops_per_step"], "FLOP")
-        rows.append(Row("train", f"achieved FLOP/s {r['size']} px (fwd+bwd {per_step}/step)",
+        rows.append(Row("train", f"achieved FLOP/s {r['size']} px {r['precision']} (fwd+bwd {per_step}/step)",
                         fmt_si(r["flops_per_s"], "FLOP/s")))
     for r in train:
-        eff = r["flops_per_s"] / peak["peak"]
+        eff = r["flops_per_s"] / peaks[r["precision"]]["peak"]
         if r["size"] == p.efficiency_size:
-            rows.append(goal_row("train", f"efficiency ({r['size']} px, achieved / peak)", eff, f"{eff:.3f}",
-                                 EFFICIENCY_GOAL, f"≥ {EFFICIENCY_GOAL}"))
+            rows.append(goal_row("train", f"efficiency ({r['size']} px {r['precision']}, achieved / {r['precision']} "
+                                 "peak)", eff, f"{eff:.3f}", EFFICIENCY_GOAL, f"≥ {EFFICIENCY_GOAL}"))
         else:
-            rows.append(Row("train", f"efficiency @ {r['size']} px", f"{eff:.3f}"))
+            rows.append(Row("train", f"efficiency @ {r['size']} px {r['precision']}", f"{eff:.3f}"))
+    by = {(r["size"], r["precision"]): r["step_s"] for r in train}
+    for size in sorted({r["size"] for r in train}):
+        if (size, "fp32") in by and (size, "bf16") in by:
+            gain = by[size, "fp32"] / by[size, "bf16"]
+            rows.append(goal_row("train", f"bf16 step speed-up over fp32 ({size} px, side by side)", gain,
+                                 f"{gain:.2f}×", BF16_GAIN_GOAL, f"≥ {BF16_GAIN_GOAL}×"))
     return rows
 
 

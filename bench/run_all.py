@@ -66,15 +66,24 @@ def run(args: argparse.Namespace) -> C.Report:
         work = Path(tmp)
         if "peak" in parts or "train" in parts:
             _say("peak FLOP/s")
-            raw["peak"] = flops.peak_rate(device, profile.repeats)
+            raw["peak"] = flops.peak_rates(device, profile.repeats)
             report.rows += peak_rows(raw["peak"])
         if "train" in parts:
             raw["train"] = []
             for size in profile.train_sizes:
-                _say(f"training step at {size} px")
-                raw["train"].append(throughput.train_step_rate(size, profile.step_window, profile.repeats,
-                                                               device))
+                for precision in raw["peak"]:  # fp32, and bf16 where the machine has it: side by side
+                    _say(f"training step at {size} px, {precision}")
+                    raw["train"].append(throughput.train_step_rate(size, profile.step_window, profile.repeats,
+                                                                   device, precision))
             report.rows += train_rows(raw["peak"], raw["train"], profile)
+            raw["profile"] = {}
+            for precision in raw["peak"]:
+                _say(f"profile of the {profile.efficiency_size} px step, {precision}")
+                ops = throughput.step_profile(profile.efficiency_size, profile.step_window, device, precision)
+                raw["profile"][precision] = ops
+                report.meta["notes"].append(
+                    f"{profile.efficiency_size} px training step in {precision}, top operators by own CPU time "
+                    "(torch.profiler, 3 steps): " + ", ".join(f"{name} {share:.0%}" for name, share in ops))
         if "rollout" in parts:
             raw["rollout"] = []
             for s in profile.rollout_samples:

@@ -19,6 +19,7 @@ import torch
 
 from kinecast.config import Config
 from kinecast.model import build_model, to_model_time
+from kinecast.model.precision import use_precision
 from kinecast.rigs import render_trials
 
 from .common import NOMINAL_FPS, best_time, sync, use_all_cores
@@ -26,6 +27,7 @@ from .flops import count_flops
 
 RIG = "pendulum"
 SEED = 0
+TOP_OPS = 5  # operators listed by the step profile
 
 
 def model_config(size: int) -> Config:
@@ -47,15 +49,10 @@ def rig_frames(size: int, n: int) -> torch.Tensor:
     return torch.from_numpy(np.ascontiguousarray(frames.transpose(0, 3, 1, 2)))
 
 
-def train_step_rate(size: int, window: int, repeats: int, device: torch.device) -> dict:
-    """Time one training step at ``size`` px (default batch) and count its FLOPs.
-
-    Returns
-    -------
-    dict
-        ``size``, ``batch``, ``window``, ``step_s`` (best of ``repeats``), ``frames_per_s``,
-        ``flops_per_step`` (forward + backward) and ``flops_per_s``.
-    """
+def _training_step(size: int, window: int, device: torch.device, precision: str):
+    """The bench's training step at ``size`` px: ``(loss, step, info)`` where ``loss()`` is the
+    negative ELBO of the default batch, ``step()`` one full optimiser step, ``info`` the batch
+    shape and the number format used."""
     use_all_cores()
     torch.manual_seed(SEED)
     cfg = model_config(size)
@@ -64,6 +61,7 @@ def train_step_rate(size: int, window: int, repeats: int, device: torch.device) 
     x = torch.stack([frames[i:i + window] for i in range(batch)]).to(device)
     t = to_model_time(np.arange(window) / NOMINAL_FPS, cfg).to(device)
     model = build_model(cfg, 1).to(device).train()
+    used = use_precision(model, precision, device)
     opt = torch.optim.Adam(model.parameters(), lr=cfg.train.lr)
     n_total = len(frames)
 
@@ -77,12 +75,41 @@ def train_step_rate(size: int, window: int, repeats: int, device: torch.device) 
         torch.nn.utils.clip_grad_norm_(model.parameters(), cfg.train.grad_clip or math.inf)
         opt.step()
 
+    return loss, step, {"size": size, "batch": batch, "window": window, "precision": used}
+
+
+def train_step_rate(size: int, window: int, repeats: int, device: torch.device, precision: str = "auto") -> dict:
+    """Time one training step at ``size`` px (default batch) and count its FLOPs.
+
+    ``precision`` is ``train.precision`` (the conv nets' number format; the count of FLOPs does not
+    depend on it).
+
+    Returns
+    -------
+    dict
+        ``size``, ``batch``, ``window``, ``precision`` (the format used), ``step_s`` (best of
+        ``repeats``), ``frames_per_s``, ``flops_per_step`` (forward + backward) and ``flops_per_s``.
+    """
+    loss, step, info = _training_step(size, window, device, precision)
     flops = count_flops(lambda: loss().backward())
-    opt.zero_grad(set_to_none=True)
     seconds = best_time(step, repeats, device)
-    return {"size": size, "batch": batch, "window": window, "step_s": seconds,
-            "frames_per_s": batch * window / seconds, "flops_per_step": flops,
-            "flops_per_s": flops / seconds}
+    return {**info, "step_s": seconds, "frames_per_s": info["batch"] * window / seconds,
+            "flops_per_step": flops, "flops_per_s": flops / seconds}
+
+
+def step_profile(size: int, window: int, device: torch.device, precision: str = "auto", steps: int = 3,
+                 top: int = TOP_OPS) -> list[tuple[str, float]]:
+    """The ``top`` operators of ``steps`` training steps by their own CPU time, each with its share
+    of all operators' own time (``torch.profiler``; after one warm-up step)."""
+    _, step, _ = _training_step(size, window, device, precision)
+    step()
+    with torch.profiler.profile(activities=[torch.profiler.ProfilerActivity.CPU]) as prof:
+        for _ in range(steps):
+            step()
+    events = [e for e in prof.key_averages() if e.self_cpu_time_total > 0]
+    total = sum(e.self_cpu_time_total for e in events)
+    events.sort(key=lambda e: e.self_cpu_time_total, reverse=True)
+    return [(e.key, e.self_cpu_time_total / total) for e in events[:top]]
 
 
 def rollout_rate(size: int, n_frames: int, samples: int, repeats: int, device: torch.device) -> dict:
@@ -97,6 +124,7 @@ def rollout_rate(size: int, n_frames: int, samples: int, repeats: int, device: t
     ctx = rig_frames(size, k)[None].to(device)
     t = to_model_time((k - 1 + np.arange(1, n_frames + 1)) / NOMINAL_FPS, cfg).to(device)
     model = build_model(cfg, 1).to(device).eval()
+    use_precision(model, cfg.train.precision, device)
     stochastic = samples > 1
 
     def roll():

@@ -53,10 +53,12 @@ def forward_flops(size: int, window: int) -> int:
 
 
 def test_training_step_rate_is_consistent_and_below_peak():
-    peak = flops.peak_rate(CPU, repeats=1, matmul_n=1024, conv=(8, 64, 32))
     t0 = time.perf_counter()
     step = throughput.train_step_rate(16, 4, 1, CPU)
     wall = time.perf_counter() - t0
+    # the peak of the format the step's convolutions ran in (bf16 where this CPU has it)
+    dtype = torch.bfloat16 if step["precision"] == "bf16" else torch.float32
+    peak = flops.peak_rate(CPU, repeats=1, matmul_n=1024, conv=(8, 64, 32), dtype=dtype)
     # The timed step is one of the steps the call runs, so it fits inside the call's wall time on the
     # standard library's clock (time.perf_counter); a unit slip (ms for s) would not.
     assert 0 < step["step_s"] < wall
@@ -69,7 +71,7 @@ def test_training_step_rate_is_consistent_and_below_peak():
     # Achieved work cannot exceed what the hardware just showed it can do (both counted alike):
     # an efficiency above 1 would mean the two sides are counted differently.
     assert 0 < step["flops_per_s"] / peak["peak"] < 1
-    rows = train_rows(peak, [step], common.PROFILES["smoke"])
+    rows = train_rows({step["precision"]: peak}, [step], common.PROFILES["smoke"])
     assert [r.measure.split(" (")[0] for r in rows if r.measure.startswith("efficiency")] == ["efficiency"]
 
 
