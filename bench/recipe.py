@@ -63,8 +63,8 @@ TRACKER = "low-pass 1.5 px"
 # held still, train.still_keypoint_px 1; "6": as 5, keypoint posteriors start at 0.5 px, an encoder that
 # loses the object goes back to deterministic steps, early stop only below 0.8x the background;
 # "7", "8", "9": see DEVELOPERS.md)
-DEFAULTS = ("10: as 9, and the conv nets in bfloat16 where the CPU has it (train.precision auto; the row's "
-            "precision field says which ran)")
+DEFAULTS = ("11: as 9 (conv nets in float32, train.precision fp32); rows of 10 ran them in bfloat16 "
+            "(train.precision auto; the row's precision field says which ran)")
 START_FRAMES = 3          # forecast frames over which the drawing offset is measured
 TRIALS, TRAIN_TRIALS, FRAMES, HORIZON, SIZE = 12, 8, 90, 60, 64
 RUNS_FILE = "recipe_runs.jsonl"

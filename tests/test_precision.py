@@ -19,29 +19,18 @@ from kinecast import config as C
 from kinecast.errors import KinecastError
 from kinecast.model import build_model
 from kinecast.model import precision as P
-from kinecast.rigs import write_rig
 from kinecast.train import fit, load_run
 from kinecast import runfolder as rf
+from test_train import rig, small_cfg  # noqa: F401  (the trainer tests' tiny pendulum clip and config)
 
 HAS_BF16 = P.bf16_supported("cpu")
 needs_bf16 = pytest.mark.skipif(not HAS_BF16, reason="this CPU has no native bfloat16 (oneDNN check)")
 REL_TOL = 0.04  # see the module docstring
 
 
-def small_cfg(*sets):
-    cfg = C.apply_overrides(C.Config(), [
-        "data.size=32", "model.enc_channels=8", "model.dec_channels=8", "model.hidden=16", "train.batch=4",
-        "train.val_every=5", "train.checkpoint_every=5", "train.window_start=6", "train.threads=1",
-        "train.budget=0", "train.warmup_steps=2", "train.steps=8", *sets])
-    cfg.data.cache = False
-    return cfg
-
-
-@pytest.fixture(scope="module")
-def rig(tmp_path_factory):
-    out = tmp_path_factory.mktemp("rig") / "pendulum"
-    write_rig("pendulum", out, trials=3, frames=24, seed=1, size=32, fps=20.0)
-    return out
+def cfg_in(fmt: str, steps: int = 8):
+    """test_train's small config, in number format ``fmt``."""
+    return small_cfg(steps=steps, precision=fmt)
 
 
 def rel_err(a: torch.Tensor, b: torch.Tensor) -> float:
@@ -81,9 +70,9 @@ def test_bf16_conv_stacks_agree_with_fp32(encoder):
 def test_explicit_bf16_without_hardware_is_refused_in_one_line(rig, tmp_path, monkeypatch):
     monkeypatch.setattr(P, "bf16_supported", lambda device="cpu": False)
     with pytest.raises(KinecastError, match="train.precision.*no native bfloat16"):
-        fit([rig], tmp_path / "run", small_cfg("train.precision=bf16"), show_progress=False)
+        fit([rig], tmp_path / "run", cfg_in("bf16"), show_progress=False)
     assert not (tmp_path / "run").exists()  # refused before the run folder was made
-    summary = fit([rig], tmp_path / "auto", small_cfg(), show_progress=False)  # auto falls back
+    summary = fit([rig], tmp_path / "auto", cfg_in("auto"), show_progress=False)  # auto falls back
     assert summary["precision"] == "fp32"
 
 
@@ -105,7 +94,7 @@ def test_cli_refusal_is_one_line_exit_2(rig, tmp_path):
 @pytest.mark.parametrize("trained, used", [("bf16", "fp32"), ("fp32", "bf16")])
 def test_a_run_trained_in_one_format_forecasts_in_the_other(rig, tmp_path, trained, used):
     run = tmp_path / "run"
-    summary = fit([rig], run, small_cfg(f"train.precision={trained}"), show_progress=False)
+    summary = fit([rig], run, cfg_in(trained), show_progress=False)
     assert summary["precision"] == trained
     ctx = torch.rand(2, 3, 1, 32, 32)
     t = torch.arange(12, dtype=torch.float32) * 0.1
@@ -121,7 +110,7 @@ def test_a_run_trained_in_one_format_forecasts_in_the_other(rig, tmp_path, train
 
 @pytest.mark.parametrize("fmt", ["fp32", pytest.param("bf16", marks=needs_bf16)])
 def test_runs_repeat_bit_for_bit_and_resume_in_either_format(rig, tmp_path, fmt):
-    cfg = lambda: small_cfg(f"train.precision={fmt}", "train.steps=10")  # noqa: E731
+    cfg = lambda: cfg_in(fmt, steps=10)  # noqa: E731
     fit([rig], tmp_path / "a", cfg(), show_progress=False)
     fit([rig], tmp_path / "b", cfg(), show_progress=False)
     wa, wb = (rf.load_tensors(tmp_path / n / rf.WEIGHTS)[0] for n in "ab")
