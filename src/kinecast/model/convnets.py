@@ -125,7 +125,8 @@ class Decoder(nn.Module):
     base : int
         ``cfg.model.dec_channels``.
 
-    Runs in ``compute_dtype`` (see :class:`GaussEncoder`); the logits come out in the latent's type.
+    The first (linear) layer runs in the latent's type, the convs in ``compute_dtype`` (see
+    :class:`GaussEncoder`); the logits come out in the latent's type.
     """
 
     compute_dtype: torch.dtype | None = None
@@ -149,8 +150,8 @@ class Decoder(nn.Module):
 
     def forward(self, s: torch.Tensor) -> torch.Tensor:
         lead = s.shape[:-1]
+        h = F.silu(self.fc(s.reshape(-1, s.shape[-1]))).view(-1, self.c0, BOTTOM, BOTTOM)  # the latent at full precision
         with compute(self.compute_dtype, s.device.type):
-            h = F.silu(self.fc(s.reshape(-1, s.shape[-1]))).view(-1, self.c0, BOTTOM, BOTTOM)
             h = self.out(self.up(h.contiguous(memory_format=torch.channels_last))).to(s.dtype)
         if self.native != self.size:  # sizes that are not BOTTOM·2^k
             h = F.interpolate(h, size=(self.size, self.size), mode="bilinear", align_corners=False)
