@@ -33,7 +33,7 @@ import torch
 
 from ..errors import KinecastError
 
-__all__ = ["CHOICES", "bf16_supported", "resolve", "compute", "conv_layout", "use_precision"]
+__all__ = ["CHOICES", "bf16_supported", "resolve", "compute", "conv_layout", "use_precision", "in_use"]
 
 CHOICES = ("auto", "fp32", "bf16")
 
@@ -93,4 +93,10 @@ def use_precision(model: torch.nn.Module, choice: str, device: torch.device | st
             mod.compute_dtype = dtype
     if dtype is not None:
         model.to(memory_format=torch.channels_last)
-    return "fp32" if dtype is None else "bf16"
+    return in_use(model)
+
+
+def in_use(model: torch.nn.Module) -> str:
+    """The format ``model``'s conv stacks run in now: ``"bf16"`` or ``"fp32"``."""
+    low = any(getattr(mod, "compute_dtype", None) is not None for mod in model.modules())
+    return "bf16" if low else "fp32"

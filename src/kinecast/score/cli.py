@@ -16,6 +16,7 @@ import numpy as np
 from ..errors import KinecastError
 from ..fileio import check_can_create, write_text
 from .evaluate import MEAN_KEYS
+from .verdict import counted
 
 CAUTION = ("Scores compare statistical extrapolations with held-out frames of this recording; they are "
            "not measurements. Not for safety-critical control; follow your lab's own safety rules.")
@@ -111,10 +112,6 @@ def recording_px_per_model_px(rec) -> float | None:
     return float(geo.step[0]) if geo else None
 
 
-def _frames(n) -> str:
-    return f"{n} frame" if n == 1 else f"{n} frames"
-
-
 def table(result: dict) -> str:
     """The summary as a markdown table (printed and shown in the report)."""
     head = ("| method | mean MSE | mean SSIM | mean PSNR (dB) | position error (model px) | valid horizon "
@@ -122,8 +119,8 @@ def table(result: dict) -> str:
     lines = [head, "|---|---|---|---|---|---|---|"]
     for method, s in result["summary"].items():
         lines.append(f"| {method} | {s['mean_mse']:.4g} | {s['mean_ssim']:.3f} | {s['mean_psnr']:.1f} | "
-                     f"{s['mean_position_error_px']:.2f} | {_frames(s['valid_horizon_frames'])} "
-                     f"({s['valid_horizon_s']:.2f} s) | {_frames(s['object_horizon_frames'])} "
+                     f"{s['mean_position_error_px']:.2f} | {counted(s['valid_horizon_frames'], 'frame')} "
+                     f"({s['valid_horizon_s']:.2f} s) | {counted(s['object_horizon_frames'], 'frame')} "
                      f"({s['object_horizon_s']:.2f} s) |")
     return "\n".join(lines)
 
@@ -221,7 +218,7 @@ def _run_model(args, cfg, out: Path) -> int:
     err = result["summary"]["model"]["mean_position_error_px"]
     if scale and math.isfinite(err):
         print(f"position errors are in model pixels ({run_cfg.data.size} px frames); one model pixel is "
-              f"{scale:.3g} pixel{'' if scale == 1 else 's'} of the recording, so the model's {err:.2f} px "
+              f"{counted(scale, 'pixel', '.3g')} of the recording, so the model's {err:.2f} px "
               f"is {err * scale:.3g} recording pixels")
     if samples > 1:
         print(coverage_text(result["summary"]["model"], run_cfg.score.band))

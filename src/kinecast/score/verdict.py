@@ -69,6 +69,11 @@ def beats(model: dict, other: dict, margin: float = 1.0) -> bool:
     return bool(a < margin * b and _position(model) < _position(other))
 
 
+def counted(n, word: str, spec: str = "g") -> str:
+    """``n`` and ``word``, plural unless ``n`` is 1: ``counted(1, "frame")`` → '1 frame'."""
+    return f"{n:{spec}} {word}{'' if n == 1 else 's'}"
+
+
 def _span(label: str) -> str:
     """'over 3 training windows' for 3W, 'over the held-out frames' for all."""
     if label == "all":
@@ -76,7 +81,7 @@ def _span(label: str) -> str:
     m = _WINDOWS.match(label)
     if m:
         n = float(m.group(1))
-        return f"over {n:g} training window{'' if n == 1 else 's'}"
+        return f"over {counted(n, 'training window')}"
     return f"over {label}"
 
 
@@ -128,7 +133,7 @@ def _text(level: str, summaries: dict, short: str, long: str, missing: list[str]
     frames = m.get("object_horizon_frames", 0)
     text = (f"The model beats every simple baseline {_span(short)}: {numbers}. Its forecast object stays "
             f"within the position tolerance (score.position_threshold_px) of the true one for the first "
-            f"{frames:.3g} frame{'' if frames == 1 else 's'} ({m.get('object_horizon_s', 0.0):.2f} s){later}.")
+            f"{counted(frames, 'frame', '.3g')} ({m.get('object_horizon_s', 0.0):.2f} s){later}.")
     return text + _longer_horizon(summaries[long], frames)
 
 

@@ -24,7 +24,7 @@ from .. import config as cfgmod
 from ..errors import KinecastError
 from ..fileio import check_can_create, write_with
 from ..model import build_model, time_scale_from_times, to_model_time
-from ..model.precision import resolve as resolve_precision, use_precision
+from ..model.precision import in_use as precision_in_use, resolve as resolve_precision, use_precision
 from ..model.staged import autoencoder_terms, dynamics_terms
 from .. import runfolder as rf
 from . import checkpoint as ck
@@ -578,7 +578,7 @@ class _Trainer:
                 "validated_on": [data.where.get(id(r), r.source) for r in data.val],
                 "time_scale": cfg.solver.time_scale, "world_size": self.ctx.world, "replica_spread": spread,
                 "device": str(self.ctx.device), "threads": torch.get_num_threads(), "recipe": cfg.train.recipe,
-                "precision": "fp32" if resolve_precision(cfg.train.precision, self.ctx.device) is None else "bf16",
+                "precision": precision_in_use(self.model),
                 "positions_found": stages.escaped if cfg.train.recipe == "staged" else None,
                 "positions_found_step": stages.escaped_step, "positions_restarts": stages.restarts,
                 "positions_relapses": stages.relapses, "dynamics_window": data.dyn_longest,
