@@ -70,14 +70,19 @@ def test_gradients_reach_every_parameter(variant, likelihood):
         assert torch.isfinite(p.grad).all(), name
     # The keypoint heat maps' 1x1-conv bias adds one constant per map before a spatial softmax, and
     # softmax(x + c) = softmax(x) (closed form), so its gradient is zero in exact arithmetic: only
-    # rounding noise is left. Every other parameter must get a real gradient.
-    scale = max(float(p.grad.abs().max()) for _, p in named)
+    # rounding noise is left. Every other parameter must get a real gradient, judged against the
+    # largest gradient of its own network (the field's weight-KL gradients dwarf an encoder's).
+    def net(name):
+        return name.split(".")[0]
+    scale = {}
+    for name, p in named:
+        scale[net(name)] = max(scale.get(net(name), 0.0), float(p.grad.abs().max()))
     dead = {"pos_enc.heat.bias"}
     for name, p in named:
         if name in dead:
-            assert float(p.grad.abs().max()) < 1e-6 * scale, name
+            assert float(p.grad.abs().max()) < 1e-6 * scale[net(name)], name
         else:
-            assert float(p.grad.abs().max()) > 1e-9 * scale, name
+            assert float(p.grad.abs().max()) > 1e-9 * scale[net(name)], name
     has_logstd = any("logstd" in n for n, _ in named)
     assert has_logstd == (variant != "deterministic")
     assert (m.log_noise is not None) == (likelihood == "gaussian")
@@ -161,7 +166,9 @@ def test_rollout_backward_times_any_order_and_repeats():
 def test_backward_integration_inverts_forward():
     # Source: uniqueness of ODE solutions (Picard–Lindelöf): the backward flow undoes the forward flow.
     torch.manual_seed(2)
-    cfg = _cfg(32)
+    # a smooth (tanh) field: RK4's O(h⁴) error bound needs a smooth right-hand side, and a ReLU
+    # field's kinks leave ~1e-4 here
+    cfg = _cfg(32, field_activation="tanh")
     cfg.solver = replace(cfg.solver, substeps=16)
     m = build_model(cfg, 1).double()
     with torch.no_grad():

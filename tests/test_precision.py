@@ -50,13 +50,10 @@ def test_bf16_conv_stacks_agree_with_fp32(encoder):
     frames = torch.rand(6, 1, 64, 64)
     s = torch.rand(6, ref.q) * 1.6 - 0.8
     with torch.no_grad():
-        if encoder == "keypoints":  # the heat maps' logits: the conv stack's own output
-            def heat(m):
-                x = torch.cat([frames, frames - m.background], dim=1)
-                return m.pos_enc.heat(m.pos_enc.trunk(x))
-            with P.compute(torch.bfloat16, "cpu"):
-                low_heat = heat(low).float()
-            assert rel_err(low_heat, heat(ref)) < REL_TOL
+        if encoder == "keypoints":  # the keypoint encoder stays float32 (only its weights' layout
+            # changes): coordinates in [-1, 1] agree to float32 rounding (eps 1.2e-7), far below 2⁻⁸
+            pts = low.pos_enc(frames, low.background)[0], ref.pos_enc(frames, ref.background)[0]
+            assert float((pts[0] - pts[1]).abs().max()) < 1e-6
             pair = (low.decoder(s, low.background), ref.decoder(s, ref.background))
         else:
             pair = (low.decoder(s), ref.decoder(s))

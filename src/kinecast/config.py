@@ -81,9 +81,13 @@ class ModelConfig:
                            "encoder; the keypoint encoder uses 2 × model.keypoints", lo=1, hi=256)
     enc_channels: int = _opt(32, "base channel count of the conv encoders", lo=4, hi=512)
     dec_channels: int = _opt(32, "base channel count of the conv decoder", lo=4, hi=512)
-    hidden: int = _opt(64, "hidden width of the acceleration field", lo=4, hi=2048)
-    hidden_layers: int = _opt(2, "hidden layers of the acceleration field", lo=1, hi=8)
-    field_activation: str = _opt("tanh", "hidden activation of the acceleration field (relu forms the "
+    # ReLU 128×3 with prior std 3 (defaults 12): the ball 3.68 px @60 where tanh 64×2 gave 5.4-6.8, the
+    # ball drawn by other code 3.79 px where it gave 5.5-6.5, and no smooth rig lost (DEVELOPERS.md, tenth
+    # session; bench/results/recipe_runs.jsonl). A piecewise-linear field can bend sharply at a floor or
+    # a rail; tanh 64×2 smooths the bounce away
+    hidden: int = _opt(128, "hidden width of the acceleration field", lo=4, hi=2048)
+    hidden_layers: int = _opt(3, "hidden layers of the acceleration field", lo=1, hi=8)
+    field_activation: str = _opt("relu", "hidden activation of the acceleration field (relu forms the "
                                  "steep walls of impacts)", choices=("tanh", "relu", "softplus"))
     field_per_keypoint: bool = _opt(False, "keypoint encoder, second order: one acceleration field shared by "
                                     "the keypoints (each keypoint's own position and velocity in, its own "
@@ -100,7 +104,9 @@ class ModelConfig:
     # spring 2.23 -> 2.29 px (bench/recipe.py, seed 0, classic look, one run each)
     velocity_correction: bool = _opt(False, "with model.velocity_from_positions: the velocity encoder adds a learned "
                                      "correction to the finite difference (else it gives only the spread)")
-    prior_std: float = _opt(1.0, "std of the Gaussian prior on the field's weights", lo=1e-6)
+    # 3.0: with a ReLU 128×3 field, the weights' prior at std 1 pulls the steep parts flat (offline fits
+    # on the ball's encoded track: 2.72 px @60 at std 3 against 3.13 px for the tanh 64×2 default at 1)
+    prior_std: float = _opt(3.0, "std of the Gaussian prior on the field's weights", lo=1e-6)
     init_logstd: float = _opt(-5.0, "initial log-std of the field's weight posterior", lo=-20.0, hi=2.0)
     likelihood: str = _opt("bernoulli", "pixel likelihood", choices=("bernoulli", "gaussian"))
     background: bool = _opt(True, "decoder adds to a static background image (fixed camera)")
@@ -213,15 +219,14 @@ class TrainConfig:
     checkpoint_every: int = _opt(100, "steps between checkpoints", lo=1)
     threads: int = _opt(0, "torch threads; 0 = the core count", lo=0)
     device: str = _opt("auto", "compute device", choices=("auto", "cpu", "cuda"))
-    # fp32: bf16 (auto on a 2-core CPU with avx512_bf16) made the joint stage ~1.9x faster and improved 7 of 8
-    # paired 5-minute runs on the pendulum, the rod pendulum drawn by other code and the balls, but on the
-    # spring it was worse in 3 of 4 pairs and lost two successes (seed 5 classic 0.95 -> 2.23 px, drift +
-    # noise 1.52 -> 2.10 px; bench/results/recipe_runs.jsonl, "precision" field): not the default until that
-    # is understood
-    precision: str = _opt("fp32", "number format of the conv nets (training, forecasts and scores): fp32; bf16 "
+    # auto: bf16 conv nets (the keypoint encoder stays float32) made the joint stage ~1.9x faster; in paired
+    # 5-minute runs with the rest of defaults 12 no pendulum or spring look was lost. With the keypoint
+    # encoder in bf16 too it lost two spring runs (seed 5 classic 0.95 -> 2.23 px, drift + noise
+    # 1.52 -> 2.10 px; bench/results/recipe_runs.jsonl, "precision" field; DEVELOPERS.md)
+    precision: str = _opt("auto", "number format of the conv nets (training, forecasts and scores): fp32; bf16 "
                           "(faster where the CPU or GPU has native bfloat16; refused where not); auto = bf16 "
                           "where native (checked at run time), fp32 otherwise. Weights and everything else "
-                          "stay float32", choices=("auto", "fp32", "bf16"))
+                          "(and the keypoint encoder) stay float32", choices=("auto", "fp32", "bf16"))
     max_faults: int = _opt(5, "non-finite losses tolerated (each rolls back) before stopping", lo=0)
 
 

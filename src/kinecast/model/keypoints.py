@@ -149,12 +149,11 @@ def _half(size: int) -> int:
 class KeypointEncoder(nn.Module):
     """Frame (B, C, H, W) and background (C, H, W) → keypoint means and log-variances, each (B, 2K).
 
-    The output interleaves coordinates as ``[x1, y1, x2, y2, ...]``. The conv trunk and the heat
-    maps' logits run in ``compute_dtype`` (set by :func:`kinecast.model.precision.use_precision`;
-    None = float32); the softmax, the coordinates and the spread, in float32.
+    The output interleaves coordinates as ``[x1, y1, x2, y2, ...]``. It always runs in float32,
+    whatever ``train.precision`` says: with its trunk and heat maps in bfloat16 (2⁻⁸ relative
+    rounding of the logits), 5-minute spring runs lost the mass (keypoints 3.0-3.4 px off, two of
+    four paired runs failed); kept in float32 the same runs succeeded (DEVELOPERS.md, ninth session).
     """
-
-    compute_dtype: torch.dtype | None = None
 
     def __init__(self, channels: int, size: int, base: int, keypoints: int, init_std: float = INIT_STD,
                  max_std: float = 1.0):
@@ -182,11 +181,8 @@ class KeypointEncoder(nn.Module):
     def forward(self, x: torch.Tensor, background: torch.Tensor, with_maps: bool = False) -> tuple:
         """Means and log-variances (B, 2K); with ``with_maps`` also the heat maps' log-probabilities
         (B, K, h, w)."""
-        with compute(self.compute_dtype, x.device.type):
-            stack = conv_layout(torch.cat([x, x - background.to(x)], dim=1), self.compute_dtype)
-            h = self.trunk(stack)
-            heat = self.heat(h).to(x.dtype)
-        h = h.to(x.dtype)
+        h = self.trunk(torch.cat([x, x - background.to(x)], dim=1))
+        heat = self.heat(h)
         log_maps = heat_softmax(heat, log=True)
         points = expected_xy(log_maps.exp())
         logvar = bounded_logvar(self.logvar(h.mean(dim=(2, 3))), self.logvar_max)
@@ -196,8 +192,8 @@ class KeypointEncoder(nn.Module):
 class KeypointDecoder(nn.Module):
     """Keypoints (..., 2K) and background (C, H, W) → residual logits (..., C, size, size).
 
-    The blobs are drawn in float32; the conv body runs in ``compute_dtype`` (see
-    :class:`KeypointEncoder`) and the logits come out in float32.
+    The blobs are drawn in float32; the conv body runs in ``compute_dtype`` (set by
+    :func:`kinecast.model.precision.use_precision`; None = float32) and the logits come out in float32.
     """
 
     compute_dtype: torch.dtype | None = None

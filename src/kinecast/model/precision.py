@@ -3,9 +3,10 @@
 The conv encoders and the decoders are most of a training step's arithmetic (about two thirds of a
 64 px step in float32). On a CPU with bfloat16 instructions (x86 ``avx512_bf16`` / AMX, read at run
 time through oneDNN) their convolutions run about twice as fast in bfloat16, channels-last. Only the
-conv stacks change format: their inputs are cast down inside :func:`compute` and their outputs cast
-back to float32 before anything that needs the precision — the spatial softmax and the keypoint
-coordinates, the dense heads that give means and log-variances, the background added to the
+conv stacks change format, and not the keypoint encoder's (its heat maps decide where the
+object is; in bfloat16 they lost the spring's mass in two of four 5-minute runs): their inputs are
+cast down inside :func:`compute` and their outputs cast back to float32 before anything that needs
+the precision — the dense heads that give means and log-variances, the background added to the
 decoder's logits, the ODE solve, the field's small matmuls, the loss terms and the KL. The weights
 stay float32 (the optimiser updates float32 masters); a checkpoint does not record the format, so a
 run trained in one loads and forecasts in the other.
