@@ -37,7 +37,7 @@ import torch.nn.functional as F
 from torch import nn
 
 from .convnets import OUT_GAIN, Activation, bounded_logvar
-from .precision import compute, conv_layout
+from .precision import compute
 
 DILATIONS = (1, 2, 4)  # dilations of the decoder's 3×3 convs: receptive field ≈ 2·(1+2·Σd) px at full size
 UPSCALE = 2  # both nets work at 1/UPSCALE of the frame size (pixel shuffle back up in the decoder)
