@@ -62,10 +62,10 @@ TRACKER = "low-pass 1.5 px"
 # "4": keypoint_coverage 1, v0 = finite difference alone; "5": as 4, and keypoints that barely move
 # held still, train.still_keypoint_px 1; "6": as 5, keypoint posteriors start at 0.5 px, an encoder that
 # loses the object goes back to deterministic steps, early stop only below 0.8x the background;
-# "7" ... "11": see DEVELOPERS.md)
-DEFAULTS = ("12: as 9 with a ReLU 128x3 acceleration field, prior std 3, and train.precision auto (conv "
-            "nets in bfloat16 where the CPU has it, the keypoint encoder in float32; the row's precision "
-            "field says which ran)")
+# "7" ... "13": see DEVELOPERS.md)
+DEFAULTS = ("14: as 12, and the dynamics stage's windows grow to two periods of the tracked object "
+            "(at least 20 frames; 60 when no period is found) instead of at least 60 frames (13), and its "
+            "errors beyond 2 px count linearly (Huber, train.dynamics_robust_px 2)")
 START_FRAMES = 3          # forecast frames over which the drawing offset is measured
 TRIALS, TRAIN_TRIALS, FRAMES, HORIZON, SIZE = 12, 8, 90, 60, 64
 RUNS_FILE = "recipe_runs.jsonl"

@@ -68,3 +68,26 @@ def test_fitted_pixel_noise_is_the_missing_spread():
     truth = 0.3 * rng.standard_normal(20000)
     assert noise_for_coverage(samples, truth, 0.9) == pytest.approx(math.sqrt(0.3**2 - 0.1**2), rel=0.04)
     assert noise_for_coverage(samples, 0.05 * rng.standard_normal(20000), 0.9) == 0.0
+
+
+@pytest.mark.parametrize("n_frames, missing, expected", [
+    (90, [], [0, 20]),              # room for two whole 63-frame forecasts one window apart
+    (30, [], [0]),                  # shorter than one forecast: the first clip alone, cut short
+    (90, [0, 1], [2, 22]),          # context frames must be present: the first start moves on
+    (200, [], [0, 20, 40, 80, 100, 120]),  # 7 fit; at most CALIBRATION_CLIPS = 6, spread evenly
+])
+def test_calibration_clips_cover_several_phases_of_each_held_out_trial(n_frames, missing, expected):
+    # Our own rule (kinecast.train.loop.calibration_starts): the first forecast the trial allows,
+    # then one per training window (horizon / 3) whose whole forecast fits, so the spread scale rests
+    # on several rollouts per trial instead of one.
+    from kinecast.frames.recording import Recording
+    from kinecast.train.loop import calibration_starts
+
+    k, horizon = 3, 60
+    gone = np.zeros(n_frames, bool)
+    gone[missing] = True
+    rec = Recording(np.zeros((n_frames, 1, 2, 2), np.float32), np.arange(n_frames) / 30.0, gone, "t")
+    starts = calibration_starts(rec.present_runs(k), n_frames, k, horizon)
+    assert starts == expected
+    assert all(a + k + horizon <= n_frames for a in starts[1:])
+    assert all(not gone[a:a + k].any() for a in starts)

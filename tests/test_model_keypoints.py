@@ -105,6 +105,21 @@ def test_dynamics_stage_recovers_an_oscillator_period(per_keypoint):
     assert period == pytest.approx(2 * math.pi / omega, rel=0.03)
 
 
+def test_dynamics_loss_beyond_the_robust_threshold_is_huber_s():
+    from kinecast.model.staged import huber
+
+    # Huber (1964), the definition: rho(e) = e²/2 for |e| <= d, d|e| - d²/2 beyond; its slope is e
+    # inside and ±d outside, so one large error pulls no harder than d
+    err = torch.tensor([-5.0, -1.0, 0.0, 0.5, 2.0, 8.0], dtype=torch.float64, requires_grad=True)
+    d = 1.5
+    expected = [d * 5 - d * d / 2, 0.5, 0.0, 0.125, d * 2 - d * d / 2, d * 8 - d * d / 2]
+    rho = huber(err, d)
+    assert rho.tolist() == pytest.approx(expected, rel=1e-12)
+    rho.sum().backward()
+    assert err.grad.tolist() == pytest.approx([-d, -1.0, 0.0, 0.5, d, d], rel=1e-12)
+    assert huber(err, 0.0).tolist() == pytest.approx((0.5 * err ** 2).tolist(), rel=1e-12)
+
+
 def test_keypoint_overlap_is_the_gaussian_kernel_of_pair_distances():
     from kinecast.model.staged import keypoint_overlap
 

@@ -223,3 +223,23 @@ def test_a_lost_object_in_a_real_run_goes_back_to_the_snapshot_and_training_goes
     assert summary["positions_relapses"] >= 1 and summary["steps"] == 300
     err = capsys.readouterr().err
     assert "lost the object again" in err and "from its best weights so far" in err
+
+
+@pytest.mark.parametrize("period_s, expected", [(0.8, (49, 50)), (0.3, (S.DYNAMICS_MIN_WINDOW,) * 2), (None, (60, 60))])
+def test_dynamics_windows_span_two_periods_of_the_tracked_object(period_s, expected):
+    # A disc in simple harmonic motion x = 32 + 12 sin(2πt/P) (closed form; period P by
+    # construction) filmed at 30 fps for 6 s. Two periods of 0.8 s are 48 frame intervals, so the
+    # dynamics stage's windows grow to 49 frames (50 when the period is measured a hair long: the
+    # count is rounded up); a 0.3 s period gives 19, raised to the floor of 20;
+    # a still disc has no period and gets the 60-frame fallback.
+    from kinecast.frames.recording import Recording
+    from test_score_tracks import render_disc
+
+    times = np.arange(180) / 30.0
+    x = 32 + (12 * np.sin(2 * np.pi * times / period_s) if period_s else 0 * times)
+    frames = render_disc(np.stack([x, np.full_like(x, 32.0)], axis=1)).astype(np.float32)
+    rec = Recording(frames, times, np.zeros(len(times), bool), "disc")
+    window, period = S.dynamics_window([rec], np.full(frames.shape[1:], 0.2, np.float32), C.Config(), 170)
+    assert expected[0] <= window <= expected[1]
+    if period_s:
+        assert period == pytest.approx(period_s, rel=0.01)

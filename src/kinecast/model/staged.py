@@ -138,9 +138,24 @@ def encode_all(model, frames: torch.Tensor, chunk: int = 256) -> tuple[torch.Ten
     return torch.cat(means), torch.cat(variances)
 
 
+def huber(err: torch.Tensor, delta: float) -> torch.Tensor:
+    """Huber's loss of ``err``: ``err²/2`` within ``delta``, ``delta·|err| − delta²/2`` beyond it
+    (continuous, with a continuous slope); ``delta`` = 0: ``err²/2`` everywhere.
+
+    Examples
+    --------
+    >>> huber(torch.tensor([0.5, 3.0]), 1.0).tolist()
+    [0.125, 2.5]
+    """
+    if delta <= 0:
+        return 0.5 * err ** 2
+    size = err.abs()
+    return torch.where(size <= delta, 0.5 * err ** 2, delta * size - 0.5 * delta ** 2)
+
+
 def dynamics_terms(model, ctx: torch.Tensor, t: torch.Tensor, target_mean: torch.Tensor,
                    target_var: torch.Tensor, mask: torch.Tensor, n_total_frames: int, beta: float,
-                   velocity_aux: float) -> dict:
+                   velocity_aux: float, weight_kl: float = 1.0, robust_px: float = 0.0) -> dict:
     """Dynamics loss per latent coordinate on encoded trajectories.
 
     Parameters
@@ -159,6 +174,16 @@ def dynamics_terms(model, ctx: torch.Tensor, t: torch.Tensor, target_mean: torch
         Weight of the KL terms.
     velocity_aux : float
         Weight of the finite-difference velocity term.
+    weight_kl : float
+        Extra factor on the field's weight KL (1: the ELBO; < 1: a tempered posterior).
+    robust_px : float
+        Errors beyond this many model pixels count linearly instead of squared (Huber's loss, 0:
+        Gaussian throughout): a bounce forecast a frame early leaves an error of many pixels that
+        would otherwise drown every smaller error in the window (e.g. the ball's sideways drift).
+
+    References
+    ----------
+    P. J. Huber (1964). Robust estimation of a location parameter. Ann. Math. Statist. 35, 73-101.
     """
     B, T, q = target_mean.shape
     floor = (VAR_FLOOR_PIXELS * 2.0 / model.size) ** 2
@@ -170,7 +195,8 @@ def dynamics_terms(model, ctx: torch.Tensor, t: torch.Tensor, target_mean: torch
     s = model.integrate(torch.cat([s0, v0], dim=1), t - t[0], weights).transpose(0, 1)[..., :q]
     obs = mask.to(s.dtype)
     per = T * q
-    nll = (0.5 * ((s - target_mean) ** 2 / var).sum(2) * obs).sum() / B / per
+    nll = (huber(s - target_mean, robust_px * 2.0 / model.size) / var).sum(2)
+    nll = (nll * obs).sum() / B / per
     dt = t[1] - t[0]
     aux = target_mean.new_zeros(())
     # with v0 = the finite difference alone (no learned correction) the term is identically zero
@@ -180,7 +206,7 @@ def dynamics_terms(model, ctx: torch.Tensor, t: torch.Tensor, target_mean: torch
         aux = (0.5 * ((v_mean - v_fd) * dt) ** 2 / var[:, 0]).sum() / B / per
     kl_v0 = kl_std_normal(v_mean, v_logvar).sum() / B / per
     kl_w = model.field.kl() * (T / float(n_total_frames)) / per
-    loss = nll + velocity_aux * aux + beta * (kl_v0 + kl_w)
+    loss = nll + velocity_aux * aux + beta * (kl_v0 + weight_kl * kl_w)
     with torch.no_grad():
         err = ((s - target_mean) ** 2).mean(2)
         latent_mse = (err * obs).sum() / obs.sum().clamp_min(1.0)

@@ -96,6 +96,40 @@ def _validate_and_keep(model, val_sampler, val_window: int, cfg, cur: Curriculum
     return val
 
 
+# Clips per held-out trial for the spread calibration: each costs train.calibration_samples
+# decoded futures a few times over; 6 keeps a long recording's calibration to seconds
+CALIBRATION_CLIPS = 6
+
+
+def calibration_starts(starts: np.ndarray, n_frames: int, k: int, horizon: int) -> list[int]:
+    """First frames of the clips a held-out trial lends to the spread calibration.
+
+    The first start with a frame after its ``k`` context frames, then later ones at least
+    ``horizon // 3`` (one training window) apart whose whole forecast (``k + horizon`` frames) fits
+    in the trial: each clip forecasts from another phase of the motion, so the fitted scale rests
+    on several rollouts per trial, not one; every clip judged but the first is full length, so
+    long horizons weigh as much as in the first. At most :data:`CALIBRATION_CLIPS` per trial,
+    spread evenly over it.
+
+    Examples
+    --------
+    >>> calibration_starts(np.arange(88), 90, 3, 60)    # 90 frames, forecasts 3 + 60 frames long
+    [0, 20]
+    >>> calibration_starts(np.arange(28), 30, 3, 60)    # shorter than one forecast: one clip
+    [0]
+    """
+    usable = [int(a) for a in starts if n_frames - int(a) > k]
+    if not usable:
+        return []
+    chosen, gap = [usable[0]], max(1, horizon // 3)
+    for a in usable[1:]:
+        if a - chosen[-1] >= gap and a + k + horizon <= n_frames:
+            chosen.append(a)
+    if len(chosen) > CALIBRATION_CLIPS:  # a long trial: spread that many over it
+        chosen = [chosen[i] for i in np.linspace(0, len(chosen) - 1, CALIBRATION_CLIPS).round().astype(int)]
+    return chosen
+
+
 def calibrate_run(run: Path, recs, window: int, cfg, device) -> dict:
     """Fit the best weights' spread scale, then their pixel noise, on ``recs`` (held-out trials) and
     store both in the run's weights file (see :mod:`kinecast.model.calibration`); {} when no trial
@@ -106,14 +140,11 @@ def calibrate_run(run: Path, recs, window: int, cfg, device) -> dict:
     k = run_cfg.model.velocity_frames
     clips = []
     for rec in recs:
-        starts = rec.present_runs(k)
-        if not len(starts) or rec.n_frames - starts[0] <= k:
-            continue
-        a = int(starts[0])
-        b = min(rec.n_frames, a + k + 3 * window)
-        times = to_model_time(rec.times[a:b] - rec.times[a], run_cfg)
-        clips.append((torch.as_tensor(rec.frames[a:b]).to(device), times.to(device),
-                      ~torch.as_tensor(rec.missing[a:b])))
+        for a in calibration_starts(rec.present_runs(k), rec.n_frames, k, 3 * window):
+            b = min(rec.n_frames, a + k + 3 * window)
+            times = to_model_time(rec.times[a:b] - rec.times[a], run_cfg)
+            clips.append((torch.as_tensor(rec.frames[a:b]).to(device), times.to(device),
+                          ~torch.as_tensor(rec.missing[a:b])))
     if not clips:
         return {}
     gen = torch.Generator(device=device).manual_seed(cfg.train.seed)
@@ -459,7 +490,8 @@ class _Trainer:
             mean, var = self.targets.gather(batch.which, batch.starts, window)
             t = to_model_time(batch.times, cfg).to(dev)
             terms = dynamics_terms(self.model, batch.frames[:, :k].to(dev), t, mean, var, batch.mask.to(dev),
-                                   data.total_frames, 1.0, cfg.train.velocity_aux)
+                                   data.total_frames, 1.0, cfg.train.velocity_aux,
+                                   cfg.train.dynamics_weight_kl, cfg.train.dynamics_robust_px)
             return terms, window, beta, False
         window = st.cur.window
         batch = data.sampler.draw(cfg.train.batch, window)

@@ -9,7 +9,7 @@
    the object and lost it again goes back to its best weights since then (a snapshot).
 2. *dynamics* (``train.dynamics_share``): encoder and decoder frozen; the field and the velocity
    encoder fit the encoded trajectories (:func:`kinecast.model.staged.dynamics_terms`), with long
-   windows (two periods of the tracked object, at least :data:`DYNAMICS_MIN_WINDOW` frames).
+   windows (two periods of the tracked object, see :data:`DYNAMICS_PERIODS`).
 3. *joint*: the full ELBO end to end, as the ``end_to_end`` recipe does from its first step.
 
 Everything here is a function of the step's progress and of :class:`StageState`, which is saved in
@@ -32,8 +32,15 @@ POSITIONS, DYNAMICS, JOINT = "positions", "dynamics", "joint"
 NUMBER = {POSITIONS: 1, DYNAMICS: 2, JOINT: 3}  # the stage column of log.csv
 EMA = 0.9  # smoothing of the escape test's running errors (about the last 10 steps)
 ESCAPE_MIN_STEPS = 10  # positions steps before the escape test is trusted (EMA warm-up)
-DYNAMICS_MIN_WINDOW = 60  # frames: the dynamics stage's windows reach at least this long ...
-DYNAMICS_PERIODS = 2  # ... and at least this many periods of the tracked object
+# The dynamics stage's windows grow to this many periods of the tracked object (enough to pin a
+# period down), at least DYNAMICS_MIN_WINDOW frames; DYNAMICS_NO_PERIOD_WINDOW when none is found.
+# No longer: on the ball rig (bounce period 17 frames) 60-frame windows left the sideways drift
+# wrong after each bounce even on training trials; offline (bench/field_offline.py, one frozen
+# encoder, 75 s, with train.dynamics_robust_px 2) 36-frame windows gave 1.73 px @60 held out
+# against 2.31 with 60; the spring (24 frames) 0.54 with 49 against 0.53 with 60
+DYNAMICS_PERIODS = 2
+DYNAMICS_MIN_WINDOW = 20
+DYNAMICS_NO_PERIOD_WINDOW = 60
 # An attempt is restarted at its deadline only while its reconstruction is still this close to the bare
 # background's error (it has found nothing). One that is part way (e.g. one of two pucks found: 0.35-0.4
 # on the air table) keeps going: a restart threw such progress away there.
@@ -201,10 +208,10 @@ def dynamics_window(recs, background, cfg, longest: int) -> tuple[int, float]:
         if ok.sum() >= 8:
             periods.append(tracks.track_period(tracks.centroid_track(r.frames[ok], background), r.times[ok]))
     period = float(np.nanmedian(periods)) if np.isfinite(periods).any() else math.nan
-    want = DYNAMICS_MIN_WINDOW
+    want = DYNAMICS_NO_PERIOD_WINDOW
     if math.isfinite(period):
         dt = float(np.median(np.concatenate([np.diff(r.times) for r in recs])))
-        want = max(want, math.ceil(DYNAMICS_PERIODS * period / dt) + 1)
+        want = max(DYNAMICS_MIN_WINDOW, math.ceil(DYNAMICS_PERIODS * period / dt) + 1)
     return min(longest, want), period
 
 
