@@ -188,7 +188,8 @@ class TrainConfig:
                                "stage", lo=0.0)
     # 2 px: offline, the dynamics stage alone for 75 s on a frozen encoder (bench/field_offline.py,
     # one seed each), held-out keypoint error @60: ball 2.39 px -> 2.31 with 60-frame windows,
-    # 2.42 -> 1.73 with two-period (36-frame) windows; spring 0.66 -> 0.53 (60), 0.59 -> 0.54 (49)
+    # 2.42 -> 1.73 with two-period (36-frame) windows; spring 0.66 -> 0.53 (60), 0.59 -> 0.54 (49);
+    # pendulum textured 2.37 -> 1.08 (66)
     dynamics_robust_px: float = _opt(2.0, "staged: in the dynamics stage, errors beyond this many model pixels "
                                      "count linearly, not squared (Huber), so a bounce a frame off does not "
                                      "drown the smaller errors; 0 = squared throughout", lo=0.0)
