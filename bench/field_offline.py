@@ -55,10 +55,10 @@ gen = np.random.default_rng(0)
 for name in pick:
     V = VARIANTS[name]
     torch.manual_seed(0)
-    model.field = DynamicsField(q, V["h"], V["l"], True, not V.get("det"), cfg.model.prior_std, cfg.model.init_logstd,
+    model.field = DynamicsField(q, V["h"], V["l"], True, True, cfg.model.prior_std, cfg.model.init_logstd,
                                 activation=V["act"], group=V["g"])
     still = hold_still(model, SimpleNamespace(means=[d[2] for d in data[:8]]),
-                       0.0 if V.get("free") else cfg.train.still_keypoint_px)
+                       cfg.train.still_keypoint_px)
     with torch.no_grad():
         model.vel_enc.head.weight[:q].zero_(); model.vel_enc.head.bias[:q].zero_()
     params = list(model.field.parameters()) + list(model.vel_enc.parameters())

@@ -149,8 +149,7 @@ def huber(err: torch.Tensor, delta: float) -> torch.Tensor:
     """
     if delta <= 0:
         return 0.5 * err ** 2
-    size = err.abs()
-    return torch.where(size <= delta, 0.5 * err ** 2, delta * size - 0.5 * delta ** 2)
+    return F.huber_loss(err, torch.zeros_like(err), reduction="none", delta=delta)
 
 
 def dynamics_terms(model, ctx: torch.Tensor, t: torch.Tensor, target_mean: torch.Tensor,
