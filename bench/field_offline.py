@@ -2,11 +2,14 @@
 
 RUN is a run folder made by ``bench/recipe.py`` (its position encoder is kept frozen), SCENE the
 rig folder it was trained on (12 trials: the first 8 train, the last 4 are held out). SPECS is a
-comma-separated list of field variants ``ACT:HIDDEN:LAYERS:GROUP:BETA:ROBUST_PX:WINDOW`` (e.g.
+comma-separated list of field variants ``ACT:HIDDEN:LAYERS:GROUP:BETA:ROBUST_PX:WINDOW[:TRACK]`` (e.g.
 ``relu:128:3:0:1:2:36``: ReLU 128×3, one MLP over the whole state, weight KL × 1, Huber beyond 2 px
-(``train.dynamics_robust_px``), windows growing from 8 to 36 frames over the first half). For each,
+(``train.dynamics_robust_px``), windows growing from 8 to 36 frames over the first half; TRACK 0 fits
+the encoder's keypoint order as read, 1 (the default) the keypoints followed from frame to frame as
+``model.keypoint_tracking`` does; held-out errors are always against the followed tracks). For each,
 a fresh field (seed 0) is trained for SECONDS on the encoded keypoint tracks of the training trials,
-then rolled out freely from each trial's encoded start with the finite-difference v0; the printed
+then rolled out freely from each trial's encoded start with the model's v0 from its first frames
+(``LatentODE.context_velocity``; rows before 2026-12-03 12:00 used the one-sided difference); the printed
 error (model pixels) is over the keypoints the encoder uses, averaged over forecast frames 1-20 and
 1-60, on the held-out trials and (1-60) on the training trials. Used for the "field on impacts"
 notes in DEVELOPERS.md (rows before 2026-12-03 grew the windows to 60 over 70 % of the time).
@@ -26,26 +29,27 @@ from kinecast.frames import read_recording
 from kinecast.train.loop import to_model_time
 from kinecast.model.field import DynamicsField
 from kinecast.model.staged import encode_all, dynamics_terms
-from kinecast.model.latent_ode import fd_velocity
+from kinecast.model.identities import follow
 torch.set_num_threads(2)
 run, scene = sys.argv[1], sys.argv[2]
 secs = float(sys.argv[3]) if len(sys.argv) > 3 else 60
 model, cfg = load_run(run)
 trials = sorted(p for p in Path(scene).iterdir() if p.is_dir())
-data = []
+data_all = []
 for tr in trials:
     rec = read_recording(tr, cfg.data)
     fr = torch.as_tensor(np.asarray(rec.frames), dtype=torch.float32)
     t = to_model_time(torch.as_tensor(np.asarray(rec.times), dtype=torch.float32)[None], cfg)[0]
     m, v = encode_all(model, fr)
-    data.append((fr, t - t[0], m, v))
+    data_all.append((fr, t - t[0], m, v, *(x[0] for x in follow(m[None], v[None]))))
 n, q, k = cfg.data.size, model.q, model.k
-good = (data[0][3].mean(0).sqrt() * n / 2 < 2.0)  # coordinates the encoder uses
+good = (data_all[0][3].mean(0).sqrt() * n / 2 < 2.0)  # coordinates the encoder uses
 print("used coords", good.tolist(), flush=True)
 VARIANTS = {}
 for spec in sys.argv[4].split(","):
-    act, h, l, g, beta, rob, wmax = spec.split(":")
-    VARIANTS[spec] = dict(act=act, h=int(h), l=int(l), g=int(g), beta=float(beta), rob=float(rob), W=int(wmax))
+    act, h, l, g, beta, rob, wmax, *track = spec.split(":")
+    VARIANTS[spec] = dict(act=act, h=int(h), l=int(l), g=int(g), beta=float(beta), rob=float(rob), W=int(wmax),
+                          track=bool(int(track[0])) if track else True)
 model.velocity_correction = False
 # keypoints that barely move in the training tracks are held still, as fit does (train.still_keypoint_px)
 from types import SimpleNamespace  # noqa: E402
@@ -54,6 +58,8 @@ pick = list(VARIANTS)
 gen = np.random.default_rng(0)
 for name in pick:
     V = VARIANTS[name]
+    model.tracking = V["track"]  # the tracks as fit's dynamics stage sees them (identities.py)
+    data = [(fr, t, *((mt, vt) if V["track"] else (m, v)), mt, vt) for fr, t, m, v, mt, vt in data_all]
     torch.manual_seed(0)
     model.field = DynamicsField(q, V["h"], V["l"], True, True, cfg.model.prior_std, cfg.model.init_logstd,
                                 activation=V["act"], group=V["g"])
@@ -76,10 +82,10 @@ for name in pick:
         opt.zero_grad(); terms["loss"].backward(); torch.nn.utils.clip_grad_norm_(params, 1.0); opt.step(); steps += 1
     held, fitted = [], []
     with torch.no_grad():
-        for j, (fr, t, m, v) in enumerate(data):
-            s0 = m[0:1]; v0 = fd_velocity(m[None, :k], t[:k])
+        for j, (fr, t, m, v, mt, _) in enumerate(data):  # scored against the tracked reads
+            s0 = m[0:1]; v0 = model.context_velocity(m[None, :k], t[:k])  # as fit's forecasts
             traj = model.integrate(torch.cat([s0, v0], 1), t[:61])[:, 0, :q]
-            e = ((traj - m[:61]) * n / 2).view(61, -1, 2)
+            e = ((traj - mt[:61]) * n / 2).view(61, -1, 2)
             e = e[:, good.view(-1, 2).all(1)].norm(dim=-1).mean(1)
             (held if j >= 8 else fitted).append((float(e[1:21].mean()), float(e[1:61].mean())))
     h20, h60 = np.mean(held, axis=0)

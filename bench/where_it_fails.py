@@ -8,8 +8,8 @@ trial, in model pixels:
 - *decoder*: per-object error (:func:`kinecast.frames.tracks.object_errors`, objects matched frame by
   frame) of the frames decoded from those keypoints: the autoencoder alone, no dynamics;
 - *dynamics*: mean distance of each moving keypoint of the free rollout (mean weights, from the
-  first ``model.velocity_frames`` frames) from the keypoint read from the true frame, over forecast
-  frames 1-20 and 1-60.
+  first ``model.velocity_frames`` frames) from the keypoint read from the true frame (read keypoints
+  followed from frame to frame, ``model.keypoint_tracking``), over forecast frames 1-20 and 1-60.
 
 A forecast that fails with small encoder and decoder errors fails in the dynamics. Keypoints are
 converted from normalised image coordinates as ``(x + 1) · size / 2 − 0.5`` (pixel centres).
@@ -31,6 +31,7 @@ if __package__ in (None, ""):  # run as a script: make `kinecast` importable fro
 from kinecast.frames import read_recording  # noqa: E402
 from kinecast.frames.tracks import find_objects, object_errors  # noqa: E402
 from kinecast.model import to_model_time  # noqa: E402
+from kinecast.model.identities import follow  # noqa: E402
 from kinecast.model.staged import encode_all  # noqa: E402
 from kinecast.runfolder import load_run  # noqa: E402
 
@@ -45,6 +46,8 @@ def diagnose(model, cfg, rec) -> dict:
     times = to_model_time(rec.times - rec.times[0], cfg)
     with torch.no_grad():
         read, _ = encode_all(model, frames)
+        if model.tracking:  # one slot per object, as the dynamics stage sees the tracks
+            read = follow(read[None])[0][0]
         free = model.sample_latents(frames[None, :k], times, 1, mean_weights=True, sample_init=False,
                                     ctx_t=times[:k])[0, 0, :, :model.q]
         decoded = model.decode(read[None])[0].numpy()

@@ -136,6 +136,8 @@ def test_initial_velocity_starts_as_the_finite_difference_of_the_position_readin
     torch.manual_seed(0)
     cfg = Config()
     cfg.data.size = 16
+    cfg.model.context_velocity = "one_sided"  # the central one: test_model_identities.py
+    cfg.model.keypoint_tracking = False  # random frames: keep the encoder's keypoint order
     model = build_model(cfg, 1)
     ctx = torch.rand(2, 3, 1, 16, 16)
     _, _, v_mean, _ = model.encode_dist(ctx, torch.tensor([0.0, 0.1, 0.2]))
@@ -208,6 +210,8 @@ def test_without_the_correction_v0_is_exactly_the_finite_difference():
     cfg = Config()
     cfg.data.size = 16
     cfg.model.velocity_correction = False
+    cfg.model.context_velocity = "one_sided"
+    cfg.model.keypoint_tracking = False
     model = build_model(cfg, 1)
     with torch.no_grad():
         model.vel_enc.head.weight.normal_()

@@ -92,12 +92,25 @@ class ModelConfig:
     field_per_keypoint: bool = _opt(False, "keypoint encoder, second order: one acceleration field shared by "
                                     "the keypoints (each keypoint's own position and velocity in, its own "
                                     "acceleration out) instead of one over all coordinates at once")
+    # True: in grey the air table's two pucks look alike and the encoder swapped them between frames;
+    # air table s2 12.6 -> 7.3 px per puck @20 (same-day 5-minute bench/recipe.py pair; DEVELOPERS.md)
+    keypoint_tracking: bool = _opt(True, "keypoint encoder: keep each keypoint on one object from frame to frame "
+                                   "(constant-velocity prediction + least-distance assignment) where the encoder "
+                                   "reads alike objects in a different order; in the context frames and the "
+                                   "dynamics stage's encoded tracks")
     velocity_frames: int = _opt(3, "frames stacked by the velocity encoder", lo=2, hi=16)
     # True: on the ball rig the position error over the first 20 forecast frames fell from 4.1 to
     # 2.7 px (sideways velocity no longer guessed wrong), pendulum 1.07 → 1.02 px (one run each)
     velocity_from_positions: bool = _opt(True, "second order: v0 = the finite-difference velocity of the position "
                                          "encoder's readings of the context frames + the velocity encoder's "
                                          "correction (else the velocity encoder alone)")
+    # one_sided: central did not win where it was paired the same day (5-minute bench/recipe.py runs:
+    # ball s3 2.04 -> 2.80 px @60, pendulum dark on light s6 0.75 -> 1.03; air table s2 7.73 px per
+    # puck @20 with it, 7.34 without; DEVELOPERS.md, twelfth session)
+    context_velocity: str = _opt("one_sided", "second order, v0 from the context frames' positions: one_sided (the "
+                                 "three-point derivative at the first frame) or central (the three-point "
+                                 "derivative at the second frame, carried back to the first by one step of "
+                                 "the field; 3.6x less read noise in it)", choices=("one_sided", "central"))
     # False: the correction came from a conv net with a dense head that learned the training trials'
     # velocities; on held-out air-table trials it turned the right finite difference into a wrong
     # v0 (4 of 4 trials worse). Pendulum 0.79 -> 0.64 px @60 and 0.26 -> 0.11x the background's MSE,

@@ -26,6 +26,7 @@ from .convnets import Decoder, GaussEncoder
 from .field import DynamicsField, Weights
 from .keypoints import MAX_STD_BLOBS, KeypointDecoder, KeypointEncoder
 from .gauss import bernoulli_nll, gaussian_nll, kl_std_normal
+from .identities import follow
 from .solver import solve
 
 BG_EPS = 1e-4  # background intensities are clamped into [BG_EPS, 1 - BG_EPS] before the logit
@@ -60,6 +61,16 @@ def fd_velocity(m: torch.Tensor, t: torch.Tensor) -> torch.Tensor:
     return a * m[:, 0] + b * m[:, 1] + c * m[:, 2]
 
 
+def central_velocity(m: torch.Tensor, t: torch.Tensor) -> torch.Tensor:
+    """Velocity at t[1] from positions m[:, 0..2] at times t[0..2]: the derivative at the middle
+    node of the quadratic through the three (a handbook three-point formula; for equal steps h the
+    central difference (m2 − m0) / 2h). Its error term is O(h²) as for :func:`fd_velocity`, but
+    read noise of std σ enters it with std σ/(h·√2) instead of σ·√26/(2h), 3.6× less."""
+    h1, h2 = t[1] - t[0], t[2] - t[1]
+    return (-h2 / (h1 * (h1 + h2)) * m[:, 0] + (h2 - h1) / (h1 * h2) * m[:, 1]
+            + h1 / (h2 * (h1 + h2)) * m[:, 2])
+
+
 class LatentODE(nn.Module):
     """Latent ODE model; build it with :func:`build_model`.
 
@@ -81,6 +92,7 @@ class LatentODE(nn.Module):
         self.solver_cfg = solver_cfg
         self.variant = model_cfg.variant
         self.keypoints = model_cfg.encoder == "keypoints"
+        self.tracking = self.keypoints and model_cfg.keypoint_tracking  # see identities.py
         self.q = q = latent_size(model_cfg)
         self.k = k = int(model_cfg.velocity_frames)
         self.channels, self.size = int(channels), int(size)
@@ -175,6 +187,9 @@ class LatentODE(nn.Module):
         ctx = ctx[:, :self.k].contiguous()  # convs on broadcast (expanded) views are very slow
         B = ctx.shape[0]
         pos_mean, pos_logvar = self.encode_positions(ctx.flatten(0, 1))
+        if self.tracking:
+            pos_mean, pos_logvar = (x.flatten(0, 1) for x in
+                                    follow(pos_mean.view(B, self.k, self.q), pos_logvar.view(B, self.k, self.q)))
         s_mean = pos_mean.reshape(B, self.k, self.q)[:, 0]
         s_logvar = pos_logvar.reshape(B, self.k, self.q)[:, 0]
         stacked = torch.cat([ctx.flatten(1, 2), (ctx[:, 1:] - ctx[:, :-1]).flatten(1, 2)], dim=1)
@@ -182,9 +197,26 @@ class LatentODE(nn.Module):
         if self.velocity_from_positions:
             if ctx_t is None:
                 ctx_t = torch.arange(self.k, dtype=ctx.dtype, device=ctx.device) * self.solver_cfg.units_per_frame
-            v_fd = fd_velocity(pos_mean.reshape(B, self.k, self.q), ctx_t[:self.k].to(ctx))
+            v_fd = self.context_velocity(pos_mean.reshape(B, self.k, self.q), ctx_t[:self.k].to(ctx))
             v_mean = v_mean + v_fd if self.velocity_correction else v_fd
         return s_mean, s_logvar, v_mean, v_logvar
+
+    def context_velocity(self, m: torch.Tensor, t: torch.Tensor) -> torch.Tensor:
+        """Velocity at t[0] from the context frames' positions m [B, k, q] at times t [k].
+
+        ``model.context_velocity = "central"`` (second order, k ≥ 3): :func:`central_velocity` at
+        t[1], carried back to t[0] by one step of the field's acceleration there (posterior means,
+        no gradient into the field): ``v(t0) ≈ v(t1) − (t1 − t0)·a(m1, v(t1))``, a first-order
+        Taylor step whose error is O(h²) like the difference's. Else (the default, "one_sided")
+        :func:`fd_velocity` at t[0] directly.
+        """
+        if self.cfg.context_velocity != "central" or not self.field.second_order or m.shape[1] < 3:
+            return fd_velocity(m, t)
+        v1 = central_velocity(m, t)
+        with torch.no_grad():  # a stop-gradient: the field is trained by the rollouts alone, not to
+            # bend v0 window by window (which would let it learn the reads' noise)
+            accel = self.field(t[1], torch.cat([m[:, 1], v1], dim=1))[:, self.q:]
+        return v1 - (t[1] - t[0]) * accel
 
     def encode(self, ctx: torch.Tensor, sample: bool, generator: torch.Generator | None = None
                ) -> torch.Tensor:

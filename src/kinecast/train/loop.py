@@ -459,7 +459,8 @@ class _Trainer:
             self.report.note("kinecast: warning: the position encoder never clearly beat the bare background "
                              f"({st.stages.restarts} restarts); the motion may not be learned")
         if stage == S.DYNAMICS:
-            self.targets = S.EncodedTrajectories(self.model, self.data.sampler.frames, self.ctx.device)
+            self.targets = S.EncodedTrajectories(self.model, self.data.sampler.frames, self.ctx.device,
+                                                 [~r.missing for r in self.data.sampler.recs])
             still = S.hold_still(self.model, self.targets, cfg.train.still_keypoint_px)
             if still:
                 self.report.note(f"kinecast: keypoint(s) {', '.join(map(str, still))} barely move in the "

@@ -25,6 +25,7 @@ import numpy as np
 import torch
 
 from ..model import build_model
+from ..model.identities import follow
 from ..model.staged import encode_all
 from ..frames import tracks
 
@@ -248,11 +249,15 @@ def hold_still(model, targets: "EncodedTrajectories", still_px: float) -> list[i
 class EncodedTrajectories:
     """Every training frame's encoded position (means and variances), computed once per stage."""
 
-    def __init__(self, model, frames: list[torch.Tensor], device):
+    def __init__(self, model, frames: list[torch.Tensor], device, valid: list[np.ndarray] | None = None):
         was = model.training
         model.eval()
         enc = [encode_all(model, f.to(device)) for f in frames]
         model.train(was)
+        if model.tracking:  # one slot per object through each recording (identities.py)
+            for i, (m, v) in enumerate(enc):
+                ok = None if valid is None else torch.as_tensor(valid[i])[None]
+                enc[i] = [x[0] for x in follow(m[None], v[None], valid=ok)]
         self.means = [m for m, _ in enc]
         self.vars = [v for _, v in enc]
 
