@@ -106,7 +106,7 @@ class ModelConfig:
                                          "correction (else the velocity encoder alone)")
     # one_sided: central did not win where it was paired the same day (5-minute bench/recipe.py runs:
     # ball s3 2.04 -> 2.80 px @60, pendulum dark on light s6 0.75 -> 1.03; air table s2 7.73 px per
-    # puck @20 with it, 7.34 without; DEVELOPERS.md, twelfth session)
+    # puck @20 with it, 7.34 without), all within one seed's run-to-run spread (DEVELOPERS.md, twelfth session)
     context_velocity: str = _opt("one_sided", "second order, v0 from the context frames' positions: one_sided (the "
                                  "three-point derivative at the first frame) or central (the three-point "
                                  "derivative at the second frame, carried back to the first by one step of "
