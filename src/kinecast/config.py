@@ -93,7 +93,8 @@ class ModelConfig:
                                     "the keypoints (each keypoint's own position and velocity in, its own "
                                     "acceleration out) instead of one over all coordinates at once")
     # True: in grey the air table's two pucks look alike and the encoder swapped them between frames;
-    # air table s2 12.6 -> 7.3 px per puck @20 (same-day 5-minute bench/recipe.py pair; DEVELOPERS.md)
+    # same-day 5-minute bench/recipe.py pairs: air table s2 12.6 -> 7.3 px per puck @20, s3 5.8 -> 8.5
+    # (no consistent gain shown); no keypoint reordered on single-object scenes (DEVELOPERS.md)
     keypoint_tracking: bool = _opt(True, "keypoint encoder: keep each keypoint on one object from frame to frame "
                                    "(constant-velocity prediction + least-distance assignment) where the encoder "
                                    "reads alike objects in a different order; in the context frames and the "
