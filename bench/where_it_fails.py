@@ -9,7 +9,9 @@ trial, in model pixels:
   frame) of the frames decoded from those keypoints: the autoencoder alone, no dynamics;
 - *dynamics*: mean distance of each moving keypoint of the free rollout (mean weights, from the
   first ``model.velocity_frames`` frames) from the keypoint read from the true frame (read keypoints
-  followed from frame to frame, ``model.keypoint_tracking``), over forecast frames 1-20 and 1-60.
+  followed from frame to frame, ``model.keypoint_tracking``), over forecast frames 1-20 and 1-60;
+- how often following the keypoints changed the encoder's order between consecutive frames (the
+  encoder swapping alike objects; 0 on a single-object scene).
 
 A forecast that fails with small encoder and decoder errors fails in the dynamics. Keypoints are
 converted from normalised image coordinates as ``(x + 1) · size / 2 − 0.5`` (pixel centres).
@@ -31,7 +33,7 @@ if __package__ in (None, ""):  # run as a script: make `kinecast` importable fro
 from kinecast.frames import read_recording  # noqa: E402
 from kinecast.frames.tracks import find_objects, object_errors  # noqa: E402
 from kinecast.model import to_model_time  # noqa: E402
-from kinecast.model.identities import follow  # noqa: E402
+from kinecast.model.identities import reorder, track_order  # noqa: E402
 from kinecast.model.staged import encode_all  # noqa: E402
 from kinecast.runfolder import load_run  # noqa: E402
 
@@ -46,8 +48,10 @@ def diagnose(model, cfg, rec) -> dict:
     times = to_model_time(rec.times - rec.times[0], cfg)
     with torch.no_grad():
         read, _ = encode_all(model, frames)
+        order = track_order(read.view(1, len(frames), -1, 2))[0]  # the encoder's order → followed slots
+        swaps = int((order[1:] != order[:-1]).any(dim=1).sum())
         if model.tracking:  # one slot per object, as the dynamics stage sees the tracks
-            read = follow(read[None])[0][0]
+            read = reorder(read[None], order[None])[0]
         free = model.sample_latents(frames[None, :k], times, 1, mean_weights=True, sample_init=False,
                                     ctx_t=times[:k])[0, 0, :, :model.q]
         decoded = model.decode(read[None])[0].numpy()
@@ -58,7 +62,8 @@ def diagnose(model, cfg, rec) -> dict:
                for o, kp in zip(objects, read_px) if len(o)]
     moving = model.field.moving.view(-1, 2)[:, 0].bool().numpy()
     drift = np.linalg.norm(free_px - read_px, axis=-1)[:, moving]
-    out = {"objects_per_frame": float(np.mean([len(o) for o in objects])),
+    out = {"objects_per_frame": float(np.mean([len(o) for o in objects])), "order_changes": swaps,
+           "frame_steps": len(frames) - 1,
            "encoder_px": float(np.mean(nearest)) if nearest else float("nan"),
            "decoder_px": float(np.nanmean(object_errors(decoded, rec.frames, background)["matched_error_px"]))}
     for h in HORIZONS:
@@ -78,7 +83,8 @@ def main(argv=None) -> int:
     print(f"{args.run}: {model.q // 2} keypoints, moving {model.field.moving.view(-1, 2)[:, 0].bool().tolist()}")
     for trial in args.trials:
         got = diagnose(model, cfg, read_recording(trial, cfg.data))
-        print(f"  {Path(trial).name}: {got['objects_per_frame']:.2f} objects/frame; encoder {got['encoder_px']:.2f} px, "
+        print(f"  {Path(trial).name}: {got['objects_per_frame']:.2f} objects/frame; keypoint order changed "
+              f"{got['order_changes']} times in {got['frame_steps']} frame steps; encoder {got['encoder_px']:.2f} px, "
               f"decoder {got['decoder_px']:.2f} px, dynamics "
               + ", ".join(f"{got[f'dynamics_{h}_px']:.2f} px over {h} frames" for h in HORIZONS))
     return 0
