@@ -99,6 +99,17 @@ class ModelConfig:
                                    "(constant-velocity prediction + least-distance assignment) where the encoder "
                                    "reads alike objects in a different order; in the context frames and the "
                                    "dynamics stage's encoded tracks")
+    # 0 (off): reads improved (air table, held-out: second-difference jitter 0.75-1.9 -> 0.14 px/frame² at
+    # 60 steps, 0.23 at 30), forecasts not shown to (same-day 5-minute runs, 60 steps: air table s2 14.0
+    # -> 15.3 px per puck @20, s3 5.4; ball s2 4.08 -> 3.94 px @60; spring classic 1.17, pendulum dark on
+    # light 1.80, within their spreads) and, before validation windows were batched, 25 % fewer steps in
+    # 5 minutes (DEVELOPERS.md, thirteenth session)
+    read_refinement: int = _opt(0, "keypoint encoder: gradient steps that move each keypoint read to where the "
+                                "decoder's drawing of it matches the frame best (model/refine.py), wherever no "
+                                "gradient is taken: forecasts, scores, validation and the dynamics stage's "
+                                "encoded tracks; 0 = the encoder's reads as they are", lo=0, hi=1000)
+    read_refinement_px: float = _opt(0.5, "first step size of model.read_refinement in model pixels (Adam, "
+                                     "decayed to 0 along a cosine)", lo=1e-4, hi=10.0)
     velocity_frames: int = _opt(3, "frames stacked by the velocity encoder", lo=2, hi=16)
     # True: on the ball rig the position error over the first 20 forecast frames fell from 4.1 to
     # 2.7 px (sideways velocity no longer guessed wrong), pendulum 1.07 → 1.02 px (one run each)

@@ -27,6 +27,7 @@ from .field import DynamicsField, Weights
 from .keypoints import MAX_STD_BLOBS, KeypointDecoder, KeypointEncoder
 from .gauss import bernoulli_nll, gaussian_nll, kl_std_normal
 from .identities import follow
+from .refine import refine_positions
 from .solver import solve
 
 BG_EPS = 1e-4  # background intensities are clamped into [BG_EPS, 1 - BG_EPS] before the logit
@@ -93,6 +94,7 @@ class LatentODE(nn.Module):
         self.variant = model_cfg.variant
         self.keypoints = model_cfg.encoder == "keypoints"
         self.tracking = self.keypoints and model_cfg.keypoint_tracking  # see identities.py
+        self.refine_steps = int(model_cfg.read_refinement) if self.keypoints else 0  # see refine.py
         self.q = q = latent_size(model_cfg)
         self.k = k = int(model_cfg.velocity_frames)
         self.channels, self.size = int(channels), int(size)
@@ -177,6 +179,16 @@ class LatentODE(nn.Module):
             return self.pos_enc(x, self.background)
         return self.pos_enc(x)
 
+    def read_positions(self, x: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+        """As :meth:`encode_positions`, with the means refined by the decoder
+        (:func:`~kinecast.model.refine.refine_positions`, ``model.read_refinement`` steps) where no
+        gradient is being taken; in training steps the encoder's own reads are used (refining there
+        would cost several decoder passes per context frame and step)."""
+        mean, logvar = self.encode_positions(x)
+        if self.refine_steps and not torch.is_grad_enabled():
+            mean = refine_positions(self, mean, x, self.refine_steps, self.cfg.read_refinement_px)
+        return mean, logvar
+
     def encode_dist(self, ctx: torch.Tensor, ctx_t: torch.Tensor | None = None):
         """Means and log-variances of q(s0) and q(v0) from ``ctx`` [B, k, C, H, W] (first k used).
 
@@ -186,7 +198,7 @@ class LatentODE(nn.Module):
         self._check_frames(ctx, "encode", self.k)
         ctx = ctx[:, :self.k].contiguous()  # convs on broadcast (expanded) views are very slow
         B = ctx.shape[0]
-        pos_mean, pos_logvar = self.encode_positions(ctx.flatten(0, 1))
+        pos_mean, pos_logvar = self.read_positions(ctx.flatten(0, 1))
         if self.tracking:
             pos_mean, pos_logvar = (x.flatten(0, 1) for x in
                                     follow(pos_mean.view(B, self.k, self.q), pos_logvar.view(B, self.k, self.q)))

@@ -129,10 +129,11 @@ def autoencoder_terms(model, frames: torch.Tensor, sample: bool, beta: float, re
 
 @torch.no_grad()
 def encode_all(model, frames: torch.Tensor, chunk: int = 256) -> tuple[torch.Tensor, torch.Tensor]:
-    """Position means and variances of every frame [T, C, H, W] → ([T, q], [T, q])."""
+    """Position means and variances of every frame [T, C, H, W] → ([T, q], [T, q]); keypoint means
+    refined by the decoder where ``model.read_refinement`` asks (:meth:`LatentODE.read_positions`)."""
     means, variances = [], []
     for part in frames.split(chunk):
-        m, lv = model.encode_positions(part)
+        m, lv = model.read_positions(part)
         means.append(m)
         variances.append(lv.exp())
     return torch.cat(means), torch.cat(variances)

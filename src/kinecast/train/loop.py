@@ -72,18 +72,29 @@ def validate(model, sampler: WindowSampler | None, window: int, cfg, background_
     k = cfg.model.velocity_frames
     dev = next(model.parameters()).device
     total, count = 0.0, 0.0
-    with torch.no_grad():  # one window at a time, at its own times: exact, and memory stays bounded
-        for frames, times, mask in zip(batch.frames, batch.own_times, batch.mask):
-            frames = frames[None].to(dev)
+    with torch.no_grad():  # windows at the same relative times in one batch, each at its own times: exact
+        for group in _same_times(batch.own_times):
+            frames = torch.stack([batch.frames[i] for i in group]).to(dev)
             if background_only:
-                pred = model.background.expand_as(frames[0])
+                pred = model.background.expand_as(frames)
             else:
-                t = to_model_time(times, cfg).to(dev)
-                pred = model.rollout(frames[:, :k], t, samples=1, mean_weights=True, ctx_t=t[:k])[0][0, 0]
-            err = ((pred - frames[0]) ** 2).mean(dim=(1, 2, 3))[k:]
-            m = mask[k:].to(dev).float()
+                t = to_model_time(batch.own_times[group[0]], cfg).to(dev)
+                pred = model.rollout(frames[:, :k], t, samples=1, mean_weights=True, ctx_t=t[:k])[0][0]
+            err = ((pred - frames) ** 2).mean(dim=(2, 3, 4))[:, k:]
+            m = torch.stack([batch.mask[i] for i in group])[:, k:].to(dev).float()
             total, count = total + float((err * m).sum()), count + float(m.sum())
     return total / count if count else math.nan
+
+
+def _same_times(times) -> list[list[int]]:
+    """Indices of the windows grouped by equal times relative to their first frame (to a nanosecond:
+    a recording at a steady frame rate gives one group), so that a group is encoded and solved as one
+    batch."""
+    groups: dict[tuple, list[int]] = {}
+    for i, t in enumerate(times):
+        t = np.asarray(t, dtype=np.float64)
+        groups.setdefault(tuple(np.round(t - t[0], 9)), []).append(i)
+    return list(groups.values())
 
 
 def _validate_and_keep(model, val_sampler, val_window: int, cfg, cur: Curriculum, run: Path, step: int) -> float:
