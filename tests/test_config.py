@@ -91,3 +91,11 @@ def test_cli_config_and_set_then_exit_2_on_bad_key(tmp_path, capsys):
     assert main(["config", "--config", str(out), "--set", "model.hidden=-1"]) == 2
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "model.hidden" in err[0] and "Traceback" not in err[0]
+
+
+def test_field_per_keypoint_reads_old_true_false():
+    # run folders written before the auto choice hold a TOML boolean (TOML 1.0.0: true / false)
+    from kinecast.config import from_toml_text
+    assert from_toml_text("[model]\nfield_per_keypoint = true\n").model.field_per_keypoint == "on"
+    assert from_toml_text("[model]\nfield_per_keypoint = false\n").model.field_per_keypoint == "off"
+    assert from_toml_text('[model]\nfield_per_keypoint = "auto"\n').model.field_per_keypoint == "auto"

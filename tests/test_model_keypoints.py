@@ -70,7 +70,7 @@ def test_fd_velocity_is_exact_for_a_quadratic_on_uneven_steps():
         float((-3 * f[0, 0] + 4 * f[0, 1] - f[0, 2]) / 0.2), abs=1e-12)
 
 
-@pytest.mark.parametrize("per_keypoint", [False, True])
+@pytest.mark.parametrize("per_keypoint", ["off", "on"])
 def test_dynamics_stage_recovers_an_oscillator_period(per_keypoint):
     torch.manual_seed(0)
     cfg = Config()

@@ -225,13 +225,13 @@ def test_a_lost_object_in_a_real_run_goes_back_to_the_snapshot_and_training_goes
     assert "lost the object again" in err and "from its best weights so far" in err
 
 
-@pytest.mark.parametrize("period_s, expected", [(0.8, (49, 50)), (0.3, (S.DYNAMICS_MIN_WINDOW,) * 2), (None, (60, 60))])
+@pytest.mark.parametrize("period_s, expected", [(0.8, (49, 50)), (0.3, (S.DYNAMICS_MIN_WINDOW,) * 2), (None, (S.DYNAMICS_NO_PERIOD_WINDOW,) * 2)])
 def test_dynamics_windows_span_two_periods_of_the_tracked_object(period_s, expected):
     # A disc in simple harmonic motion x = 32 + 12 sin(2πt/P) (closed form; period P by
     # construction) filmed at 30 fps for 6 s. Two periods of 0.8 s are 48 frame intervals, so the
     # dynamics stage's windows grow to 49 frames (50 when the period is measured a hair long: the
     # count is rounded up); a 0.3 s period gives 19, raised to the floor of 20;
-    # a still disc has no period and gets the 60-frame fallback.
+    # a still disc has no period and gets the fallback (a project choice, see stages.py).
     from kinecast.frames.recording import Recording
     from test_score_tracks import render_disc
 
@@ -243,3 +243,35 @@ def test_dynamics_windows_span_two_periods_of_the_tracked_object(period_s, expec
     assert expected[0] <= window <= expected[1]
     if period_s:
         assert period == pytest.approx(period_s, rel=0.01)
+
+
+def test_alike_objects_decide_the_shared_field():
+    # Two equal discs on straight lines x = x0 + v·t (closed form) are two separate, alike objects in
+    # every frame; one disc is one; a disc with a much smaller one beside it (a fifth of its area,
+    # like a body seen in two unequal pieces) is not alike. The count is scipy.ndimage.label's
+    # connected pieces of the foreground (kinecast.frames.tracks.find_objects); each piece's weight
+    # is its summed foreground, so the weight ratio of two uniform discs is their area ratio
+    # (r² ratio, π r² for a disc's area: handbook geometry).
+    from kinecast.frames.recording import Recording
+    from test_score_tracks import render_disc
+
+    t = np.arange(30, dtype=np.float64)
+    a = np.stack([10 + 0.5 * t, np.full_like(t, 16.0)], axis=1)
+    b = np.stack([50 - 0.4 * t, np.full_like(t, 48.0)], axis=1)
+    one = render_disc(a, radius=6.0)
+    two = np.maximum(one, render_disc(b, radius=6.0))
+    unequal = np.maximum(one, render_disc(b, radius=6.0 / np.sqrt(5.0)))
+    bg = np.full(one.shape[1:], 0.2, np.float32)
+    rec = lambda frames: Recording(frames.astype(np.float32), t / 30.0, np.zeros(len(t), bool), "discs")  # noqa: E731
+    assert S.alike_objects([rec(two)], bg)
+    assert not S.alike_objects([rec(one)], bg)
+    assert not S.alike_objects([rec(unequal)], bg)
+
+
+def test_fit_writes_the_resolved_field_sharing(rig, tmp_path):
+    # "auto" is decided from the training frames and the run's config.toml holds the answer
+    # (one pendulum bob: off), so forecasts rebuild the same field from the run folder.
+    cfg = staged_cfg(12)
+    assert cfg.model.field_per_keypoint == "auto"
+    fit([rig], tmp_path / "run", cfg, show_progress=False)
+    assert C.load(tmp_path / "run" / "config.toml").model.field_per_keypoint == "off"

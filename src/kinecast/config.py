@@ -89,9 +89,20 @@ class ModelConfig:
     hidden_layers: int = _opt(3, "hidden layers of the acceleration field", lo=1, hi=8)
     field_activation: str = _opt("relu", "hidden activation of the acceleration field (relu forms the "
                                  "steep walls of impacts)", choices=("tanh", "relu", "softplus"))
-    field_per_keypoint: bool = _opt(False, "keypoint encoder, second order: one acceleration field shared by "
-                                    "the keypoints (each keypoint's own position and velocity in, its own "
-                                    "acceleration out) instead of one over all coordinates at once")
+    # auto (defaults 16): on the air table (two pucks that do not interact) one field over all coordinates
+    # learned accelerations the pucks never had: offline (bench/field_offline.py, frozen encoders, 75 s) its
+    # held-out free rollouts were ~10 px off @20 frames, worse than no field at all (4.9), where a field
+    # shared by the keypoints got 2.3-8.7 px; full 5-minute runs (with 20-frame dynamics windows) s2 14.0
+    # -> 8.6 px per puck @20 against the same day's d15, s3 -> 3.8 (d15 8.5 the day before). On one object
+    # whose two keypoints both move (a spring's mass and coil) a shared field must give two points of one
+    # body one law: spring classic s6 1.55 px, period off 2.1 % (0.93-1.23 px, <= 0.1 % in four earlier
+    # runs), hence "auto" (train/stages.py alike_objects; DEVELOPERS.md, thirteenth session)
+    field_per_keypoint: str = _opt("auto", "keypoint encoder, second order: on = one acceleration field shared "
+                                   "by the keypoints (each keypoint's own position and velocity in, its own "
+                                   "acceleration out), for separate objects that do not push on each other; "
+                                   "off = one field over all coordinates at once; auto = on where the training "
+                                   "frames show several separate moving objects of about the same size and "
+                                   "contrast (decided by fit and written to the run's config)", choices=("auto", "on", "off"))
     # True: in grey the air table's two pucks look alike and the encoder swapped them between frames;
     # same-day 5-minute bench/recipe.py pairs: air table s2 12.6 -> 7.3 px per puck @20, s3 5.8 -> 8.5
     # (no consistent gain shown); no keypoint reordered on single-object scenes (DEVELOPERS.md)
@@ -206,7 +217,7 @@ class TrainConfig:
     escape_deadline: float = _opt(0.4, "staged: share of the positions stage after which an attempt that has "
                                   "found nothing (error still >= 0.8x the background's) restarts from a new seed", lo=0.05, hi=1.0)
     dynamics_window: int = _opt(0, "staged: longest window of the dynamics stage in frames; 0 = 2 periods "
-                                "of the tracked object, at least 20 frames (60 when no period is found; "
+                                "of the tracked object, at least 20 frames (20 when no period is found; "
                                 "capped by the recordings)",
                                 lo=0)
     velocity_aux: float = _opt(1.0, "staged: weight of the finite-difference velocity term of the dynamics "
@@ -377,6 +388,8 @@ def _check(section: str, f: dataclasses.Field, value: Any) -> Any:
     elif kind is str:
         if key == "train.budget":
             parse_budget(value, key)  # its own message: a bare number is refused naming the forms
+        if key == "model.field_per_keypoint" and isinstance(value, bool):
+            value = "on" if value else "off"  # run folders written before 2026-12-03 hold true / false
         if not isinstance(value, str):
             raise bad("a string")
     elif kind is list:

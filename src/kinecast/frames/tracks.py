@@ -178,7 +178,8 @@ def centroid_track(frames, background=None, threshold: float = FOREGROUND_FRACTI
     return track
 
 
-def find_objects(frames, background=None, threshold: float = FOREGROUND_FRACTION) -> list[np.ndarray]:
+def find_objects(frames, background=None, threshold: float = FOREGROUND_FRACTION,
+                 with_weights: bool = False) -> list:
     """The separate objects of each frame: connected pieces of the foreground and their centroids.
 
     The pieces are the 4-connected components (``scipy.ndimage.label``) of :func:`foreground_mask`;
@@ -194,10 +195,14 @@ def find_objects(frames, background=None, threshold: float = FOREGROUND_FRACTION
     threshold : float
         As in :func:`centroid_track`.
 
+    with_weights : bool
+        Also return each object's summed foreground (its weight).
+
     Returns
     -------
     list of T arrays (M_t, 2)
-        ``x, y`` of each object, in the order ``ndimage.label`` numbers them (raster order).
+        ``x, y`` of each object, in the order ``ndimage.label`` numbers them (raster order); with
+        ``with_weights``, T pairs of that array and the objects' weights (M_t,).
     """
     fg = foreground(frames, background).astype(np.float64)
     masks = foreground_mask(fg, threshold)
@@ -205,13 +210,14 @@ def find_objects(frames, background=None, threshold: float = FOREGROUND_FRACTION
     for w, mask in zip(fg, masks):
         labels, count = ndimage.label(mask)
         if count == 0 or w.max() < MIN_CONTRAST:
-            out.append(np.empty((0, 2)))
+            out.append((np.empty((0, 2)), np.empty(0)) if with_weights else np.empty((0, 2)))
             continue
         index = np.arange(1, count + 1)
         weight = ndimage.sum_labels(w, labels, index)
         rows_cols = np.asarray(ndimage.center_of_mass(w, labels, index), dtype=np.float64)
         keep = weight >= MIN_OBJECT_SHARE * weight.max()
-        out.append(rows_cols[keep][:, ::-1].reshape(-1, 2))
+        xy = rows_cols[keep][:, ::-1].reshape(-1, 2)
+        out.append((xy, weight[keep]) if with_weights else xy)
     return out
 
 

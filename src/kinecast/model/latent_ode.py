@@ -119,7 +119,7 @@ class LatentODE(nn.Module):
                                    bayesian=self.variant != "deterministic",
                                    prior_std=model_cfg.prior_std, init_logstd=model_cfg.init_logstd,
                                    activation=model_cfg.field_activation,
-                                   group=2 if (self.keypoints and model_cfg.field_per_keypoint
+                                   group=2 if (self.keypoints and model_cfg.field_per_keypoint == "on"
                                                and self.variant != "first_order") else 0)
         if model_cfg.likelihood == "gaussian":
             self.log_noise = nn.Parameter(torch.full((channels,), math.log(INIT_NOISE_STD)))

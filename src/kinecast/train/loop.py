@@ -252,8 +252,9 @@ class _Data:
 
     @classmethod
     def load(cls, paths: list[Path], cfg, rank: int) -> "_Data":
-        """Read ``paths``; resolves ``cfg.solver.time_scale`` = 0 from their times (on the run's
-        private copy of the config; the run's config.toml keeps it)."""
+        """Read ``paths``; resolves ``cfg.solver.time_scale`` = 0 from their times and
+        ``cfg.model.field_per_keypoint`` = "auto" from the objects they show (on the run's private
+        copy of the config; the run's config.toml keeps the resolved values)."""
         recs = load_recordings(paths, cfg)
         where = {id(r): str(p) for r, p in zip(recs, paths)}
         k = cfg.model.velocity_frames
@@ -269,6 +270,8 @@ class _Data:
         val_sampler = WindowSampler(val or train, k, 0)
         background = median_background(train) if cfg.model.background else None
         dyn_longest, period = S.dynamics_window(train, background, cfg, sampler.longest_window())
+        if cfg.model.field_per_keypoint == "auto":  # resolved here, so the run's config.toml holds on / off
+            cfg.model.field_per_keypoint = "on" if S.alike_objects(train, background) else "off"
         return cls(paths, where, train, val, sampler, val_sampler, longest,
                    min(val_sampler.longest_window(), 3 * longest), sum(r.n_frames for r in train),
                    background, max(dyn_longest, k + 1), period)

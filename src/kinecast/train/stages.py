@@ -41,7 +41,17 @@ ESCAPE_MIN_STEPS = 10  # positions steps before the escape test is trusted (EMA 
 # against 2.31 with 60; the spring (24 frames) 0.54 with 49 against 0.53 with 60
 DYNAMICS_PERIODS = 2
 DYNAMICS_MIN_WINDOW = 20
-DYNAMICS_NO_PERIOD_WINDOW = 60
+# 20 when no period is found (defaults 16; 60 before): on the air table, the one rig without a period,
+# a field shared by the keypoints rolled out 8.7 / 2.9 px @20 held out with 20-frame windows against
+# 9.4 / 2.9 with 36 (two frozen encoders, bench/field_offline.py, 75 s), and a 20-frame window's step
+# costs a third of a 60-frame one's
+DYNAMICS_NO_PERIOD_WINDOW = 20
+OBJECT_COUNT_STRIDE = 5  # every 5th frame is enough to count the objects a scene shows (alike_objects)
+# Second-heaviest foreground piece / heaviest, median over frames with two or more, from which pieces
+# count as alike objects. Measured (8 training trials per scene, 64 px): air table pucks 0.72-0.94 in six
+# looks (in grey one puck colour is lighter); pieces of one body or an object and its shadow lower —
+# spring rod look (mass and coil apart) 0.15, ball on a floor drawn by other code 0.50 (DEVELOPERS.md)
+ALIKE_WEIGHT = 0.6
 # An attempt is restarted at its deadline only while its reconstruction is still this close to the bare
 # background's error (it has found nothing). One that is part way (e.g. one of two pucks found: 0.35-0.4
 # on the air table) keeps going: a restart threw such progress away there.
@@ -197,6 +207,25 @@ def restart_positions(model, opt, cfg, channels: int, seed: int) -> None:
         old.load_state_dict(new.state_dict())
         for p in old.parameters():
             opt.state.pop(p, None)
+
+
+def alike_objects(recs, background) -> bool:
+    """Do the recordings show several separate, alike moving objects? True when the median count per
+    frame of :func:`~kinecast.frames.tracks.find_objects` (separate foreground pieces; every
+    :data:`OBJECT_COUNT_STRIDE`-th present frame) is at least 2 and, in frames with two or more,
+    the second-heaviest piece has a median of at least :data:`ALIKE_WEIGHT` of the heaviest's
+    foreground. Decides ``model.field_per_keypoint = "auto"``: alike separate objects (pucks,
+    beads) get one acceleration field shared by the keypoints; a body seen in two unequal pieces (a
+    spring's mass and coil, a ball and its shadow) does not."""
+    counts, ratios = [], []
+    for r in recs:
+        for _, weight in tracks.find_objects(r.frames[~r.missing][::OBJECT_COUNT_STRIDE], background,
+                                             with_weights=True):
+            counts.append(len(weight))
+            if len(weight) >= 2:
+                top = np.sort(weight)[::-1]
+                ratios.append(top[1] / top[0])
+    return bool(counts) and float(np.median(counts)) >= 2 and float(np.median(ratios)) >= ALIKE_WEIGHT
 
 
 def dynamics_window(recs, background, cfg, longest: int) -> tuple[int, float]:
