@@ -95,8 +95,9 @@ class ModelConfig:
     # shared by the keypoints got 2.3-8.7 px; full 5-minute runs (with 20-frame dynamics windows) s2 14.0
     # -> 8.6 px per puck @20 against the same day's d15, s3 -> 3.8 (d15 8.5 the day before). On one object
     # whose two keypoints both move (a spring's mass and coil) a shared field must give two points of one
-    # body one law: spring classic s6 1.55 px, period off 2.1 % (0.93-1.23 px, <= 0.1 % in four earlier
-    # runs), hence "auto" (train/stages.py alike_objects; DEVELOPERS.md, thirteenth session)
+    # body one law: spring classic s6 1.55 px, period off 2.1 % (0.93-1.23 px, 0.1-0.9 % in five earlier
+    # runs), ball s2 6.24 px (4.08 the same day), hence "auto" (train/stages.py alike_objects; the
+    # air table s4 / s5 pairs: 11.0 -> 10.0, 18.5 -> 8.0; DEVELOPERS.md, thirteenth session)
     field_per_keypoint: str = _opt("auto", "keypoint encoder, second order: on = one acceleration field shared "
                                    "by the keypoints (each keypoint's own position and velocity in, its own "
                                    "acceleration out), for separate objects that do not push on each other; "
