@@ -1,4 +1,4 @@
-"""The dynamics stage alone, field by field: ``python bench/field_offline.py RUN SCENE SECONDS SPECS``.
+"""The dynamics stage alone, field by field: ``python bench/field_offline.py RUN SCENE SECONDS SPECS [REFINE]``.
 
 RUN is a run folder made by ``bench/recipe.py`` (its position encoder is kept frozen), SCENE the
 rig folder it was trained on (12 trials: the first 8 train, the last 4 are held out). SPECS is a
@@ -13,6 +13,8 @@ then rolled out freely from each trial's encoded start with the model's v0 from 
 error (model pixels) is over the keypoints the encoder uses, averaged over forecast frames 1-20 and
 1-60, on the held-out trials and (1-60) on the training trials. Used for the "field on impacts"
 notes in DEVELOPERS.md (rows before 2026-12-03 grew the windows to 60 over 70 % of the time).
+REFINE (optional) reads the tracks and v0 with ``model.read_refinement`` = REFINE steps (rows of the
+thirteenth session's offline field study quote 0 and 30).
 Numbers are statistical extrapolations on synthetic rigs, not measurements.
 """
 import sys
@@ -34,6 +36,8 @@ torch.set_num_threads(2)
 run, scene = sys.argv[1], sys.argv[2]
 secs = float(sys.argv[3]) if len(sys.argv) > 3 else 60
 model, cfg = load_run(run)
+if len(sys.argv) > 5:  # optional REFINE: model.read_refinement steps for the encoded tracks and v0 reads
+    model.refine_steps = cfg.model.read_refinement = int(sys.argv[5])
 trials = sorted(p for p in Path(scene).iterdir() if p.is_dir())
 data_all = []
 for tr in trials:

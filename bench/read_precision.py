@@ -33,6 +33,7 @@ if __package__ in (None, ""):  # run as a script: make `kinecast` importable fro
 from kinecast.frames import read_recording  # noqa: E402
 from kinecast.frames.tracks import find_objects, match_objects  # noqa: E402
 from kinecast.model.identities import reorder, track_order  # noqa: E402
+from kinecast.model.keypoints import to_model_pixels  # noqa: E402
 from kinecast.model.staged import encode_all  # noqa: E402
 from kinecast.runfolder import load_run  # noqa: E402
 
@@ -46,7 +47,7 @@ def read_errors(model, cfg, rec) -> tuple[float, float, float]:
     K = read.shape[1] // 2
     read = reorder(read[None], track_order(read.view(1, len(frames), K, 2))[0][None])[0]
     moving = model.field.moving.view(-1, 2)[:, 0].bool().numpy()
-    xy = ((read.view(len(frames), K, 2).numpy() + 1.0) * cfg.data.size / 2.0 - 0.5)[:, moving]
+    xy = to_model_pixels(read.view(len(frames), K, 2).numpy(), cfg.data.size)[:, moving]
     background = model.background.detach().cpu().numpy() if cfg.model.background else None
     truth = np.full_like(xy, np.nan)
     for t, objects in enumerate(find_objects(rec.frames, background)):

@@ -34,6 +34,7 @@ from kinecast.frames import read_recording  # noqa: E402
 from kinecast.frames.tracks import find_objects, object_errors  # noqa: E402
 from kinecast.model import to_model_time  # noqa: E402
 from kinecast.model.identities import reorder, track_order  # noqa: E402
+from kinecast.model.keypoints import to_model_pixels  # noqa: E402
 from kinecast.model.staged import encode_all  # noqa: E402
 from kinecast.runfolder import load_run  # noqa: E402
 
@@ -55,7 +56,7 @@ def diagnose(model, cfg, rec) -> dict:
         free = model.sample_latents(frames[None, :k], times, 1, mean_weights=True, sample_init=False,
                                     ctx_t=times[:k])[0, 0, :, :model.q]
         decoded = model.decode(read[None])[0].numpy()
-    to_px = lambda xy: (xy.view(len(frames), -1, 2).numpy() + 1.0) * size / 2.0 - 0.5  # noqa: E731
+    to_px = lambda xy: to_model_pixels(xy.view(len(frames), -1, 2).numpy(), size)  # noqa: E731
     read_px, free_px = to_px(read), to_px(free)
     objects = find_objects(rec.frames, background)
     nearest = [np.linalg.norm(o[:, None] - kp[None], axis=-1).min(axis=1).mean()

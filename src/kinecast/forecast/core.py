@@ -19,6 +19,7 @@ from ..errors import KinecastError
 from ..frames import Recording
 from ..frames.preprocess import model_to_recording_px, recording_geometry
 from ..model import to_model_time
+from ..model.keypoints import to_model_pixels
 
 # A requested time this fraction of the median interval from a slot's time is that slot (float
 # rounding of timestamps; the same 1% that matches forecast times to recorded frames).
@@ -152,7 +153,7 @@ def keypoint_pixels(latents: np.ndarray, info: dict, cfg: Config) -> np.ndarray:
     vel = latents[..., q:].reshape(*latents.shape[:-1], q // 2, 2)
     n = cfg.data.size
     geo = recording_geometry(info, n)
-    px = model_to_recording_px((pos + 1.0) * n / 2.0 - 0.5, info, n, geo)   # normalised → model px → source px
+    px = model_to_recording_px(to_model_pixels(pos, n), info, n, geo)   # normalised → model px → source px
     scale = n * geo.step / 2.0
     return np.concatenate([px, vel * scale * cfg.solver.time_scale], axis=-1)
 

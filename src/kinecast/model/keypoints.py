@@ -63,7 +63,8 @@ MAX_STD_BLOBS = 1.0
 # target heat maps of numerical coordinate regression (Nibali et al. 2018, σ = 1 heat-map pixel).
 HEAT_STD_CELLS = 1.0
 
-__all__ = ["KeypointEncoder", "KeypointDecoder", "pixel_grid", "spatial_softmax", "expected_xy", "heat_map_shape",
+__all__ = ["KeypointEncoder", "KeypointDecoder", "pixel_grid", "to_model_pixels", "spatial_softmax", "expected_xy",
+           "heat_map_shape",
            "draw_blobs"]
 
 
@@ -74,6 +75,16 @@ def pixel_grid(n: int, device=None, dtype=torch.float32) -> torch.Tensor:
     [-0.75, -0.25, 0.25, 0.75]
     """
     return (2 * torch.arange(n, device=device, dtype=dtype) + 1) / n - 1
+
+
+def to_model_pixels(xy, n: int):
+    """Normalised image coordinates (:func:`pixel_grid` units) → model pixels ``(x + 1)·n/2 − 0.5``
+    (pixel centres at integers); numpy arrays or tensors.
+
+    >>> float(to_model_pixels(pixel_grid(4)[0], 4))
+    0.0
+    """
+    return (xy + 1.0) * n / 2.0 - 0.5
 
 
 def spatial_softmax(logits: torch.Tensor) -> torch.Tensor:

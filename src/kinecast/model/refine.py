@@ -12,7 +12,7 @@ changed. Each frame is refined on its own, and each keypoint stays in its basin 
 most), so the order of alike objects is left as it was.
 
 Measured on a 5-minute air-table run (4 held-out trials; reads matched to the foreground centroids
-of :func:`kinecast.frames.tracks.find_objects`; ``bench/read_precision.py``): jitter 0.75-1.9 → 0.13-0.17 px/frame² with 60
+of :func:`kinecast.frames.tracks.find_objects`; ``bench/read_precision.py``): jitter 0.75-1.9 → 0.14-0.17 px/frame² with 60
 steps from 0.2 px, 0.22-0.25 with 30 steps from 0.5 px, 0.27-0.34 with 20 from 0.6 (about 0.3 ms
 per frame and step on 2 cores). Forecasts were not shown to improve (DEVELOPERS.md, thirteenth
 session), so ``model.read_refinement`` is off by default.
