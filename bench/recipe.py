@@ -62,10 +62,10 @@ TRACKER = "low-pass 1.5 px"
 # "4": keypoint_coverage 1, v0 = finite difference alone; "5": as 4, and keypoints that barely move
 # held still, train.still_keypoint_px 1; "6": as 5, keypoint posteriors start at 0.5 px, an encoder that
 # loses the object goes back to deterministic steps, early stop only below 0.8x the background;
-# "7" ... "15", and the "15c" / "15g" tries: see DEVELOPERS.md)
-DEFAULTS = ("16: as 15, and one acceleration field shared by the keypoints where the training frames show several "
-            "separate moving objects (model.field_per_keypoint auto); the dynamics stage's windows grow to 20 "
-            "frames, not 60, when no period is found")
+# "7" ... "16", and the "15c" / "15g" tries: see DEVELOPERS.md)
+DEFAULTS = ("17: as 16 (one acceleration field shared by the keypoints where the training frames show several "
+            "alike separate objects; 20-frame dynamics windows when no period is found), and for those "
+            "alike objects keypoints read within 3 heat-map cells of each map's peak (model.keypoint_window auto)")
 START_FRAMES = 3          # forecast frames over which the drawing offset is measured
 TRIALS, TRAIN_TRIALS, FRAMES, HORIZON, SIZE = 12, 8, 90, 60, 64
 RUNS_FILE = "recipe_runs.jsonl"

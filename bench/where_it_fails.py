@@ -11,7 +11,11 @@ trial, in model pixels:
   first ``model.velocity_frames`` frames) from the keypoint read from the true frame (read keypoints
   followed from frame to frame, ``model.keypoint_tracking``), over forecast frames 1-20 and 1-60;
 - how often following the keypoints changed the encoder's order between consecutive frames (the
-  encoder swapping alike objects; 0 on a single-object scene).
+  encoder swapping alike objects; 0 on a single-object scene);
+- the heat maps' shape: mean probability of a map's most probable cell (about 0.16 for a bump one
+  cell wide; near 1 when a map has sharpened into one cell and snaps its keypoint to the cell grid)
+  and the share of a map's mass farther than ``FAR_CELLS`` cells from that cell (mass on another
+  object, which pulls a whole-map read; ``model.keypoint_window`` reads around the peak instead).
 
 A forecast that fails with small encoder and decoder errors fails in the dynamics. Keypoints are
 converted from normalised image coordinates as ``(x + 1) · size / 2 − 0.5`` (pixel centres).
@@ -39,6 +43,20 @@ from kinecast.model.staged import encode_all  # noqa: E402
 from kinecast.runfolder import load_run  # noqa: E402
 
 HORIZONS = (20, 60)  # forecast frames over which the dynamics error is averaged
+FAR_CELLS = 3  # heat-map mass farther than this from a map's peak (in cells) counts as "far"
+
+
+def map_shape(model, frames: torch.Tensor) -> tuple[float, float]:
+    """Mean peak-cell probability and mean far mass (beyond ``FAR_CELLS`` of the peak) of the
+    keypoint encoder's heat maps on ``frames``."""
+    with torch.no_grad():
+        p = model.pos_enc(frames, model.background, with_maps=True)[2].exp()
+    B, K, h, w = p.shape
+    peak = p.flatten(2).argmax(-1)
+    dy = torch.arange(h)[None, None, :, None] - (peak // w)[..., None, None]
+    dx = torch.arange(w)[None, None, None, :] - (peak % w)[..., None, None]
+    far = (dx ** 2 + dy ** 2) > FAR_CELLS ** 2
+    return float(p.flatten(2).max(-1).values.mean()), float((p * far).sum(dim=(2, 3)).mean())
 
 
 def diagnose(model, cfg, rec) -> dict:
@@ -67,6 +85,7 @@ def diagnose(model, cfg, rec) -> dict:
            "frame_steps": len(frames) - 1,
            "encoder_px": float(np.mean(nearest)) if nearest else float("nan"),
            "decoder_px": float(np.nanmean(object_errors(decoded, rec.frames, background)["matched_error_px"]))}
+    out["map_peak"], out["map_far"] = map_shape(model, frames)
     for h in HORIZONS:
         out[f"dynamics_{h}_px"] = float(drift[k:k + h].mean()) if drift.size else float("nan")
     return out
@@ -87,7 +106,8 @@ def main(argv=None) -> int:
         print(f"  {Path(trial).name}: {got['objects_per_frame']:.2f} objects/frame; keypoint order changed "
               f"{got['order_changes']} times in {got['frame_steps']} frame steps; encoder {got['encoder_px']:.2f} px, "
               f"decoder {got['decoder_px']:.2f} px, dynamics "
-              + ", ".join(f"{got[f'dynamics_{h}_px']:.2f} px over {h} frames" for h in HORIZONS))
+              + ", ".join(f"{got[f'dynamics_{h}_px']:.2f} px over {h} frames" for h in HORIZONS)
+              + f"; heat maps: peak cell {got['map_peak']:.2f}, far mass {got['map_far']:.3f}")
     return 0
 
 

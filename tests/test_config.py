@@ -99,3 +99,17 @@ def test_field_per_keypoint_reads_old_true_false():
     assert from_toml_text("[model]\nfield_per_keypoint = true\n").model.field_per_keypoint == "on"
     assert from_toml_text("[model]\nfield_per_keypoint = false\n").model.field_per_keypoint == "off"
     assert from_toml_text('[model]\nfield_per_keypoint = "auto"\n').model.field_per_keypoint == "auto"
+
+
+def test_a_saved_run_without_a_newer_key_reads_as_it_was_trained(tmp_path):
+    # a run folder written before model.keypoint_window existed read its keypoints over the whole
+    # heat map (window 0): loading its config.toml must give 0, whatever today's default; a run that
+    # names the key keeps its own value (TOML 1.0.0 tables and integers)
+    from kinecast import config as cfgmod
+    old = tmp_path / "old.toml"
+    old.write_text("[model]\nkeypoints = 2\n", encoding="utf-8")
+    assert cfgmod.load(old, cfgmod.saved_run_base()).model.keypoint_window == 0
+    new = tmp_path / "new.toml"
+    new.write_text("[model]\nkeypoint_window = 5\n", encoding="utf-8")
+    assert cfgmod.load(new, cfgmod.saved_run_base()).model.keypoint_window == 5
+    assert cfgmod.load(old).model.keypoint_window == cfgmod.Config().model.keypoint_window

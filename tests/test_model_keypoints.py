@@ -10,6 +10,9 @@
   points put each centre at the centroid of the mass assigned to it (Lloyd 1982, "Least squares
   quantization in PCM", IEEE Trans. Inf. Theory 28), and the centroid of a symmetric blob is its
   centre (closed form). The robust noise scale 1.4826·MAD is a handbook constant (σ of a Gaussian).
+- Read within a window around its peak, a map holding a second, weaker Gaussian bump far away gives
+  the main bump's own centre (closed form, up to the window's truncation of the bump at 3.5σ, below
+  1e-3 of a cell); over the whole map it gives the mass-weighted mean of the two centres (closed form).
 - A shared per-object field is one function applied to each object's own state: swapping two objects'
   states swaps their accelerations (permutation equivariance, by definition).
 - The second-order one-sided difference (−3·f0 + 4·f1 − f2)/2h is exact for quadratics (handbook
@@ -24,7 +27,8 @@ import torch
 
 from kinecast.config import Config
 from kinecast.model import build_model
-from kinecast.model.keypoints import draw_blobs, heat_map_shape, pixel_grid, spatial_softmax
+from kinecast.model.keypoints import (draw_blobs, expected_xy, heat_map_shape, pixel_grid, spatial_softmax,
+                                      window_expected_xy)
 from kinecast.model.latent_ode import fd_velocity
 from kinecast.model.staged import dynamics_terms
 
@@ -41,6 +45,23 @@ def test_spatial_softmax_finds_the_centre_of_a_gaussian(cx, cy):
     xy = spatial_softmax(logits)[0, 0]
     assert float(xy[0]) == pytest.approx(cx, abs=1e-6)
     assert float(xy[1]) == pytest.approx(cy, abs=1e-6)
+
+
+@pytest.mark.parametrize("cx,cy", [(0.31, -0.42), (-0.4, 0.27)])
+def test_a_window_read_ignores_a_far_bump(cx, cy):
+    n, sigma, weak = 32, 2 / 32, 0.3  # bumps one cell wide; the second has 0.3 of the first's mass
+    main = np.exp(_gauss_logits(n, cx, cy, sigma))
+    far = weak * np.exp(_gauss_logits(n, -cx, -cy, sigma))
+    p = torch.tensor(main + far, dtype=torch.float64)[None, None]
+    p = p / p.sum()
+    inside = window_expected_xy(p, 4)[0, 0].numpy()
+    np.testing.assert_allclose(inside, [cx, cy], atol=1e-3 * 2 / n)
+    whole = expected_xy(p)[0, 0].numpy()  # the mass-weighted mean of the two centres
+    np.testing.assert_allclose(whole, np.array([cx, cy]) * (1 - weak) / (1 + weak), atol=1e-6)
+    assert torch.equal(window_expected_xy(p, 0), expected_xy(p))
+    p.requires_grad_(True)
+    window_expected_xy(p, 4).sum().backward()
+    assert float(p.grad[0, 0][np.exp(_gauss_logits(n, -cx, -cy, sigma)) > 0.5].abs().max()) == 0.0  # far bump: no pull
 
 
 def test_blobs_are_gaussians_at_the_points():

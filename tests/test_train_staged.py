@@ -271,7 +271,9 @@ def test_alike_objects_decide_the_shared_field():
 def test_fit_writes_the_resolved_field_sharing(rig, tmp_path):
     # "auto" is decided from the training frames and the run's config.toml holds the answer
     # (one pendulum bob: off), so forecasts rebuild the same field from the run folder.
+    # The keypoint read window (auto = -1) is decided the same way: whole heat maps for one bob.
     cfg = staged_cfg(12)
-    assert cfg.model.field_per_keypoint == "auto"
+    assert cfg.model.field_per_keypoint == "auto" and cfg.model.keypoint_window == C.WINDOW_AUTO
     fit([rig], tmp_path / "run", cfg, show_progress=False)
-    assert C.load(tmp_path / "run" / "config.toml").model.field_per_keypoint == "off"
+    saved = C.load(tmp_path / "run" / "config.toml").model
+    assert saved.field_per_keypoint == "off" and saved.keypoint_window == 0

@@ -63,6 +63,9 @@ class DataConfig:
         return 3 if self.color == "rgb" else 1
 
 
+WINDOW_AUTO = -1  # model.keypoint_window: decided by fit from the training frames
+
+
 @dataclass
 class ModelConfig:
     """Sizes and options of the latent ODE model."""
@@ -104,6 +107,21 @@ class ModelConfig:
                                    "off = one field over all coordinates at once; auto = on where the training "
                                    "frames show several separate moving objects of about the same size and "
                                    "contrast (decided by fit and written to the run's config)", choices=("auto", "on", "off"))
+    # auto (defaults 17): where the frames show alike objects a keypoint's heat map also holds mass on the
+    # other object (a conv net fires alike on alike things); a whole-map read is pulled towards it, or the
+    # encoder sharpens the map into one cell to suppress it and the keypoint snaps to the cell grid. Air
+    # table, 5-minute runs, per puck @20 frames, 3 cells against d16: classic s2 4.37 vs 6.01 the same day
+    # (8.6 the day before), s3 2.98 vs 3.8, s4 6.24 vs 10.0, s5 8.00 vs 8.0, dark on light s2 6.62 vs 12.7,
+    # gradient s2 12.14 vs 13.13, textured s2 13.84 vs 8.55 (better on 5 of 7 pairs; spread 5-13 px).
+    # On one object it hurt: spring classic s6 1.87 px (0.93-1.23 in five earlier runs), spring rod s6
+    # 1.73 (0.31-0.38), pendulum dark on light s6 4.92 (0.38-1.80), hence auto (DEVELOPERS.md, fourteenth session)
+    keypoint_window: int = _opt(WINDOW_AUTO, "keypoint encoder: read each keypoint within this many heat-map cells (2 px "
+                                "at 64 px) of its map's peak, so mass the map holds on another, alike object "
+                                "does not pull it (once the positions stage has found the objects; before, "
+                                "the whole map); 0 = over the whole map; -1 = auto: "
+                                "3 cells where the training frames show several alike separate objects (as "
+                                "model.field_per_keypoint auto), else 0 (decided by fit and written to the "
+                                "run's config)", lo=-1, hi=64)
     # True: in grey the air table's two pucks look alike and the encoder swapped them between frames;
     # same-day 5-minute bench/recipe.py pairs: air table s2 12.6 -> 7.3 px per puck @20, s3 5.8 -> 8.5
     # (no consistent gain shown); no keypoint reordered on single-object scenes (DEVELOPERS.md)
@@ -440,6 +458,19 @@ def _copy(cfg: Config) -> Config:
 def to_dict(cfg: Config) -> dict:
     """Nested plain dicts of the config (lists copied)."""
     return dataclasses.asdict(cfg)
+
+
+# Keys added after run folders were first written, with the value that reproduces the runs written
+# before them: a run's config.toml without the key is read with that value, not today's default.
+SAVED_RUN_ABSENT = {("model", "keypoint_window"): 0}
+
+
+def saved_run_base() -> Config:
+    """Defaults for reading a run folder's config.toml (:data:`SAVED_RUN_ABSENT` applied)."""
+    cfg = Config()
+    for (section, key), value in SAVED_RUN_ABSENT.items():
+        setattr(getattr(cfg, section), key, value)
+    return cfg
 
 
 def load(path: str | Path, base: Config | None = None) -> Config:

@@ -150,7 +150,7 @@ def load_run(run: str | Path, device: str | torch.device = "cpu", precision: str
 
     run = Path(run)
     check_run_folder(run)
-    cfg = cfgmod.load(run / CONFIG)
+    cfg = cfgmod.load(run / CONFIG, cfgmod.saved_run_base())
     tensors, meta = load_tensors(run / WEIGHTS)
     model = build_model(cfg, cfg.data.channels)
     restore_model(model, tensors, meta, run / WEIGHTS)

@@ -62,10 +62,13 @@ MAX_STD_BLOBS = 1.0
 # velocity from three such positions was wrong in size and sign. One cell is the width used for the
 # target heat maps of numerical coordinate regression (Nibali et al. 2018, σ = 1 heat-map pixel).
 HEAT_STD_CELLS = 1.0
+# Half-width, in heat-map cells, of the window a keypoint is read in where ``model.keypoint_window`` is
+# auto and the objects are alike: a bump HEAT_STD_CELLS wide is inside it to 3 std, and another object
+# (the air table's pucks are ~3 cells across) is outside it unless the two touch.
+AUTO_WINDOW_CELLS = 3
 
 __all__ = ["KeypointEncoder", "KeypointDecoder", "pixel_grid", "to_model_pixels", "spatial_softmax", "expected_xy",
-           "heat_map_shape",
-           "draw_blobs"]
+           "window_expected_xy", "heat_map_shape", "draw_blobs"]
 
 
 def pixel_grid(n: int, device=None, dtype=torch.float32) -> torch.Tensor:
@@ -110,10 +113,46 @@ def expected_xy(p: torch.Tensor) -> torch.Tensor:
     return torch.stack([x, y], dim=-1)
 
 
-def heat_map_shape(log_p: torch.Tensor, width_cells: float = HEAT_STD_CELLS) -> torch.Tensor:
+def window_expected_xy(p: torch.Tensor, radius: int) -> torch.Tensor:
+    """Expected (x, y) under each map ``p`` ``(B, K, H, W)`` restricted to the square of cells within
+    ``radius`` cells of its most probable cell (renormalised there) → ``(B, K, 2)``; ``radius`` 0 = the
+    whole map (:func:`expected_xy`).
+
+    The whole-map expectation is pulled towards any mass far from the peak: a conv net fires alike on
+    alike objects, so a keypoint's map also holds some mass on the other object, and the encoder can
+    only suppress it by sharpening the map into a cell (which snaps the keypoint to the cell grid).
+    Inside the window the far mass is ignored and the read follows the peak's own bump. Local
+    soft-argmax is common practice in heat-map keypoint regression (e.g. Sun et al. 2018, "Integral
+    human pose regression", ECCV, integrate the heat map; restricting the integral to a neighbourhood
+    of the maximum is the usual guard against multi-modal maps).
+
+    Examples
+    --------
+    >>> g = draw_blobs(torch.tensor([[[0.5, 0.0], [-0.5, 0.0]]]), 32, 2 / 32)
+    >>> p = g[:, :1] + 0.2 * g[:, 1:]  # one map: a bump at x = 0.5 and a weaker one at x = -0.5
+    >>> p = p / p.sum()
+    >>> round(float(expected_xy(p)[0, 0, 0]), 2), round(float(window_expected_xy(p, 3)[0, 0, 0]), 2)
+    (0.33, 0.5)
+    """
+    if radius <= 0:
+        return expected_xy(p)
+    B, K, H, W = p.shape
+    with torch.no_grad():
+        peak = p.flatten(2).argmax(-1)
+        rows = (torch.arange(H, device=p.device) - (peak // W)[..., None]).abs() <= radius  # (B, K, H)
+        cols = (torch.arange(W, device=p.device) - (peak % W)[..., None]).abs() <= radius   # (B, K, W)
+        inside = (rows[..., :, None] & cols[..., None, :]).to(p.dtype)
+    q = p * inside
+    return expected_xy(q / q.sum(dim=(2, 3), keepdim=True).clamp_min(torch.finfo(p.dtype).tiny))
+
+
+def heat_map_shape(log_p: torch.Tensor, width_cells: float = HEAT_STD_CELLS,
+                   centre: torch.Tensor | None = None) -> torch.Tensor:
     """Mean over maps of KL(g ‖ p), g a Gaussian bump of std ``width_cells`` cells at the map's own
     expected position (held fixed), normalised over the map's cells; ``log_p`` ``(B, K, H, W)`` are
-    the maps' log-probabilities (:func:`heat_softmax` with ``log``: no underflow when sharp).
+    the maps' log-probabilities (:func:`heat_softmax` with ``log``: no underflow when sharp);
+    ``centre`` ``(B, K, 2)``: where the bumps sit (default: the maps' own expected positions), e.g.
+    the keypoints as read by :func:`window_expected_xy`.
 
     Zero when a map is that bump; it grows without bound as a map sharpens into one cell (−log p of
     the cells around the peak), with a gradient that does not vanish there, unlike the spatial
@@ -133,7 +172,7 @@ def heat_map_shape(log_p: torch.Tensor, width_cells: float = HEAT_STD_CELLS) -> 
     0.0
     """
     B, K, H, W = log_p.shape
-    mean = expected_xy(log_p.exp()).detach()
+    mean = (expected_xy(log_p.exp()) if centre is None else centre).detach()
     cell = 2.0 / W  # normalised width of one cell
     g = draw_blobs(mean.reshape(B * K, 1, 2), W, width_cells * cell).reshape(B, K, H, W)
     g = g / g.sum(dim=(2, 3), keepdim=True)
@@ -167,8 +206,9 @@ class KeypointEncoder(nn.Module):
     """
 
     def __init__(self, channels: int, size: int, base: int, keypoints: int, init_std: float = INIT_STD,
-                 max_std: float = 1.0):
+                 max_std: float = 1.0, window: int = 0):
         super().__init__()
+        self.window = max(0, int(window))  # read each map within this many cells of its peak (0: whole map)
         self.logvar_max = 2.0 * math.log(max_std)
         c = max(8, base // 2)
         self.size, self.half, self.k = size, _half(size), keypoints
@@ -189,13 +229,15 @@ class KeypointEncoder(nn.Module):
             self.logvar.bias.fill_(2.0 * math.log(self.init_std))
         return [self.logvar.weight, self.logvar.bias]
 
-    def forward(self, x: torch.Tensor, background: torch.Tensor, with_maps: bool = False) -> tuple:
+    def forward(self, x: torch.Tensor, background: torch.Tensor, with_maps: bool = False,
+                whole_map: bool = False) -> tuple:
         """Means and log-variances (B, 2K); with ``with_maps`` also the heat maps' log-probabilities
-        (B, K, h, w)."""
+        (B, K, h, w). The means are read within ``window`` cells of each map's peak
+        (:func:`window_expected_xy`), or over the whole map where ``whole_map`` or ``window`` is 0."""
         h = self.trunk(torch.cat([x, x - background.to(x)], dim=1))
         heat = self.heat(h)
         log_maps = heat_softmax(heat, log=True)
-        points = expected_xy(log_maps.exp())
+        points = window_expected_xy(log_maps.exp(), 0 if whole_map else self.window)
         logvar = bounded_logvar(self.logvar(h.mean(dim=(2, 3))), self.logvar_max)
         return (points.flatten(1), logvar, log_maps) if with_maps else (points.flatten(1), logvar)
 

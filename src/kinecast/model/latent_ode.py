@@ -100,7 +100,8 @@ class LatentODE(nn.Module):
         self.channels, self.size = int(channels), int(size)
         if self.keypoints:
             self.pos_enc = KeypointEncoder(channels, size, model_cfg.enc_channels, model_cfg.keypoints,
-                                           max_std=MAX_STD_BLOBS * model_cfg.blob_std)
+                                           max_std=MAX_STD_BLOBS * model_cfg.blob_std,
+                                           window=model_cfg.keypoint_window)
             self.decoder = KeypointDecoder(model_cfg.keypoints, channels, size, model_cfg.dec_channels,
                                            model_cfg.blob_std)
         else:

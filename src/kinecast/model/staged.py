@@ -90,7 +90,7 @@ def keypoint_coverage(points: torch.Tensor, weights: torch.Tensor, width: float)
 
 
 def autoencoder_terms(model, frames: torch.Tensor, sample: bool, beta: float, repulsion: float = 0.0,
-                      coverage: float = 0.0, shape: float = 0.0) -> dict:
+                      coverage: float = 0.0, shape: float = 0.0, whole_map: bool = False) -> dict:
     """Frame autoencoder loss per pixel: frames [N, C, H, W] → position → frame.
 
     Returns ``loss`` (NLL + beta·KL(q(s)‖N(0, I)) per pixel, plus ``repulsion`` × the keypoints'
@@ -98,12 +98,15 @@ def autoencoder_terms(model, frames: torch.Tensor, sample: bool, beta: float, re
     plus ``coverage`` × their :func:`keypoint_coverage` of the foreground at the encoder's resolution,
     plus ``shape`` × the heat maps' :func:`~kinecast.model.keypoints.heat_map_shape`), ``nll``,
     ``kl_s0``, ``mse`` (of the reconstruction), ``bg_mse`` (of the background alone, for the escape
-    test), ``overlap``, ``coverage`` and ``heat_shape``.
+    test), ``overlap``, ``coverage`` and ``heat_shape``. ``whole_map``: keypoints read over their whole
+    heat maps whatever ``model.keypoint_window`` says (before the object is found, when a map's peak
+    is anywhere).
     """
     heat = None
-    if model.keypoints and shape > 0:
-        mean, logvar, log_maps = model.pos_enc(frames, model.background, with_maps=True)
-        heat = heat_map_shape(log_maps)
+    if model.keypoints:
+        mean, logvar, log_maps = model.pos_enc(frames, model.background, with_maps=True, whole_map=whole_map)
+        if shape > 0:
+            heat = heat_map_shape(log_maps, centre=mean.view(log_maps.shape[0], -1, 2))
     else:
         mean, logvar = model.encode_positions(frames)
     s = mean + (0.5 * logvar).exp() * torch.randn_like(mean) if sample else mean

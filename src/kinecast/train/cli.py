@@ -40,7 +40,7 @@ def run(args, cfg) -> int:
         from ..runfolder import CONFIG, check_run_folder
 
         check_run_folder(Path(args.resume), need_resume=True)
-        cfg = cfgmod.apply_overrides(cfgmod.load(Path(args.resume) / CONFIG), args.overrides)
+        cfg = cfgmod.apply_overrides(cfgmod.load(Path(args.resume) / CONFIG, cfgmod.saved_run_base()), args.overrides)
         out = args.resume
     else:
         if not args.out:

@@ -24,6 +24,7 @@ from .. import config as cfgmod
 from ..errors import KinecastError
 from ..fileio import check_can_create, write_with
 from ..model import build_model, time_scale_from_times, to_model_time
+from ..model.keypoints import AUTO_WINDOW_CELLS
 from ..model.precision import in_use as precision_in_use, resolve as resolve_precision, use_precision
 from ..model.staged import autoencoder_terms, dynamics_terms
 from .. import runfolder as rf
@@ -253,8 +254,9 @@ class _Data:
     @classmethod
     def load(cls, paths: list[Path], cfg, rank: int) -> "_Data":
         """Read ``paths``; resolves ``cfg.solver.time_scale`` = 0 from their times and
-        ``cfg.model.field_per_keypoint`` = "auto" from the objects they show (on the run's private
-        copy of the config; the run's config.toml keeps the resolved values)."""
+        ``cfg.model.field_per_keypoint`` = "auto" and ``cfg.model.keypoint_window`` = -1 (auto) from
+        the objects they show (on the run's private copy of the config; the run's config.toml keeps the
+        resolved values)."""
         recs = load_recordings(paths, cfg)
         where = {id(r): str(p) for r, p in zip(recs, paths)}
         k = cfg.model.velocity_frames
@@ -270,8 +272,12 @@ class _Data:
         val_sampler = WindowSampler(val or train, k, 0)
         background = median_background(train) if cfg.model.background else None
         dyn_longest, period = S.dynamics_window(train, background, cfg, sampler.longest_window())
-        if cfg.model.field_per_keypoint == "auto":  # resolved here, so the run's config.toml holds on / off
-            cfg.model.field_per_keypoint = "on" if S.alike_objects(train, background) else "off"
+        if cfg.model.field_per_keypoint == "auto" or cfg.model.keypoint_window == cfgmod.WINDOW_AUTO:
+            alike = S.alike_objects(train, background)  # resolved here: config.toml holds what was used
+            if cfg.model.field_per_keypoint == "auto":
+                cfg.model.field_per_keypoint = "on" if alike else "off"
+            if cfg.model.keypoint_window == cfgmod.WINDOW_AUTO:
+                cfg.model.keypoint_window = AUTO_WINDOW_CELLS if alike else 0
         return cls(paths, where, train, val, sampler, val_sampler, longest,
                    min(val_sampler.longest_window(), 3 * longest), sum(r.n_frames for r in train),
                    background, max(dyn_longest, k + 1), period)
@@ -341,7 +347,7 @@ class _Trainer:
             rf.check_run_folder(run, need_resume=True)
             resumed = ck.load_resume(run)
             paths = paths or resumed[1]["paths"]
-            cfg = cfg or cfgmod.load(run / rf.CONFIG)
+            cfg = cfg or cfgmod.load(run / rf.CONFIG, cfgmod.saved_run_base())
         cfg = cfgmod.from_dict(cfgmod.to_dict(cfg or cfgmod.Config()))  # a private, validated copy
         if resume and more:
             _extend_budget(cfg.train, resumed[1])
@@ -496,7 +502,8 @@ class _Trainer:
             beta = cfg.train.positions_kl * local if sampling else 0.0
             terms = autoencoder_terms(self.model, frames, sample=sampling, beta=beta,
                                       repulsion=cfg.train.keypoint_repulsion, coverage=cfg.train.keypoint_coverage,
-                                      shape=cfg.train.heat_map_shape if sampling else 0.0)
+                                      shape=cfg.train.heat_map_shape if sampling else 0.0,
+                                      whole_map=not sampling)
             errors = D.mean_over_ranks(self.ctx, [float(terms["mse"]), float(terms["bg_mse"])])
             return terms, window, beta, self._watch_escape(errors)
         if stage == S.DYNAMICS:

@@ -214,9 +214,10 @@ def alike_objects(recs, background) -> bool:
     frame of :func:`~kinecast.frames.tracks.find_objects` (separate foreground pieces; every
     :data:`OBJECT_COUNT_STRIDE`-th present frame) is at least 2 and, in frames with two or more,
     the second-heaviest piece has a median of at least :data:`ALIKE_WEIGHT` of the heaviest's
-    foreground. Decides ``model.field_per_keypoint = "auto"``: alike separate objects (pucks,
-    beads) get one acceleration field shared by the keypoints; a body seen in two unequal pieces (a
-    spring's mass and coil, a ball and its shadow) does not."""
+    foreground. Decides ``model.field_per_keypoint = "auto"`` and ``model.keypoint_window = -1``:
+    alike separate objects (pucks, beads) get one acceleration field shared by the keypoints and
+    keypoints read around their heat maps' peaks; a body seen in two unequal pieces (a spring's mass
+    and coil, a ball and its shadow) does not."""
     counts, ratios = [], []
     for r in recs:
         for _, weight in tracks.find_objects(r.frames[~r.missing][::OBJECT_COUNT_STRIDE], background,
