@@ -121,10 +121,10 @@ def window_expected_xy(p: torch.Tensor, radius: int) -> torch.Tensor:
     The whole-map expectation is pulled towards any mass far from the peak: a conv net fires alike on
     alike objects, so a keypoint's map also holds some mass on the other object, and the encoder can
     only suppress it by sharpening the map into a cell (which snaps the keypoint to the cell grid).
-    Inside the window the far mass is ignored and the read follows the peak's own bump. Local
-    soft-argmax is common practice in heat-map keypoint regression (e.g. Sun et al. 2018, "Integral
-    human pose regression", ECCV, integrate the heat map; restricting the integral to a neighbourhood
-    of the maximum is the usual guard against multi-modal maps).
+    Inside the window the far mass is ignored and the read follows the peak's own bump. Integrating
+    a heat map for a coordinate is Sun et al. (2018), "Integral human pose regression", ECCV;
+    integrating only near the maximum against multi-modal maps is common practice (stated from
+    memory, no single source).
 
     Examples
     --------
@@ -208,7 +208,9 @@ class KeypointEncoder(nn.Module):
     def __init__(self, channels: int, size: int, base: int, keypoints: int, init_std: float = INIT_STD,
                  max_std: float = 1.0, window: int = 0):
         super().__init__()
-        self.window = max(0, int(window))  # read each map within this many cells of its peak (0: whole map)
+        # read each map within this many cells of its peak; 0, or auto (-1) not yet resolved by fit
+        # (a model built directly from the defaults), reads the whole map
+        self.window = max(0, int(window))
         self.logvar_max = 2.0 * math.log(max_std)
         c = max(8, base // 2)
         self.size, self.half, self.k = size, _half(size), keypoints
