@@ -112,7 +112,8 @@ class ModelConfig:
     # encoder sharpens the map into one cell to suppress it and the keypoint snaps to the cell grid. Air
     # table, 5-minute runs, per puck @20 frames, 3 cells against d16: classic s2 4.37 vs 6.01 the same day
     # (8.6 the day before), s3 2.98 vs 3.8, s4 6.24 vs 10.0, s5 8.00 vs 8.0, dark on light s2 6.62 vs 12.7,
-    # gradient s2 12.14 vs 13.13, textured s2 13.84 vs 8.55 (better on 5 of 7 pairs; spread 5-13 px).
+    # s6 6.11 vs 11.19, gradient s2 12.14 vs 13.13, textured s2 13.84 vs 8.55, drift + noise s2 5.68 vs 7.26
+    # (better on 7 of 9 pairs, median 6.2 vs 8.6; one seed's spread 5-13 px).
     # On one object it hurt: spring classic s6 1.87 px (0.93-1.23 in five earlier runs), spring rod s6
     # 1.73 (0.31-0.38), pendulum dark on light s6 4.92 (0.38-1.80), hence auto (DEVELOPERS.md, fourteenth session)
     keypoint_window: int = _opt(WINDOW_AUTO, "keypoint encoder: read each keypoint within this many heat-map cells (2 px "
