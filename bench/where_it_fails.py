@@ -12,8 +12,8 @@ trial, in model pixels:
   followed from frame to frame, ``model.keypoint_tracking``), over forecast frames 1-20 and 1-60;
 - how often following the keypoints changed the encoder's order between consecutive frames (the
   encoder swapping alike objects; 0 on a single-object scene);
-- the heat maps' shape: mean probability of a map's most probable cell (about 0.16 for a bump one
-  cell wide; near 1 when a map has sharpened into one cell and snaps its keypoint to the cell grid)
+- the heat maps' shape: mean probability of a map's most probable cell (1/(2π) ≈ 0.16 for a
+  Gaussian bump of one cell's std, closed form; near 1 when a map has sharpened into one cell and snaps its keypoint to the cell grid)
   and the share of a map's mass farther than ``FAR_CELLS`` cells from that cell (mass on another
   object, which pulls a whole-map read; ``model.keypoint_window`` reads around the peak instead).
 

@@ -463,7 +463,9 @@ def to_dict(cfg: Config) -> dict:
 
 # Keys added after run folders were first written, with the value that reproduces the runs written
 # before them: a run's config.toml without the key is read with that value, not today's default.
-SAVED_RUN_ABSENT = {("model", "keypoint_window"): 0}
+# (field_per_keypoint: runs from before the key had one field over all coordinates; unresolved "auto"
+# would build that too, but only by accident of LatentODE testing for "on")
+SAVED_RUN_ABSENT = {("model", "keypoint_window"): 0, ("model", "field_per_keypoint"): "off"}
 
 
 def saved_run_base() -> Config:
