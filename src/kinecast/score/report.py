@@ -31,7 +31,7 @@ CAUTIONS = [
 STYLE = """body{font-family:system-ui,sans-serif;max-width:1100px;margin:2em auto;padding:0 1em;color:#222}
 h1{font-size:1.5em}h2{font-size:1.2em;border-bottom:1px solid #ccc;padding-bottom:.2em;margin-top:2em}
 .caution{background:#fff4e0;border-left:4px solid #d9822b;padding:.6em 1em}
-table{border-collapse:collapse}td,th{border:1px solid #ccc;padding:.25em .6em;text-align:right}
+table{border-collapse:collapse;display:block;max-width:100%;overflow-x:auto}td,th{border:1px solid #ccc;padding:.25em .6em;text-align:right}
 th:first-child,td:first-child{text-align:left}img,video{max-width:100%}pre{background:#f6f6f6;padding:1em;overflow:auto}
 .facts td{text-align:left}"""
 MSE_SCALE = "intensities 0 to 1"  # frames are scaled to [0, 1] before scoring
@@ -282,7 +282,8 @@ def build_report(run: str | Path, scores: list = (), clips: list = ()) -> str:
     config_text = (run / rf.CONFIG).read_text()
     training, technical = _training_section(summary)
     parts = [
-        "<!doctype html><html><head><meta charset='utf-8'>",
+        "<!doctype html><html><head><meta charset='utf-8'>"
+        "<meta name='viewport' content='width=device-width, initial-scale=1'>",
         f"<title>kinecast report: {html.escape(run.name)}</title><style>{STYLE}</style></head><body>",
         f"<h1>kinecast report: {html.escape(str(run))}</h1>",
         "<div class='caution'><strong>Cautions</strong><ul>"
