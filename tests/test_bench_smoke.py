@@ -147,3 +147,21 @@ def test_coverage_rows_judge_against_the_issue_goal():
     got = {r.measure.split(" coverage")[0]: r.met for r in rows if r.area == "coverage"}
     assert got == {"pendulum: second_order position": True, "pendulum: second_order object band": False,
                    "pendulum: first_order position": False, "pendulum: first_order object band": None}
+
+
+def test_recipe_bench_rates_stages_and_judges_by_the_issue_rules(tmp_path):
+    # Steps per second by stage from log.csv: hand-computed from the rows below (stage 1 steps 10-30
+    # in 1 s, stage 2 steps 40-80 in 2 s). Success rules from the learning issue: one object ≤ 2 px
+    # @60 and period within 3 %; the air table per puck ≤ 3 px @20, whatever the tracker's count of
+    # pieces (a ball and its shadow are two pieces, still one object).
+    from bench import recipe
+    from kinecast.runfolder import write_log
+
+    write_log(tmp_path, [{"step": 10, "time_s": 1.0, "stage": 1}, {"step": 30, "time_s": 2.0, "stage": 1},
+                         {"step": 40, "time_s": 3.0, "stage": 2}, {"step": 80, "time_s": 5.0, "stage": 2}])
+    assert recipe.stage_rates(tmp_path) == {"positions": 20.0, "dynamics": 20.0}
+    ball = {"rig": "foreign", "objects": 2.0, "pos_model": 2.9, "obj20_model": 2.4, "period_truth": math.nan,
+            "period_error": math.nan}
+    assert not recipe.succeeded(ball) and recipe.succeeded(dict(ball, pos_model=1.9))
+    assert recipe.succeeded(dict(ball, rig="airtable")) and not recipe.succeeded(dict(ball, rig="airtable", obj20_model=3.1))
+    assert not recipe.succeeded({"rig": "pendulum", "pos_model": 1.0, "period_truth": 1.0, "period_error": 0.04})
