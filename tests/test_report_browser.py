@@ -21,10 +21,7 @@ import imageio.v3 as iio
 import numpy as np
 import pytest
 
-from kinecast import config as C
 from kinecast.cli import main
-from kinecast.rigs import write_rig
-from kinecast.train import fit
 
 CHROMIUM = shutil.which("chromium") or "/usr/bin/chromium"
 DRIVER = shutil.which("chromedriver") or "/usr/bin/chromedriver"
@@ -64,20 +61,13 @@ def _browser():
 
 
 @pytest.fixture(scope="module")
-def page(tmp_path_factory):
-    root = tmp_path_factory.mktemp("rb")
-    write_rig("pendulum", root / "rig", trials=2, frames=40, seed=1, size=32, fps=20.0)
-    cfg = C.apply_overrides(C.Config(), [
-        "data.size=32", "model.latent_dim=4", "model.enc_channels=8", "model.dec_channels=8",
-        "model.hidden=16", "train.batch=2", "train.val_every=5", "train.steps=6", "train.budget=0",
-        "train.threads=1", "train.window_start=6"])
-    fit([root / "rig"], root / "run", cfg, show_progress=False)
-    scores = root / "scores"
+def page(small_pendulum_run, tmp_path_factory):
+    root, out = small_pendulum_run, tmp_path_factory.mktemp("rb")  # conftest.py: a rig and a 6-step fit
+    scores = out / "scores"
     assert main(["score", str(root / "run"), str(root / "rig" / "trial_001"), "--holdout", "last:20",
                  "--samples", "4", "--out", str(scores)]) == 0
-    out = root / "report.html"
-    assert main(["report", str(root / "run"), "--scores", str(scores), "--out", str(out)]) == 0
-    return out
+    assert main(["report", str(root / "run"), "--scores", str(scores), "--out", str(out / "report.html")]) == 0
+    return out / "report.html"
 
 
 @pytest.mark.slow

@@ -19,21 +19,13 @@ from kinecast.cli import main
 from kinecast.frames import read_recording
 from kinecast.plots import method_label
 from kinecast.rigs import write_rig
-from kinecast.train import fit
 
 METHODS = {"model", "background_only", "persistence", "constant_velocity", "flow_warp"}
 
 
 @pytest.fixture(scope="module")
-def setup(tmp_path_factory):
-    root = tmp_path_factory.mktemp("sc")
-    write_rig("pendulum", root / "rig", trials=2, frames=40, seed=1, size=32, fps=20.0)
-    cfg = C.apply_overrides(C.Config(), [
-        "data.size=32", "model.latent_dim=4", "model.enc_channels=8", "model.dec_channels=8",
-        "model.hidden=16", "train.batch=2", "train.val_every=5", "train.steps=6", "train.budget=0",
-        "train.threads=1", "train.window_start=6"])
-    fit([root / "rig"], root / "run", cfg, show_progress=False)
-    return root
+def setup(small_pendulum_run):
+    return small_pendulum_run  # conftest.py: a rig and a 6-step fit on it
 
 
 def test_score_writes_every_method_and_matches_skimage(setup, tmp_path, capsys):
