@@ -31,7 +31,7 @@ CAUTIONS = [
 STYLE = """body{font-family:system-ui,sans-serif;max-width:1100px;margin:2em auto;padding:0 1em;color:#222}
 h1{font-size:1.5em}h2{font-size:1.2em;border-bottom:1px solid #ccc;padding-bottom:.2em;margin-top:2em}
 .caution{background:#fff4e0;border-left:4px solid #d9822b;padding:.6em 1em}
-table{border-collapse:collapse;display:block;max-width:100%;overflow-x:auto}td,th{border:1px solid #ccc;padding:.25em .6em;text-align:right}
+table{border-collapse:collapse}.wide{max-width:100%;overflow-x:auto}td,th{border:1px solid #ccc;padding:.25em .6em;text-align:right}
 th:first-child,td:first-child{text-align:left}img,video{max-width:100%}pre{background:#f6f6f6;padding:1em;overflow:auto}
 .facts td{text-align:left}"""
 MSE_SCALE = "intensities 0 to 1"  # frames are scaled to [0, 1] before scoring
@@ -161,7 +161,13 @@ def _fmt(v, unit: str = "") -> str:
 
 def _facts_table(rows: list[tuple[str, str]]) -> str:
     body = "".join(f"<tr><td>{html.escape(name)}</td><td>{value}</td></tr>" for name, value in rows)
-    return f"<table class='facts'>{body}</table>"
+    return _wide(f"<table class='facts'>{body}</table>")
+
+
+def _wide(table: str) -> str:
+    """A table in a box that scrolls sideways on a narrow screen (the page itself never does; the
+    table keeps its table semantics for screen readers, which ``display: block`` on it can drop)."""
+    return f"<div class='wide'>{table}</div>"
 
 
 def _technical(title: str, items: dict) -> str:
@@ -249,7 +255,7 @@ def _scores_section(folder: Path, run: Path, digest: str) -> tuple[str, str]:
              f"<p class='caution'><strong>Verdict ({html.escape(str(verdict['level']))}):</strong> "
              f"{html.escape(str(verdict['text']))}</p>" if "text" in verdict and "level" in verdict else "",
              _facts_table(facts),
-             "<table><tr>" + "".join(f"<th>{html.escape(h)}</th>" for h in head) + f"</tr>{rows}</table>"]
+             _wide("<table><tr>" + "".join(f"<th>{html.escape(h)}</th>" for h in head) + f"</tr>{rows}</table>")]
     if periods:
         parts.append("<p>Dominant oscillation period: " + "; ".join(
             f"{html.escape(PERIOD_NAMES.get(k, k.removesuffix('_s').replace('_', ' ')))} {_fmt(v, 's')}"
