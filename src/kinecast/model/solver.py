@@ -5,8 +5,9 @@ scale from the data so that one median frame interval is ``cfg.solver.units_per_
 :func:`time_scale_from_times` computes that value.
 
 Fixed-step methods (rk4, euler, midpoint) step on a grid that holds every output time exactly, with
-``cfg.solver.substeps`` equal steps inside each output interval, so irregular frame times never go
-through interpolation. Adaptive dopri5 uses ``rtol``/``atol``. Times may decrease (integration
+``cfg.solver.substeps`` equal steps per frame interval (``cfg.solver.units_per_frame``) inside each
+output interval, so irregular frame times never go through interpolation and an output interval
+spanning several frames is not crossed in steps larger than the field was trained with. Adaptive dopri5 uses ``rtol``/``atol``. Times may decrease (integration
 backward in time).
 
 References
@@ -26,37 +27,56 @@ import torch
 from torchdiffeq import odeint, odeint_adjoint
 
 FIXED_STEP_METHODS = ("rk4", "euler", "midpoint")
+# An output interval up to this fraction of a frame longer than a whole number of frames counts as that
+# number (frame-time jitter does not add steps).
+FRAME_TOLERANCE = 1e-3
 ADAPTIVE_METHODS = ("dopri5",)
 # torchdiffeq's own method names (its "rk4" is the fourth-order Runge-Kutta 3/8 rule)
 METHODS = FIXED_STEP_METHODS + ADAPTIVE_METHODS
 
 
-def step_grid(t: torch.Tensor, substeps: int) -> torch.Tensor:
-    """Integration grid with ``substeps`` equal steps inside each interval of increasing ``t``.
+def step_grid(t: torch.Tensor, substeps: int, frame: float | None = None) -> torch.Tensor:
+    """Integration grid with ``substeps`` equal steps per frame interval inside each interval of ``t``.
 
     Every entry of ``t`` is in the grid exactly (bit for bit), so the solver's output at those times
-    needs no interpolation.
+    needs no interpolation. With ``frame`` (the model time of one frame interval), an output interval
+    spanning several frames gets ``substeps`` steps per frame it spans (rounded up): the step never
+    grows past the one the field was trained with, whichever times a caller asks for (a forecast
+    from the context to its first future frame, frames on both sides of a dropped stretch). Without
+    it, every output interval gets ``substeps`` steps.
 
     Parameters
     ----------
     t : Tensor, shape (N,)
-        Strictly increasing times.
+        Strictly increasing (or strictly decreasing) times.
     substeps : int
-        Steps per interval (at least 1).
+        Steps per interval, or per frame interval with ``frame`` (at least 1).
+    frame : float, optional
+        Model time of one frame interval (``solver.units_per_frame``).
 
     Returns
     -------
-    Tensor, shape ((N − 1) · substeps + 1,)
+    Tensor, shape (1 + total steps,)
 
     Examples
     --------
     >>> step_grid(torch.tensor([0.0, 1.0, 1.5]), 2).tolist()
     [0.0, 0.5, 1.0, 1.25, 1.5]
+    >>> step_grid(torch.tensor([0.0, 3.0, 4.0]), 2, frame=1.0).tolist()
+    [0.0, 0.5, 1.0, 1.5, 2.0, 2.5, 3.0, 3.5, 4.0]
     """
     if len(t) < 2:
         return t.clone()
-    frac = torch.arange(substeps, dtype=t.dtype, device=t.device) / substeps
-    inner = (t[:-1, None] + (t[1:] - t[:-1])[:, None] * frac[None, :]).reshape(-1)
+    gaps = t[1:] - t[:-1]
+    if frame is None:
+        counts = torch.full(gaps.shape, substeps, dtype=torch.long, device=t.device)
+    else:  # frames spanned, rounded up past a 0.1 % tolerance (one frame of jitter stays one frame)
+        spans = torch.ceil(gaps.abs().double() / float(frame) - FRAME_TOLERANCE).clamp(min=1).long()
+        counts = spans * substeps
+    which = torch.repeat_interleave(torch.arange(len(gaps), device=t.device), counts)
+    first = torch.cumsum(counts, 0) - counts
+    frac = (torch.arange(len(which), device=t.device) - first[which]).to(t.dtype) / counts[which].to(t.dtype)
+    inner = t[:-1][which] + gaps[which] * frac
     return torch.cat([inner, t[-1:]])
 
 
@@ -117,7 +137,8 @@ def solve(field: Callable[[torch.Tensor, torch.Tensor], torch.Tensor], state0: t
         n = int(solver_cfg.substeps)
         if n < 1:
             raise ValueError(f"solve: substeps must be at least 1, got {n}")
-        kwargs["options"] = {"grid_constructor": lambda _f, _y0, tt: step_grid(tt, n)}
+        frame = float(solver_cfg.units_per_frame)
+        kwargs["options"] = {"grid_constructor": lambda _f, _y0, tt: step_grid(tt, n, frame)}
     else:
         kwargs["rtol"] = float(solver_cfg.rtol)
         kwargs["atol"] = float(solver_cfg.atol)
