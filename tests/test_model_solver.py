@@ -121,11 +121,12 @@ def test_step_grid_holds_every_output_time_exactly():
 
 def test_step_grid_steps_per_frame_across_long_intervals():
     # Source: definition of "substeps per frame interval" (solver.substeps): an output interval that
-    # spans three frames gets three frames' worth of steps; a frame of timing jitter (0.05 %) adds none.
-    grid = step_grid(torch.tensor([0.0, 0.3, 0.4, 0.50005], dtype=torch.float64), 2, frame=0.1)
-    assert len(grid) == 6 + 2 + 2 + 1
+    # spans three frames gets three frames' worth of steps; timing jitter (0.05 %, 20 % of a frame)
+    # adds none, a gap of 1.3 frames gets two frames' worth (solver.FRAME_TOLERANCE, a quarter frame).
+    grid = step_grid(torch.tensor([0.0, 0.3, 0.4, 0.50005, 0.62, 0.75], dtype=torch.float64), 2, frame=0.1)
+    assert len(grid) == 6 + 2 + 2 + 2 + 4 + 1
     np.testing.assert_allclose(grid[:7].numpy(), np.arange(7) * 0.05, atol=1e-15)
-    assert grid[6] == 0.3 and grid[8] == 0.4 and grid[-1] == 0.50005
+    assert grid[6] == 0.3 and grid[8] == 0.4 and grid[10] == 0.50005 and grid[-1] == 0.75
     backward = step_grid(torch.tensor([0.0, -0.3]), 2, frame=0.1)  # time running backward
     assert len(backward) == 7 and (backward[1:] < backward[:-1]).all()
 

@@ -28,8 +28,9 @@ from torchdiffeq import odeint, odeint_adjoint
 
 FIXED_STEP_METHODS = ("rk4", "euler", "midpoint")
 # An output interval up to this fraction of a frame longer than a whole number of frames counts as that
-# number (frame-time jitter does not add steps).
-FRAME_TOLERANCE = 1e-3
+# number: frame-time jitter in a real video (a few % of a frame) must not double the steps of every
+# training window; the step then grows by at most this share over the trained one (our choice).
+FRAME_TOLERANCE = 0.25
 ADAPTIVE_METHODS = ("dopri5",)
 # torchdiffeq's own method names (its "rk4" is the fourth-order Runge-Kutta 3/8 rule)
 METHODS = FIXED_STEP_METHODS + ADAPTIVE_METHODS
@@ -70,7 +71,7 @@ def step_grid(t: torch.Tensor, substeps: int, frame: float | None = None) -> tor
     gaps = t[1:] - t[:-1]
     if frame is None:
         counts = torch.full(gaps.shape, substeps, dtype=torch.long, device=t.device)
-    else:  # frames spanned, rounded up past a 0.1 % tolerance (one frame of jitter stays one frame)
+    else:  # frames spanned, rounded up past FRAME_TOLERANCE (a jittered frame interval stays one frame)
         spans = torch.ceil(gaps.abs().double() / float(frame) - FRAME_TOLERANCE).clamp(min=1).long()
         counts = spans * substeps
     which = torch.repeat_interleave(torch.arange(len(gaps), device=t.device), counts)
