@@ -7,8 +7,8 @@ scale from the data so that one median frame interval is ``cfg.solver.units_per_
 Fixed-step methods (rk4, euler, midpoint) step on a grid that holds every output time exactly, with
 ``cfg.solver.substeps`` equal steps per frame interval (``cfg.solver.units_per_frame``) inside each
 output interval, so irregular frame times never go through interpolation and an output interval
-spanning several frames is not crossed in steps larger than the field was trained with. Adaptive dopri5 uses ``rtol``/``atol``. Times may decrease (integration
-backward in time).
+spanning several frames is not crossed in steps larger than the field was trained with. Adaptive
+dopri5 uses ``rtol``/``atol``. Times may decrease (integration backward in time).
 
 References
 ----------
@@ -41,10 +41,11 @@ def step_grid(t: torch.Tensor, substeps: int, frame: float | None = None) -> tor
 
     Every entry of ``t`` is in the grid exactly (bit for bit), so the solver's output at those times
     needs no interpolation. With ``frame`` (the model time of one frame interval), an output interval
-    spanning several frames gets ``substeps`` steps per frame it spans (rounded up): the step never
-    grows past the one the field was trained with, whichever times a caller asks for (a forecast
-    from the context to its first future frame, frames on both sides of a dropped stretch). Without
-    it, every output interval gets ``substeps`` steps.
+    spanning several frames gets ``substeps`` steps per frame it spans (rounded up past
+    :data:`FRAME_TOLERANCE`): the step stays within that share of the one the field was trained
+    with, whichever times a caller asks for (a forecast from the context to its first future frame,
+    frames on both sides of a dropped stretch). Without it, every output interval gets ``substeps``
+    steps.
 
     Parameters
     ----------
@@ -72,7 +73,7 @@ def step_grid(t: torch.Tensor, substeps: int, frame: float | None = None) -> tor
     if frame is None:
         counts = torch.full(gaps.shape, substeps, dtype=torch.long, device=t.device)
     else:  # frames spanned, rounded up past FRAME_TOLERANCE (a jittered frame interval stays one frame)
-        spans = torch.ceil(gaps.abs().double() / float(frame) - FRAME_TOLERANCE).clamp(min=1).long()
+        spans = torch.ceil(gaps.abs() / float(frame) - FRAME_TOLERANCE).clamp(min=1).long()
         counts = spans * substeps
     which = torch.repeat_interleave(torch.arange(len(gaps), device=t.device), counts)
     first = torch.cumsum(counts, 0) - counts
