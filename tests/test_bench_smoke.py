@@ -149,6 +149,22 @@ def test_coverage_rows_judge_against_the_issue_goal():
                    "pendulum: first_order position": False, "pendulum: first_order object band": None}
 
 
+def test_time_to_quality_rows_judge_each_rig_against_the_issue_goal():
+    # The speed issue's goals: the pendulum's 3·W forecast MSE at ≤ 1/10 of persistence's within
+    # 120 s of training, every other rig within 300 s (bench.quality TTQ_GOAL_S / TTQ_GOAL_OTHER_S).
+    from bench.quality import TTQ_GOAL_OTHER_S, TTQ_GOAL_S
+    from bench.rows import time_to_quality_rows
+
+    assert TTQ_GOAL_S == {"pendulum": 120.0} and TTQ_GOAL_OTHER_S == 300.0
+    at = lambda s: {"reached": {"time_s": s, "step": 10}, "best_ratio": 0.05, "curve": [{}]}
+    never = {"reached": None, "best_ratio": 0.6, "curve": [{}, {}]}
+    met = lambda rig, t: [r.met for r in time_to_quality_rows(rig, {"second_order": t}, "5m")]
+    assert met("pendulum", at(150.0)) == [False] and met("pendulum", at(110.0)) == [True]
+    assert met("spring", at(150.0)) == [True] and met("spring", at(310.0)) == [False]
+    assert met("airtable", never) == [False]
+    assert "not reached in 5m" in time_to_quality_rows("airtable", {"first_order": never}, "5m")[0].value
+
+
 def test_recipe_bench_rates_stages_and_judges_by_the_issue_rules(tmp_path):
     # Steps per second by stage from log.csv: hand-computed from the rows below (stage 1 steps 10-30
     # in 1 s, stage 2 steps 40-80 in 2 s). Success rules from the learning issue: one object ≤ 2 px
