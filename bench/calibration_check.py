@@ -55,7 +55,7 @@ def main(argv=None) -> int:
             for trial in args.trials:
                 rec = read_recording(trial, cfg.data)
                 k = cfg.model.velocity_frames
-                m = evaluate(model, cfg, rec, 0, k, HORIZON, samples=SAMPLES)["summary"]["model"]
+                m = evaluate(model, cfg, rec, 0, k, HORIZON, samples=SAMPLES, baselines=False)["summary"]["model"]
                 for name, key in KEYS.items():
                     got[name].append(m.get(key, float("nan")))
             print(f"  {label}: " + "; ".join(f"{name} {np.round(v, 2).tolist()}" for name, v in got.items()))

@@ -263,6 +263,33 @@ def success_table(rows: list[dict]) -> str:
     return "\n".join(lines) + "\n"
 
 
+def old_recipe_rows(rows: list[dict]) -> list[dict]:
+    """The rows of the old recipe (end to end from the first step, dense encoder), scored as today's."""
+    return [r for r in rows if not r.get("excluded") and r.get("recipe") == "end_to_end"
+            and r.get("budget") == "5m" and r.get("tracker") == TRACKER and r.get("scoring") == SCORING]
+
+
+def side_by_side_table(rows: list[dict]) -> str:
+    """Today's staged defaults beside the old end-to-end recipe, per rig × look that has runs of both."""
+    today: dict[tuple, list] = {}
+    for r in todays_rows(rows):
+        today.setdefault((r["rig"], r["look"]), []).append(r)
+    old: dict[tuple, list] = {}
+    for r in old_recipe_rows(rows):
+        old.setdefault((r["rig"], r["look"]), []).append(r)
+    lines = ["| rig | look | recipe | runs (seeds) | success | position error @60 (px) | per-object error @20 (px) | "
+             "period error | MSE / background-only |", "|---|---|---|---|---|---|---|---|---|"]
+    for key in sorted(set(today) & set(old)):
+        for name, rs in (("staged (today's defaults)", today[key]), ("end to end, dense encoder", old[key])):
+            med = partial(median_range, rs)
+            seeds = ",".join(str(x) for x in sorted({r["seed"] for r in rs}))
+            lines.append(f"| {key[0]} | {key[1]} | {name} | {len(rs)} ({seeds}) | "
+                         f"{sum(succeeded(r) for r in rs)}/{len(rs)} | {med(lambda r: r['pos_model'])} | "
+                         f"{med(lambda r: r.get('obj20_model', math.nan))} | {med(lambda r: r['period_error'])} | "
+                         f"{med(lambda r: r['mse_model'] / r['mse_background_only'])} |")
+    return "\n".join(lines) + "\n" if len(lines) > 2 else ""
+
+
 def rate_line(rows: list[dict]) -> str:
     """Median training steps per second by stage over today's rows that logged them (2 cores, 64 px)."""
     rates: dict[str, list] = {}
@@ -285,7 +312,15 @@ def page(rows: list[dict]) -> str:
             f"{SUCCESS_PERIOD:.0%} (one object), per-object error @20 ≤ {SUCCESS_OBJECT_PX:g} px (several). "
             f"Scored with frame steps: rows scored (or rescored) since the solver keeps its step across "
             f"the gap between the context and the first forecast frame (bench/recipe.py SCORING).\n\n"
-            + success_table(rows) + "\n" + rate_line(rows) + "\n## Every group of runs\n\n" + table(rows))
+            + success_table(rows) + "\n" + rate_line(rows) + _side_by_side_section(rows)
+            + "\n## Every group of runs\n\n" + table(rows))
+
+
+def _side_by_side_section(rows: list[dict]) -> str:
+    got = side_by_side_table(rows)
+    return ("\n## Today's recipe beside the old one\n\nThe old recipe: the full ELBO end to end from the first "
+            "step with the dense position encoder (`--recipes end_to_end --set model.encoder=dense --set "
+            "model.velocity_from_positions=false`), same budget, scenes and scoring.\n\n" + got) if got else ""
 
 
 def main(argv=None) -> int:

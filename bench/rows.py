@@ -96,16 +96,18 @@ def _method_value(s: dict, persistence_mse: float, is_persistence: bool) -> str:
     return value
 
 
-def coverage_rows(rig: str, cover: dict) -> list[Row]:
-    """One row per learned method and coverage ({method: {"position": x, "object band": y}}),
-    judged against :data:`bench.quality.COVERAGE_GOAL`; NaN (nothing could be judged) is unjudged."""
+def coverage_rows(rig: str, cover: dict, trials: int | None = None) -> list[Row]:
+    """One row per learned method and coverage ({method: {"position": x, "object band": y}}) over
+    ``trials`` held-out trials (not named when unknown: results written before it was stored), judged
+    against :data:`bench.quality.COVERAGE_GOAL`; NaN (nothing could be judged) is unjudged."""
     lo, hi = COVERAGE_GOAL
+    held = f"{trials} held-out trials, " if trials else ""
     rows = []
     for method, cov in cover.items():
         for name, value in cov.items():
             ok = None if value != value else lo <= value <= hi
             rows.append(Row("coverage", f"{rig}: {method} {name} coverage ({COVERAGE_SAMPLES} futures, "
-                            "nominal 0.90)", f"{value:.2f}", f"{lo:g}-{hi:g}", ok))
+                            f"{held}nominal 0.90)", f"{value:.2f}", f"{lo:g}-{hi:g}", ok))
     return rows
 
 
@@ -141,7 +143,7 @@ def quality_rows(quality: dict, budget: str) -> tuple[list[Row], list[str]]:
             steps = f" ({train[method]['summary']['steps']} steps in {budget})" if method in LEARNED else ""
             rows.append(Row("quality", f"{rig}: {method}{steps}",
                             _method_value(scores[method], pers, method == "persistence")))
-        rows += coverage_rows(rig, entry.get("coverage", {}))
+        rows += coverage_rows(rig, entry.get("coverage", {}), entry.get("coverage_trials"))
         rows += time_to_quality_rows(rig, entry.get("time_to_quality", {}), budget)
         horizons = " / ".join(f"{h}·W" for h in HORIZONS)
         notes.append(f"quality {rig}: {entry['size']} px, W = {entry['window']} frames (train.window_max); "

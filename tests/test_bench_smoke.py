@@ -147,6 +147,9 @@ def test_coverage_rows_judge_against_the_issue_goal():
     got = {r.measure.split(" coverage")[0]: r.met for r in rows if r.area == "coverage"}
     assert got == {"pendulum: second_order position": True, "pendulum: second_order object band": False,
                    "pendulum: first_order position": False, "pendulum: first_order object band": None}
+    # the number of held-out trials the coverage was judged on is part of the measure's name
+    assert all("12 held-out trials" in r.measure for r in coverage_rows("spring", {"x": {"position": 0.9}}, 12))
+    assert all("held-out" not in r.measure for r in rows)
 
 
 def test_time_to_quality_rows_judge_each_rig_against_the_issue_goal():

@@ -149,11 +149,11 @@ def periods(frames: np.ndarray, times: np.ndarray, background) -> float:
 
 
 def evaluate(model, cfg: Config, rec: Recording, cond_start: int, first: int, n: int,
-             samples: int = 1, others: dict | None = None, device="cpu") -> dict:
+             samples: int = 1, others: dict | None = None, device="cpu", baselines: bool = True) -> dict:
     """Forecast slots ``first .. first+n-1`` of ``rec`` from the context ``cond_start .. first-1``.
 
-    Scores the model, every baseline and any ``others`` ({name: (model, cfg)}) on the present
-    held-out frames. Returns a dict with ``times``, ``origin`` (time of the last context frame),
+    Scores the model, every baseline (none with ``baselines=False``, for callers that want the
+    model's own scores only) and any ``others`` ({name: (model, cfg)}) on the present held-out frames. Returns a dict with ``times``, ``origin`` (time of the last context frame),
     ``per_frame`` {method: {metric: (N,)}}, ``summary`` {method: {...}}, ``periods``, with samples > 1
     ``coverage``, ``object_coverage`` and ``position_coverage`` (per frame; see
     :data:`COVERAGE_SUMMARY`) and the model's ``forecast`` (mean frames), ``truth`` and
@@ -180,7 +180,7 @@ def evaluate(model, cfg: Config, rec: Recording, cond_start: int, first: int, n:
         preds[name] = fc.mean
         extra[name] = fc
     ctx_times = np.concatenate([rec.times[cond_start:first], times])
-    for name, fn in BASELINES.items():
+    for name, fn in (BASELINES.items() if baselines else ()):
         preds[name] = fn(ctx, n, ctx_times, background=background)
     per_frame, summary = {}, {}
     for name, pred in preds.items():
