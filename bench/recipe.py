@@ -269,18 +269,25 @@ def old_recipe_rows(rows: list[dict]) -> list[dict]:
             and r.get("budget") == "5m" and r.get("tracker") == TRACKER and r.get("scoring") == SCORING]
 
 
-def side_by_side_table(rows: list[dict]) -> str:
-    """Today's staged defaults beside the old end-to-end recipe, per rig × look that has runs of both."""
-    today: dict[tuple, list] = {}
-    for r in todays_rows(rows):
-        today.setdefault((r["rig"], r["look"]), []).append(r)
-    old: dict[tuple, list] = {}
-    for r in old_recipe_rows(rows):
-        old.setdefault((r["rig"], r["look"]), []).append(r)
+def fp32_rows(rows: list[dict]) -> list[dict]:
+    """Today's defaults with every net in float32 (``train.precision=fp32``), scored as today's."""
+    return [r for r in rows if not r.get("excluded") and r.get("recipe") == "staged" and r.get("budget") == "5m"
+            and r.get("defaults", "").split(":")[0] == DEFAULTS.split(":")[0]
+            and list(r.get("sets", [])) == ["train.precision=fp32"]
+            and r.get("tracker") == TRACKER and r.get("scoring") == SCORING]
+
+
+def side_by_side_table(rows: list[dict], others: list[dict], names: tuple[str, str]) -> str:
+    """Today's defaults (``names[0]``) beside ``others`` (``names[1]``), per rig × look that has runs
+    of both; "" when none has."""
+    groups: tuple[dict, dict] = ({}, {})
+    for group, rs in zip(groups, (todays_rows(rows), others)):
+        for r in rs:
+            group.setdefault((r["rig"], r["look"]), []).append(r)
     lines = ["| rig | look | recipe | runs (seeds) | success | position error @60 (px) | per-object error @20 (px) | "
              "period error | MSE / background-only |", "|---|---|---|---|---|---|---|---|---|"]
-    for key in sorted(set(today) & set(old)):
-        for name, rs in (("staged (today's defaults)", today[key]), ("end to end, dense encoder", old[key])):
+    for key in sorted(set(groups[0]) & set(groups[1])):
+        for name, rs in zip(names, (groups[0][key], groups[1][key])):
             med = partial(median_range, rs)
             seeds = ",".join(str(x) for x in sorted({r["seed"] for r in rs}))
             lines.append(f"| {key[0]} | {key[1]} | {name} | {len(rs)} ({seeds}) | "
@@ -317,10 +324,20 @@ def page(rows: list[dict]) -> str:
 
 
 def _side_by_side_section(rows: list[dict]) -> str:
-    got = side_by_side_table(rows)
-    return ("\n## Today's recipe beside the old one\n\nThe old recipe: the full ELBO end to end from the first "
-            "step with the dense position encoder (`--recipes end_to_end --set model.encoder=dense --set "
-            "model.velocity_from_positions=false`), same budget, scenes and scoring.\n\n" + got) if got else ""
+    """The two comparisons the issues ask for, where runs of both sides exist."""
+    old = side_by_side_table(rows, old_recipe_rows(rows), ("staged (today's defaults)", "end to end, dense encoder"))
+    fp32 = side_by_side_table(rows, fp32_rows(rows), ("today's defaults (precision auto: bf16 here)",
+                                                      "today's defaults in fp32"))
+    text = ""
+    if old:
+        text += ("\n## Today's recipe beside the old one\n\nThe old recipe: the full ELBO end to end from the "
+                 "first step with the dense position encoder (`--recipes end_to_end --set model.encoder=dense "
+                 "--set model.velocity_from_positions=false`), same budget, scenes and scoring.\n\n" + old)
+    if fp32:
+        text += ("\n## bfloat16 beside float32\n\nToday's defaults with `train.precision=auto` (bfloat16 "
+                 "conv nets on a CPU that has it, as here) and with `train.precision=fp32`, same budget: "
+                 "the bf16 runs make more steps in the same 5 minutes.\n\n" + fp32)
+    return text
 
 
 def main(argv=None) -> int:

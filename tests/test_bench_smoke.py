@@ -184,3 +184,29 @@ def test_recipe_bench_rates_stages_and_judges_by_the_issue_rules(tmp_path):
     assert not recipe.succeeded(ball) and recipe.succeeded(dict(ball, pos_model=1.9))
     assert recipe.succeeded(dict(ball, rig="airtable")) and not recipe.succeeded(dict(ball, rig="airtable", obj20_model=3.1))
     assert not recipe.succeeded({"rig": "pendulum", "pos_model": 1.0, "period_truth": 1.0, "period_error": 0.04})
+
+
+def test_recipe_bench_puts_todays_runs_beside_the_old_recipe_and_fp32():
+    # Rows built by hand: a rig × look appears in a comparison only when both sides have runs, and
+    # each side's cells are that side's own medians (median of 1.0 and 3.0 px is 2.0; of 0.5, 0.5).
+    from bench import recipe
+
+    base = {"budget": "5m", "tracker": recipe.TRACKER, "scoring": recipe.SCORING, "look": "classic",
+            "period_error": 0.01, "mse_model": 1.0, "mse_background_only": 2.0, "period_truth": 1.0,
+            "mse_persistence": 4.0, "pos20_model": 1.0, "verdict": "good"}
+    today = [dict(base, rig="spring", seed=s, recipe="staged", defaults=recipe.DEFAULTS, sets=[], pos_model=p)
+             for s, p in ((1, 1.0), (2, 3.0))]
+    old = [dict(base, rig="spring", seed=1, recipe="end_to_end", defaults=recipe.DEFAULTS,
+                sets=["model.encoder=dense"], pos_model=0.5),
+           dict(base, rig="ball", seed=1, recipe="end_to_end", defaults=recipe.DEFAULTS, sets=[], pos_model=9.0)]
+    fp32 = [dict(base, rig="spring", seed=3, recipe="staged", defaults=recipe.DEFAULTS,
+                 sets=["train.precision=fp32"], pos_model=0.5)]
+    rows = today + old + fp32
+    assert recipe.old_recipe_rows(rows) == old and recipe.fp32_rows(rows) == fp32
+    table = recipe.side_by_side_table(rows, recipe.old_recipe_rows(rows), ("today", "old"))
+    body = [line for line in table.splitlines()[2:]]
+    assert [line.split(" | ")[2:6] for line in body] == [["today", "2 (1,2)", "1/2", "2.00 (1.00-3.00)"],
+                                                         ["old", "1 (1)", "1/1", "0.50 (0.50-0.50)"]]
+    assert "ball" not in table  # no run of today's defaults on the ball here
+    assert "bfloat16 beside float32" in recipe.page(rows) and "beside the old one" in recipe.page(rows)
+    assert recipe.side_by_side_table(today, [], ("today", "old")) == ""

@@ -112,6 +112,7 @@ def test_model_drawing_only_the_background_fails(cfg, recs):
     v = verdict({"all": summary})
     assert v["level"] == "failed" and not v["ok"] and v["beats"]["all"] == []
     assert "does not beat" in v["text"] and "not measurements" in v["text"]
+    assert "What to try: train again with another seed" in v["text"]  # the issue: say what to try
     # the position rule: without an object, even a zero MSE beats nothing
     assert not beats({**summary["model"], "mean_mse": 0.0}, summary["persistence"])
     # the truth itself as the forecast: zero error, the object exactly on, every baseline beaten
@@ -123,6 +124,7 @@ def test_model_drawing_only_the_background_fails(cfg, recs):
     assert good["level"] == "good" and good["ok"]
     assert sorted(good["beats"]["all"]) == sorted(BASELINES)
     assert "beats every simple baseline" in good["text"] and "not measurements" in good["text"]
+    assert "What to try" not in good["text"]
 
 
 def test_weak_when_persistence_wins_the_first_frames():
@@ -149,6 +151,7 @@ def test_weak_when_persistence_wins_the_first_frames():
     assert v["level"] == "weak" and not v["ok"]
     assert "background_only" in v["beats"]["all"] and "persistence" not in v["beats"]["first"]
     assert "but not persistence" in v["text"] and "not measurements" in v["text"]
+    assert "What to try: a longer run" in v["text"]
 
 
 def test_judge_recordings_on_a_still_model(cfg, recs):

@@ -49,6 +49,17 @@ SPANS = {"1W": 1, "3W": 3}
 NAMES = {"background_only": "the bare background", "persistence": "persistence (the last frame held)",
          "constant_velocity": "constant velocity", "flow_warp": "the optical-flow warp"}
 _WINDOWS = re.compile(r"^(\d+(?:\.\d+)?)W$")
+# What to try, in the order that helped most often in the recipe bench (bench/results/recipe.md;
+# DEVELOPERS.md): a run's reading of where the object is lands well or badly by seed, more time and
+# more recorded motion help the field, and collisions are this tool's known weak spot.
+ADVICE = {
+    "failed": ("What to try: train again with another seed (kinecast fit ... --set train.seed=1) or longer "
+               "(kinecast fit --resume RUN --budget 10m); give it more trials or a longer recording of the "
+               "motion; crop the frames to the part that moves (data.roi). Collisions and bounces (a ball on a "
+               "floor, pucks hitting rails) are learned poorly by this tool."),
+    "weak": ("What to try: a longer run (kinecast fit --resume RUN --budget 10m) or more trials; over the "
+             "first frames the simple forecast named above is the better choice."),
+}
 
 
 def _position(summary: dict) -> float:
@@ -181,7 +192,8 @@ def verdict(summaries: dict[str, dict[str, dict]]) -> dict:
               for label, methods in summaries.items()}
     missing = [m for m in SHORT_RIVALS if m in summaries[short] and m not in beaten[short]]
     level = "failed" if FLOOR not in beaten[long] else ("weak" if missing else "good")
-    text = _text(level, summaries, short, long, missing) + " " + CAUTION
+    advice = f" {ADVICE[level]}" if level in ADVICE else ""
+    text = _text(level, summaries, short, long, missing) + advice + " " + CAUTION
     ratios = {label: {m: _ratio(methods["model"], methods[m]) for m in methods if m in BASELINES}
               for label, methods in summaries.items()}
     return {"ok": level == "good", "level": level, "beats": beaten, "text": text, "caution": CAUTION,
