@@ -266,7 +266,8 @@ def success_table(rows: list[dict]) -> str:
 def old_recipe_rows(rows: list[dict]) -> list[dict]:
     """The rows of the old recipe (end to end from the first step, dense encoder), scored as today's."""
     return [r for r in rows if not r.get("excluded") and r.get("recipe") == "end_to_end"
-            and r.get("budget") == "5m" and r.get("tracker") == TRACKER and r.get("scoring") == SCORING]
+            and "model.encoder=dense" in r.get("sets", []) and r.get("budget") == "5m"
+            and r.get("tracker") == TRACKER and r.get("scoring") == SCORING]
 
 
 def fp32_rows(rows: list[dict]) -> list[dict]:

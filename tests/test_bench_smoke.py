@@ -198,10 +198,12 @@ def test_recipe_bench_puts_todays_runs_beside_the_old_recipe_and_fp32():
              for s, p in ((1, 1.0), (2, 3.0))]
     old = [dict(base, rig="spring", seed=1, recipe="end_to_end", defaults=recipe.DEFAULTS,
                 sets=["model.encoder=dense"], pos_model=0.5),
-           dict(base, rig="ball", seed=1, recipe="end_to_end", defaults=recipe.DEFAULTS, sets=[], pos_model=9.0)]
+           dict(base, rig="ball", seed=1, recipe="end_to_end", defaults=recipe.DEFAULTS,
+                sets=["model.encoder=dense"], pos_model=9.0)]
+    keypoints = dict(old[0], sets=[])  # end to end with today's keypoint encoder: not the old recipe
     fp32 = [dict(base, rig="spring", seed=3, recipe="staged", defaults=recipe.DEFAULTS,
                  sets=["train.precision=fp32"], pos_model=0.5)]
-    rows = today + old + fp32
+    rows = today + old + fp32 + [keypoints]
     assert recipe.old_recipe_rows(rows) == old and recipe.fp32_rows(rows) == fp32
     table = recipe.side_by_side_table(rows, recipe.old_recipe_rows(rows), ("today", "old"))
     body = [line for line in table.splitlines()[2:]]
