@@ -263,19 +263,23 @@ def success_table(rows: list[dict]) -> str:
     return "\n".join(lines) + "\n"
 
 
+def _comparable(r: dict) -> bool:
+    """A 5-minute row, kept, tracked and scored as today's rows are."""
+    return (not r.get("excluded") and r.get("budget") == "5m" and r.get("tracker") == TRACKER
+            and r.get("scoring") == SCORING)
+
+
 def old_recipe_rows(rows: list[dict]) -> list[dict]:
     """The rows of the old recipe (end to end from the first step, dense encoder), scored as today's."""
-    return [r for r in rows if not r.get("excluded") and r.get("recipe") == "end_to_end"
-            and "model.encoder=dense" in r.get("sets", []) and r.get("budget") == "5m"
-            and r.get("tracker") == TRACKER and r.get("scoring") == SCORING]
+    return [r for r in rows if _comparable(r) and r.get("recipe") == "end_to_end"
+            and "model.encoder=dense" in r.get("sets", [])]
 
 
 def fp32_rows(rows: list[dict]) -> list[dict]:
     """Today's defaults with every net in float32 (``train.precision=fp32``), scored as today's."""
-    return [r for r in rows if not r.get("excluded") and r.get("recipe") == "staged" and r.get("budget") == "5m"
+    return [r for r in rows if _comparable(r) and r.get("recipe") == "staged"
             and r.get("defaults", "").split(":")[0] == DEFAULTS.split(":")[0]
-            and list(r.get("sets", [])) == ["train.precision=fp32"]
-            and r.get("tracker") == TRACKER and r.get("scoring") == SCORING]
+            and list(r.get("sets", [])) == ["train.precision=fp32"]]
 
 
 def side_by_side_table(rows: list[dict], others: list[dict], names: tuple[str, str]) -> str:

@@ -49,9 +49,9 @@ SPANS = {"1W": 1, "3W": 3}
 NAMES = {"background_only": "the bare background", "persistence": "persistence (the last frame held)",
          "constant_velocity": "constant velocity", "flow_warp": "the optical-flow warp"}
 _WINDOWS = re.compile(r"^(\d+(?:\.\d+)?)W$")
-# What to try, in the order that helped most often in the recipe bench (bench/results/recipe.md;
-# DEVELOPERS.md): a run's reading of where the object is lands well or badly by seed, more time and
-# more recorded motion help the field, and collisions are this tool's known weak spot.
+# What to try. Measured in the recipe bench (bench/results/recipe.md; DEVELOPERS.md): whether a run
+# finds where the object is depends on its seed, and collisions fail on every seed. A longer run, more
+# recorded motion and cropping are common practice, not measured here on failed runs.
 ADVICE = {
     "failed": ("What to try: train again with another seed (kinecast fit ... --set train.seed=1) or longer "
                "(kinecast fit --resume RUN --budget 10m); give it more trials or a longer recording of the "
