@@ -114,10 +114,11 @@ class CheckpointWatcher:
         self.copies.append(folder)
 
 
-def train_variant(train_dir: Path, run: Path, cfg: Config) -> dict:
-    """Train one variant; return its summary and the kept checkpoints (step, loop seconds, folder)."""
-    with CheckpointWatcher(run, run.parent / f"{run.name}_snaps") as watch:
-        summary = fit([train_dir], run, cfg, overwrite=True)
+def train_variant(paths: list[Path], run: Path, cfg: Config, **fit_kw) -> dict:
+    """Train once on ``paths`` (``fit_kw`` go to :func:`kinecast.train.fit`); return the summary and the
+    kept checkpoints (step, loop seconds, folder; copies in the folder ``run`` + "_snaps")."""
+    with CheckpointWatcher(run, snapshots_folder(run)) as watch:
+        summary = fit(paths, run, cfg, overwrite=True, **fit_kw)
     times = {int(r["step"]): r["time_s"] for r in rf.read_log(run) if "val_mse" in r}
     snaps, seen = [], set()
     for folder in watch.copies:
@@ -127,6 +128,11 @@ def train_variant(train_dir: Path, run: Path, cfg: Config) -> dict:
             seen.add(step)
             snaps.append({"step": step, "time_s": times.get(step, summary["elapsed_s"]), "folder": folder})
     return {"summary": summary, "snapshots": snaps}
+
+
+def snapshots_folder(run: Path) -> Path:
+    """Where :func:`train_variant` copies the kept checkpoints of ``run``."""
+    return run.parent / f"{run.name}_snaps"
 
 
 def eval_recordings(eval_dir: Path, cfg: Config) -> list:
@@ -224,7 +230,7 @@ def run_quality(p: Profile, budget: str, rigs: tuple[str, ...], device: str, wor
             print(f"bench: {rig}: training {variant} for {budget}", file=sys.stderr)
             cfg = fit_config(variant, p, budget, device, cache)
             try:
-                trained[variant] = train_variant(train_dir, work / "runs" / f"{rig}_{variant}", cfg)
+                trained[variant] = train_variant([train_dir], work / "runs" / f"{rig}_{variant}", cfg)
             except KinecastError as exc:
                 trained[variant] = {"error": str(exc)}
                 continue

@@ -19,7 +19,9 @@ truth's (where the truth has a period; otherwise position alone). On a scene wit
 (the air table) the error is per object (objects matched frame by frame) over the first 20 forecast
 frames, at most ``SUCCESS_OBJECT_PX``. ``--rescore`` scores the run folders already in ``--work``
 again without training (after a change of the scores themselves); its rows say so. Every run is appended to
-``bench/results/recipe_runs.jsonl`` (with the date and the load average), and the summary table
+``bench/results/recipe_runs.jsonl`` (with the date, the load average and the time to quality: the
+training seconds until the first kept checkpoint forecasts the 4 held-out trials with at most 1/10 of
+persistence's MSE over the 60 frames, as in ``bench/quality.py``), and the summary table
 (success share, medians of MSE / background-only and MSE / persistence, spread as min-max) is
 rebuilt from all runs in that file into ``bench/results/recipe.md`` (rows marked ``excluded``, with the
 reason, e.g. a run starved of CPU by other work, are left out).
@@ -34,6 +36,7 @@ import argparse
 import json
 import math
 import os
+import shutil
 import sys
 import tempfile
 import time
@@ -47,13 +50,14 @@ if __package__ in (None, ""):  # run as a script: make `bench` and `kinecast` im
     sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from bench.common import NOMINAL_FPS, RESULTS_DIR, trial_coverage  # noqa: E402
-from kinecast.config import Config, apply_overrides  # noqa: E402
+from bench.quality import snapshots_folder, time_to_quality as quality_ttq, train_variant  # noqa: E402
+from kinecast.config import Config, apply_overrides, parse_budget  # noqa: E402
 from kinecast.fileio import write_text  # noqa: E402
 from kinecast.frames import read_recording  # noqa: E402
 from kinecast.rigs import RIGS, write_rig  # noqa: E402
 from kinecast.score.evaluate import evaluate  # noqa: E402
 from kinecast.score.verdict import judge_run  # noqa: E402
-from kinecast.train import fit, load_run  # noqa: E402
+from kinecast.train import load_run  # noqa: E402
 from kinecast.runfolder import MODEL_LAYOUT, read_log  # noqa: E402
 from kinecast.train.loop import TrainingStopped  # noqa: E402
 
@@ -80,17 +84,21 @@ SCORING = "frame steps"
 # held still, train.still_keypoint_px 1; "6": as 5, keypoint posteriors start at 0.5 px, an encoder that
 # loses the object goes back to deterministic steps, early stop only below 0.8x the background;
 # "7" ... "16", and the "15c" / "15g" tries: see DEVELOPERS.md)
-DEFAULTS = ("17: as 16 (one acceleration field shared by the keypoints where the training frames show several "
-            "alike separate objects; 20-frame dynamics windows when no period is found), and for those "
-            "alike objects keypoints read within 3 heat-map cells of each map's peak (model.keypoint_window auto)")
+DEFAULTS = ("18: as 17 (one acceleration field shared by the keypoints where the training frames show several "
+            "alike separate objects; 20-frame dynamics windows when no period is found; for those alike "
+            "objects keypoints read within 3 heat-map cells of each map's peak), and validation, which "
+            "picks the weights kept, from the dynamics stage on (before: from the joint stage on)")
 # (defaults label, settings) pairs that ran today's algorithm, by kind of scene: pooled in the "today's
 # defaults" table. On one-object scenes d14-d17 are one algorithm (d15's keypoint following never
 # reordered one object's keypoints; d16 / d17's autos resolve to field_per_keypoint off and
 # keypoint_window 0 there); on alike objects (the air table) d17, and d16 with the window set to d17's
-# 3 cells by hand (DEVELOPERS.md, twelfth to fourteenth sessions).
+# 3 cells by hand (DEVELOPERS.md, twelfth to fourteenth sessions). d18 trains every step as d17 does;
+# its kept weights are chosen from more validated checkpoints (the dynamics stage's too), pooled with
+# the d17 rows once its own runs showed no change beyond one seed's spread (DEVELOPERS.md, eighteenth session).
 _ONE = [frozenset(), frozenset({"model.keypoint_window=0"}), frozenset({"model.field_per_keypoint=off"})]
-SAME_ALGORITHM = {"one object": {(label, sets) for label in ("14", "15", "16", "17") for sets in _ONE},
-                  "alike objects": {("17", frozenset()), ("16", frozenset({"model.keypoint_window=3"}))}}
+SAME_ALGORITHM = {"one object": {(label, sets) for label in ("14", "15", "16", "17", "18") for sets in _ONE},
+                  "alike objects": {("18", frozenset()), ("17", frozenset()),
+                                    ("16", frozenset({"model.keypoint_window=3"}))}}
 START_FRAMES = 3          # forecast frames over which the drawing offset is measured
 TRIALS, TRAIN_TRIALS, FRAMES, HORIZON, SIZE = 12, 8, 90, 60, 64
 FRESH_TRIALS = 12  # more held-out trials of the same scene, for the coverage figures
@@ -173,8 +181,10 @@ def one_run(rig: str, look: str, seed: int, recipe: str, budget: str, work: Path
         cfg.data.cache_dir = str(work / "cache")
         cfg.train.budget, cfg.train.seed, cfg.train.recipe = budget, seed, recipe
         cfg = apply_overrides(cfg, sets)
+        trained = {}
         try:
-            summary = fit(trials[:TRAIN_TRIALS], run, cfg, overwrite=True, show_progress=False, judge=judge_run)
+            trained = train_variant(trials[:TRAIN_TRIALS], run, cfg, show_progress=False, judge=judge_run)
+            summary = trained["summary"]
         except TrainingStopped as exc:  # repeated numerical faults: the best weights are kept; score them
             print(f"bench: {exc}", flush=True)
             summary = json.loads((run / "summary.json").read_text())
@@ -188,7 +198,22 @@ def one_run(rig: str, look: str, seed: int, recipe: str, budget: str, work: Path
            "date": datetime.now(timezone.utc).isoformat(timespec="seconds"),
            "load": os.getloadavg()[0], "steps_per_s": stage_rates(run), **score_run(run, trials[TRAIN_TRIALS:], fresh)}
     row["success"] = succeeded(row)
+    if not rescore:
+        row.update(time_to_quality(run, trials[TRAIN_TRIALS:], trained.get("snapshots", []), row["mse_persistence"]))
     return row
+
+
+def time_to_quality(run: Path, trials: list[Path], snapshots: list[dict], persistence_mse: float) -> dict:
+    """``ttq_s``: training seconds until the first kept checkpoint's forecast of the held-out
+    ``trials`` (``HORIZON`` frames) has an MSE of at most 1/10 of persistence's (None: never), as in
+    ``bench/quality.py``; ``ttq_best_ratio`` and the ``ttq_curve`` behind it. The copies of the
+    checkpoints are removed afterwards."""
+    cfg = load_run(run)[1]
+    recs = [read_recording(t, cfg.data) for t in trials]
+    got = quality_ttq(snapshots, recs, HORIZON // 3, persistence_mse, "cpu")
+    shutil.rmtree(snapshots_folder(run), ignore_errors=True)
+    return {"ttq_s": got["reached"]["time_s"] if got["reached"] else None, "ttq_best_ratio": got["best_ratio"],
+            "ttq_curve": [[c["time_s"], round(c["ratio"], 4)] for c in got["curve"]]}
 
 
 def median_range(rs: list[dict], f) -> str:
@@ -236,10 +261,15 @@ def todays_rows(rows: list[dict]) -> list[dict]:
             continue
         if r.get("tracker") != TRACKER:
             continue
-        kind = "alike objects" if r["rig"] in MULTI_OBJECT_RIGS else "one object"  # alike_objects' choice
-        if (r.get("defaults", "3").split(":")[0], frozenset(r.get("sets", []))) in SAME_ALGORITHM[kind]:
+        if _todays_algorithm(r, frozenset(r.get("sets", []))):
             keep.append(r)
     return keep
+
+
+def _todays_algorithm(r: dict, sets: frozenset) -> bool:
+    """Whether row ``r``'s defaults label with ``sets`` ran today's algorithm (:data:`SAME_ALGORITHM`)."""
+    kind = "alike objects" if r["rig"] in MULTI_OBJECT_RIGS else "one object"  # alike_objects' choice
+    return (r.get("defaults", "3").split(":")[0], sets) in SAME_ALGORITHM[kind]
 
 
 def success_table(rows: list[dict]) -> str:
@@ -249,8 +279,8 @@ def success_table(rows: list[dict]) -> str:
         groups.setdefault((r["rig"], r["look"]), []).append(r)
     lines = ["| rig | look | runs (seeds) | success | position error @60 (px) | per-object error @20 (px) | "
              "period error | MSE / background-only | position coverage (4 trials) | position coverage "
-             f"({FRESH_TRIALS} more trials) | scored with frame steps |",
-             "|---|---|---|---|---|---|---|---|---|---|---|"]
+             f"({FRESH_TRIALS} more trials) | time to 0.1× persistence (s) | scored with frame steps |",
+             "|---|---|---|---|---|---|---|---|---|---|---|---|"]
     for (rig, look), rs in sorted(groups.items()):
         med = partial(median_range, rs)
         seeds = ",".join(str(x) for x in sorted({r["seed"] for r in rs}))
@@ -258,9 +288,21 @@ def success_table(rows: list[dict]) -> str:
                      f"{med(lambda r: r['pos_model'])} | {med(lambda r: r.get('obj20_model', math.nan))} | "
                      f"{med(lambda r: r['period_error'])} | {med(lambda r: r['mse_model'] / r['mse_background_only'])} | "
                      f"{med(lambda r: r.get('mean_position_coverage', math.nan))} | "
-                     f"{med(lambda r: r.get('fresh_mean_position_coverage', math.nan))} | "
+                     f"{med(lambda r: r.get('fresh_mean_position_coverage', math.nan))} | {ttq_cell(rs)} | "
                      f"{sum(r.get('scoring') == SCORING for r in rs)}/{len(rs)} |")
     return "\n".join(lines) + "\n"
+
+
+def ttq_cell(rs: list[dict]) -> str:
+    """Time to quality over the runs that measured it: how many got there, and the median seconds
+    with a run that never did counted as its budget (so leaving it out does not flatter the median);
+    "-" when no run measured it (rows from before the measurement)."""
+    measured = [r for r in rs if "ttq_s" in r]
+    if not measured:
+        return "-"
+    secs = [r["ttq_s"] if r["ttq_s"] is not None else parse_budget(r["budget"]) for r in measured]
+    hit = sum(r["ttq_s"] is not None for r in measured)
+    return f"{hit}/{len(measured)} reached; {np.median(secs):.0f} ({min(secs):.0f}-{max(secs):.0f})"
 
 
 def _comparable(r: dict) -> bool:
@@ -278,8 +320,7 @@ def old_recipe_rows(rows: list[dict]) -> list[dict]:
 def fp32_rows(rows: list[dict]) -> list[dict]:
     """Today's defaults with every net in float32 (``train.precision=fp32``), scored as today's."""
     return [r for r in rows if _comparable(r) and r.get("recipe") == "staged"
-            and r.get("defaults", "").split(":")[0] == DEFAULTS.split(":")[0]
-            and list(r.get("sets", [])) == ["train.precision=fp32"]]
+            and list(r.get("sets", [])) == ["train.precision=fp32"] and _todays_algorithm(r, frozenset())]
 
 
 def side_by_side_table(rows: list[dict], others: list[dict], names: tuple[str, str]) -> str:

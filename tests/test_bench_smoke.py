@@ -184,6 +184,12 @@ def test_recipe_bench_rates_stages_and_judges_by_the_issue_rules(tmp_path):
     assert not recipe.succeeded(ball) and recipe.succeeded(dict(ball, pos_model=1.9))
     assert recipe.succeeded(dict(ball, rig="airtable")) and not recipe.succeeded(dict(ball, rig="airtable", obj20_model=3.1))
     assert not recipe.succeeded({"rig": "pendulum", "pos_model": 1.0, "period_truth": 1.0, "period_error": 0.04})
+    # time to quality per rig × look: a run that never got there counts as its 5-minute budget (300 s),
+    # so the median of 100, 200 and never is 200 (not 150 over the two that did); older rows: "-"
+    runs = [{"budget": "5m", "ttq_s": 100.0}, {"budget": "5m", "ttq_s": None}, {"budget": "5m", "ttq_s": 200.0}]
+    assert recipe.ttq_cell(runs) == "2/3 reached; 200 (100-300)"
+    assert recipe.ttq_cell(runs[:2] + [{"budget": "5m"}]) == "1/2 reached; 200 (100-300)"
+    assert recipe.ttq_cell([{"budget": "5m"}]) == "-"
 
 
 def test_recipe_bench_puts_todays_runs_beside_the_old_recipe_and_fp32():

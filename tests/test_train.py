@@ -121,6 +121,13 @@ def test_schedules():
     for _ in range(10):
         cur.update(2.0)
     assert cur.window == 20 and cur.done
+    # scores that only keep the best (the staged recipe's dynamics stage) never grow nor stop
+    keep = Curriculum(window=8, longest=8, growth=1.5, patience=2)
+    assert keep.update(1.0, stalls=False) and not keep.update(2.0, stalls=False)
+    for _ in range(10):
+        keep.update(2.0, stalls=False)
+    assert keep.stalls == 0 and not keep.done and keep.best == 1.0
+    assert keep.update(0.5, stalls=False) and keep.best == 0.5
     # scheduled floor: geometric growth 8 -> 32 reaches 16 at half of the schedule, 32 at its end
     sched = Curriculum(window=8, longest=32, growth=1.5, patience=2)
     sched.follow(8, 0.3, 0.6)

@@ -277,3 +277,20 @@ def test_fit_writes_the_resolved_field_sharing(rig, tmp_path):
     fit([rig], tmp_path / "run", cfg, show_progress=False)
     saved = C.load(tmp_path / "run" / "config.toml").model
     assert saved.field_per_keypoint == "off" and saved.keypoint_window == 0
+
+
+def test_validation_keeps_weights_from_the_dynamics_stage_on(rig, tmp_path):
+    # The first model that forecasts anything is the dynamics stage's (the positions stage trains no
+    # field): validation starts there, so a run stopped or judged early has kept weights, and the
+    # dynamics stage's scores neither grow the joint stage's windows nor end the run.
+    cfg = C.apply_overrides(staged_cfg(60), ["train.positions_share=0.3", "train.dynamics_share=0.4"])
+    fit([rig], tmp_path / "run", cfg, show_progress=False)
+    rows = rf.read_log(tmp_path / "run")
+    checked = [r for r in rows if "val_mse" in r]
+    assert [r["stage"] for r in checked if r["step"] <= 18] == []  # positions stage (steps 1-18): none
+    dyn = [r for r in checked if r["stage"] == S.NUMBER[S.DYNAMICS]]
+    assert [r["step"] for r in dyn] == [20, 30, 40]  # every train.val_every steps of steps 19-42
+    assert all(r["window"] == 8 for r in dyn)  # the joint stage's window did not grow
+    kept = rf.load_tensors(tmp_path / "run" / rf.WEIGHTS)[1]
+    best = min(checked, key=lambda r: r["val_mse"])
+    assert int(kept["step"]) == best["step"] and float(kept["val_mse"]) == pytest.approx(best["val_mse"])

@@ -98,12 +98,14 @@ def _same_times(times) -> list[list[int]]:
     return list(groups.values())
 
 
-def _validate_and_keep(model, val_sampler, val_window: int, cfg, cur: Curriculum, run: Path, step: int) -> float:
-    """Validate; write the weights as the run's best when they are."""
+def _validate_and_keep(model, val_sampler, val_window: int, cfg, cur: Curriculum, run: Path, step: int,
+                       stalls: bool = True) -> float:
+    """Validate; write the weights as the run's best when they are (``stalls``: see
+    :meth:`Curriculum.update`)."""
     model.eval()
     val = validate(model, val_sampler, val_window, cfg)
     model.train()
-    if cur.update(val):
+    if cur.update(val, stalls):
         rf.save_tensors(run / rf.WEIGHTS, model.state_dict(), {"step": step, "val_mse": val})
     return val
 
@@ -575,17 +577,22 @@ class _Trainer:
         return False
 
     def _validate(self, elapsed: float, window: int) -> None:
-        """Validate (main process); keep the weights as the run's best when they are; log and show it."""
+        """Validate (main process); keep the weights as the run's best when they are; log and show it.
+        In the dynamics stage a score that is not the best is no stall of the joint stage's curriculum."""
         st = self.state
         self.val = _validate_and_keep(self.model, self.data.val_sampler, self.data.val_window, self.cfg,
-                                      st.cur, self.run, st.step)
+                                      st.cur, self.run, st.step, stalls=self.stage != S.DYNAMICS)
         st.rows.append({"step": st.step, "time_s": round(elapsed, 3), "val_mse": self.val,
                         "window": st.cur.window, "stage": S.NUMBER[self.stage]})
         self.report.update(st.step, self.elapsed(), self.stage, window, self.val, self.bg_val, event=True)
 
     def _validate_and_save(self, elapsed: float, window: int) -> None:
-        """At a validation step: validate in the joint stage, and remember the state to roll back to."""
+        """At a validation step: validate in the dynamics and joint stages, and remember the state to
+        roll back to. Validating from the dynamics stage on keeps a forecasting model as soon as there
+        is one (the positions stage's weights forecast nothing: the field is untrained)."""
         cur = self.state.cur
+        if self.ctx.main and self.stage == S.DYNAMICS:
+            self._validate(elapsed, window)
         if self.ctx.main and self.stage == S.JOINT:
             self._validate(elapsed, window)
             # never stop a run that does not clearly beat drawing the bare background (the verdict's

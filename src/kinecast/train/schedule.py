@@ -68,12 +68,16 @@ class Curriculum:
             floor = start * (self.longest / start) ** min(1.0, prog / schedule)
             self.window = max(self.window, min(self.longest, int(floor)))
 
-    def update(self, val: float) -> bool:
-        """Record a validation score; return True when it is the best so far."""
+    def update(self, val: float, stalls: bool = True) -> bool:
+        """Record a validation score; return True when it is the best so far. ``stalls=False``: a
+        score that is not the best does not count as a stall (it neither grows the window nor ends
+        the run; the staged recipe's dynamics stage, whose windows are not this curriculum's)."""
         improved = val < self.best * (1 - 1e-3)
         if improved:
             self.best, self.stalls = val, 0
             return True
+        if not stalls:
+            return False
         self.stalls += 1
         if self.stalls >= self.patience:
             self.stalls = 0

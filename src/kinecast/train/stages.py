@@ -9,7 +9,9 @@
    the object and lost it again goes back to its best weights since then (a snapshot).
 2. *dynamics* (``train.dynamics_share``): encoder and decoder frozen; the field and the velocity
    encoder fit the encoded trajectories (:func:`kinecast.model.staged.dynamics_terms`), with long
-   windows (two periods of the tracked object, see :data:`DYNAMICS_PERIODS`).
+   windows (two periods of the tracked object, see :data:`DYNAMICS_PERIODS`). Validation (the
+   held-out forecast that picks the weights kept) starts here: the first forecasting model is kept
+   as soon as it exists.
 3. *joint*: the full ELBO end to end, as the ``end_to_end`` recipe does from its first step.
 
 Everything here is a function of the step's progress and of :class:`StageState`, which is saved in
