@@ -87,7 +87,8 @@ SCORING = "frame steps"
 DEFAULTS = ("18: as 17 (one acceleration field shared by the keypoints where the training frames show several "
             "alike separate objects; 20-frame dynamics windows when no period is found; for those alike "
             "objects keypoints read within 3 heat-map cells of each map's peak), and validation, which "
-            "picks the weights kept, from the dynamics stage on (before: from the joint stage on)")
+            "picks the weights kept, from the dynamics stage on (before: from the joint stage on); the "
+            "joint stage's stalls are counted against its own best score")
 # (defaults label, settings) pairs that ran today's algorithm, by kind of scene: pooled in the "today's
 # defaults" table. On one-object scenes d14-d17 are one algorithm (d15's keypoint following never
 # reordered one object's keypoints; d16 / d17's autos resolve to field_per_keypoint off and

@@ -128,6 +128,12 @@ def test_schedules():
         keep.update(2.0, stalls=False)
     assert keep.stalls == 0 and not keep.done and keep.best == 1.0
     assert keep.update(0.5, stalls=False) and keep.best == 0.5
+    # the joint stage then stalls against its own best, not against the kept 0.5: an improving
+    # series above 0.5 is no stall, and it keeps none of its weights (0.5 stays the best)
+    assert not any(keep.update(v) for v in (1.0, 0.9, 0.8, 0.7))
+    assert keep.stalls == 0 and not keep.done and keep.best == 0.5
+    keep.update(0.8), keep.update(0.8)
+    assert keep.done  # two stalls at the longest window (patience 2)
     # scheduled floor: geometric growth 8 -> 32 reaches 16 at half of the schedule, 32 at its end
     sched = Curriculum(window=8, longest=32, growth=1.5, patience=2)
     sched.follow(8, 0.3, 0.6)

@@ -47,7 +47,10 @@ class Curriculum:
     Validation always scores the same long forecast horizon, so scores stay comparable as the
     training window grows and the best one marks the checkpoint to keep.
 
-    Attributes are plain numbers so the state is saved with a checkpoint and restored on resume.
+    ``best`` is the best score of all (it decides which weights are kept); ``trend_best`` the best
+    of the scores that count stalls (the staged recipe's joint stage: a dynamics-stage score kept as
+    the best does not make the joint stage's first validations read as stalls). Attributes are
+    plain numbers so the state is saved with a checkpoint and restored on resume.
     """
 
     window: int
@@ -57,6 +60,7 @@ class Curriculum:
     best: float = math.inf
     stalls: int = 0
     done: bool = False
+    trend_best: float = math.inf
 
     def follow(self, start: int, prog: float, schedule: float) -> None:
         """Never lag behind geometric growth from ``start`` to ``longest`` over ``schedule`` of the budget.
@@ -69,15 +73,17 @@ class Curriculum:
             self.window = max(self.window, min(self.longest, int(floor)))
 
     def update(self, val: float, stalls: bool = True) -> bool:
-        """Record a validation score; return True when it is the best so far. ``stalls=False``: a
-        score that is not the best does not count as a stall (it neither grows the window nor ends
-        the run; the staged recipe's dynamics stage, whose windows are not this curriculum's)."""
+        """Record a validation score; return True when it is the best so far. ``stalls=False``: the
+        score only competes for the best (it neither grows the window nor ends the run; the staged
+        recipe's dynamics stage, whose windows are not this curriculum's)."""
         improved = val < self.best * (1 - 1e-3)
         if improved:
-            self.best, self.stalls = val, 0
-            return True
+            self.best = val
         if not stalls:
-            return False
+            return improved
+        if val < self.trend_best * (1 - 1e-3):
+            self.trend_best, self.stalls = val, 0
+            return improved
         self.stalls += 1
         if self.stalls >= self.patience:
             self.stalls = 0
@@ -85,7 +91,8 @@ class Curriculum:
                 self.done = True
             else:
                 self.window = min(self.longest, max(self.window + 1, int(round(self.window * self.growth))))
-        return False
+        return improved
 
     def state(self) -> dict:
-        return {k: getattr(self, k) for k in ("window", "longest", "growth", "patience", "best", "stalls", "done")}
+        return {k: getattr(self, k) for k in ("window", "longest", "growth", "patience", "best", "stalls", "done",
+                                              "trend_best")}
