@@ -58,7 +58,8 @@ from kinecast.rigs import RIGS, write_rig  # noqa: E402
 from kinecast.score.evaluate import evaluate  # noqa: E402
 from kinecast.score.verdict import judge_run  # noqa: E402
 from kinecast.train import load_run  # noqa: E402
-from kinecast.runfolder import MODEL_LAYOUT, read_log  # noqa: E402
+from kinecast import config as cfgmod  # noqa: E402
+from kinecast.runfolder import CONFIG, MODEL_LAYOUT, read_log  # noqa: E402
 from kinecast.train.loop import TrainingStopped  # noqa: E402
 
 SUCCESS_PX = 2.0          # position error @60 frames (model pixels), from the project's issue
@@ -209,8 +210,8 @@ def time_to_quality(run: Path, trials: list[Path], snapshots: list[dict], persis
     ``trials`` (``HORIZON`` frames) has an MSE of at most 1/10 of persistence's (None: never), as in
     ``bench/quality.py``; ``ttq_best_ratio`` and the ``ttq_curve`` behind it. The copies of the
     checkpoints are removed afterwards."""
-    cfg = load_run(run)[1]
-    recs = [read_recording(t, cfg.data) for t in trials]
+    data = cfgmod.load(run / CONFIG, cfgmod.saved_run_base()).data  # the config only: each snapshot loads its weights
+    recs = [read_recording(t, data) for t in trials]
     got = quality_ttq(snapshots, recs, HORIZON // 3, persistence_mse, "cpu")
     shutil.rmtree(snapshots_folder(run), ignore_errors=True)
     return {"ttq_s": got["reached"]["time_s"] if got["reached"] else None, "ttq_best_ratio": got["best_ratio"],

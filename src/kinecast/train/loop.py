@@ -591,10 +591,9 @@ class _Trainer:
         roll back to. Validating from the dynamics stage on keeps a forecasting model as soon as there
         is one (the positions stage's weights forecast nothing: the field is untrained)."""
         cur = self.state.cur
-        if self.ctx.main and self.stage == S.DYNAMICS:
+        if self.ctx.main and self.stage in (S.DYNAMICS, S.JOINT):
             self._validate(elapsed, window)
         if self.ctx.main and self.stage == S.JOINT:
-            self._validate(elapsed, window)
             # never stop a run that does not clearly beat drawing the bare background (the verdict's
             # floor): one that draws the mean frame scores just under it (0.99x, measured)
             if cur.done and not cur.best < cfgmod.FLOOR_MARGIN * self.bg_val:
