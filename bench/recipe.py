@@ -274,21 +274,26 @@ def _todays_algorithm(r: dict, sets: frozenset) -> bool:
     return (r.get("defaults", "3").split(":")[0], sets) in SAME_ALGORITHM[kind]
 
 
-def success_table(rows: list[dict]) -> str:
-    """Share of runs that succeed per rig × look with today's defaults, and the medians behind it."""
+def success_table(rows: list[dict], pool_looks: bool = False) -> str:
+    """Share of runs that succeed per rig × look with today's defaults, and the medians behind it;
+    ``pool_looks``: one line per rig over all its looks (the look cell says how many); scenes that
+    kinecast's rigs did not render (``bench/foreign.py``) stay one line each."""
     groups: dict[tuple, list] = {}
     for r in todays_rows(rows):
-        groups.setdefault((r["rig"], r["look"]), []).append(r)
+        pooled = pool_looks and r["rig"] in RIGS
+        groups.setdefault((r["rig"], "" if pooled else r["look"]), []).append(r)
+    groups = {(rig, look or f"{len({r['look'] for r in rs})} looks"): rs for (rig, look), rs in groups.items()}
     lines = ["| rig | look | runs (seeds) | success | position error @60 (px) | per-object error @20 (px) | "
-             "period error | MSE / background-only | position coverage (4 trials) | position coverage "
-             f"({FRESH_TRIALS} more trials) | time to 0.1× persistence (s) | scored with frame steps |",
-             "|---|---|---|---|---|---|---|---|---|---|---|---|"]
+             "period error | MSE / background-only | MSE / persistence | position coverage (4 trials) | "
+             f"position coverage ({FRESH_TRIALS} more trials) | time to 0.1× persistence (s) | scored with frame steps |",
+             "|---|---|---|---|---|---|---|---|---|---|---|---|---|"]
     for (rig, look), rs in sorted(groups.items()):
         med = partial(median_range, rs)
         seeds = ",".join(str(x) for x in sorted({r["seed"] for r in rs}))
         lines.append(f"| {rig} | {look} | {len(rs)} ({seeds}) | {sum(succeeded(r) for r in rs)}/{len(rs)} | "
                      f"{med(lambda r: r['pos_model'])} | {med(lambda r: r.get('obj20_model', math.nan))} | "
                      f"{med(lambda r: r['period_error'])} | {med(lambda r: r['mse_model'] / r['mse_background_only'])} | "
+                     f"{med(lambda r: r['mse_model'] / r['mse_persistence'])} | "
                      f"{med(lambda r: r.get('mean_position_coverage', math.nan))} | "
                      f"{med(lambda r: r.get('fresh_mean_position_coverage', math.nan))} | {ttq_cell(rs)} | "
                      f"{sum(r.get('scoring') == SCORING for r in rs)}/{len(rs)} |")
@@ -333,7 +338,8 @@ def side_by_side_table(rows: list[dict], others: list[dict], names: tuple[str, s
         for r in rs:
             group.setdefault((r["rig"], r["look"]), []).append(r)
     lines = ["| rig | look | recipe | runs (seeds) | success | position error @60 (px) | per-object error @20 (px) | "
-             "period error | MSE / background-only |", "|---|---|---|---|---|---|---|---|---|"]
+             "period error | MSE / background-only | MSE / persistence | time to 0.1× persistence (s) |",
+             "|---|---|---|---|---|---|---|---|---|---|---|"]
     for key in sorted(set(groups[0]) & set(groups[1])):
         for name, rs in zip(names, (groups[0][key], groups[1][key])):
             med = partial(median_range, rs)
@@ -341,7 +347,8 @@ def side_by_side_table(rows: list[dict], others: list[dict], names: tuple[str, s
             lines.append(f"| {key[0]} | {key[1]} | {name} | {len(rs)} ({seeds}) | "
                          f"{sum(succeeded(r) for r in rs)}/{len(rs)} | {med(lambda r: r['pos_model'])} | "
                          f"{med(lambda r: r.get('obj20_model', math.nan))} | {med(lambda r: r['period_error'])} | "
-                         f"{med(lambda r: r['mse_model'] / r['mse_background_only'])} |")
+                         f"{med(lambda r: r['mse_model'] / r['mse_background_only'])} | "
+                         f"{med(lambda r: r['mse_model'] / r['mse_persistence'])} | {ttq_cell(rs)} |")
     return "\n".join(lines) + "\n" if len(lines) > 2 else ""
 
 
@@ -367,6 +374,7 @@ def page(rows: list[dict]) -> str:
             f"{SUCCESS_PERIOD:.0%} (one object), per-object error @20 ≤ {SUCCESS_OBJECT_PX:g} px (several). "
             f"Scored with frame steps: rows scored (or rescored) since the solver keeps its step across "
             f"the gap between the context and the first forecast frame (bench/recipe.py SCORING).\n\n"
+            + "Every look of a rig pooled:\n\n" + success_table(rows, pool_looks=True) + "\nBy look:\n\n"
             + success_table(rows) + "\n" + rate_line(rows) + _side_by_side_section(rows)
             + "\n## Every group of runs\n\n" + table(rows))
 

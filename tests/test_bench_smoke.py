@@ -216,5 +216,13 @@ def test_recipe_bench_puts_todays_runs_beside_the_old_recipe_and_fp32():
     assert [line.split(" | ")[2:6] for line in body] == [["today", "2 (1,2)", "1/2", "2.00 (1.00-3.00)"],
                                                          ["old", "1 (1)", "1/1", "0.50 (0.50-0.50)"]]
     assert "ball" not in table  # no run of today's defaults on the ball here
+    # MSE / persistence 1.0 / 4.0 = 0.25 on every row; no row measured time to quality ("-")
+    assert all(line.split(" | ")[-2:] == ["0.25 (0.25-0.25)", "- |"] for line in body)
+    # pooled over looks: the spring's two classic runs and one dark-on-light run make one line of 3
+    # runs over 2 looks, 2 of them within 2 px, median of 1.0, 3.0 and 1.5 px = 1.5
+    pooled = recipe.success_table(today + [dict(today[0], look="dark_on_light", seed=4, pos_model=1.5)],
+                                  pool_looks=True)
+    assert [line.split(" | ")[1:5] for line in pooled.splitlines()[2:]] == [
+        ["2 looks", "3 (1,2,4)", "2/3", "1.50 (1.00-3.00)"]]
     assert "bfloat16 beside float32" in recipe.page(rows) and "beside the old one" in recipe.page(rows)
     assert recipe.side_by_side_table(today, [], ("today", "old")) == ""
