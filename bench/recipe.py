@@ -274,28 +274,42 @@ def _todays_algorithm(r: dict, sets: frozenset) -> bool:
     return (r.get("defaults", "3").split(":")[0], sets) in SAME_ALGORITHM[kind]
 
 
+# The columns every table of today's runs shares (one group of runs per line): see _outcome_cells
+OUTCOME_HEADER = ("runs (seeds) | success | position error @60 (px) | per-object error @20 (px) | period error | "
+                  "MSE / background-only | MSE / persistence | time to 0.1× persistence (s)")
+
+
+def _outcome_cells(rs: list[dict]) -> str:
+    """The :data:`OUTCOME_HEADER` cells of one group of runs: count and seeds, successes, and medians
+    (min-max) of the scores."""
+    med = partial(median_range, rs)
+    seeds = ",".join(str(x) for x in sorted({r["seed"] for r in rs}))
+    return (f"{len(rs)} ({seeds}) | {sum(succeeded(r) for r in rs)}/{len(rs)} | {med(lambda r: r['pos_model'])} | "
+            f"{med(lambda r: r.get('obj20_model', math.nan))} | {med(lambda r: r['period_error'])} | "
+            f"{med(lambda r: r['mse_model'] / r['mse_background_only'])} | "
+            f"{med(lambda r: r['mse_model'] / r['mse_persistence'])} | {ttq_cell(rs)}")
+
+
+def _divider(header: str) -> str:
+    return "|" + "---|" * (header.count("|") + 1)
+
+
 def success_table(rows: list[dict], pool_looks: bool = False) -> str:
     """Share of runs that succeed per rig × look with today's defaults, and the medians behind it;
     ``pool_looks``: one line per rig over all its looks (the look cell says how many); scenes that
     kinecast's rigs did not render (``bench/foreign.py``) stay one line each."""
     groups: dict[tuple, list] = {}
     for r in todays_rows(rows):
-        pooled = pool_looks and r["rig"] in RIGS
-        groups.setdefault((r["rig"], "" if pooled else r["look"]), []).append(r)
-    groups = {(rig, look or f"{len({r['look'] for r in rs})} looks"): rs for (rig, look), rs in groups.items()}
-    lines = ["| rig | look | runs (seeds) | success | position error @60 (px) | per-object error @20 (px) | "
-             "period error | MSE / background-only | MSE / persistence | position coverage (4 trials) | "
-             f"position coverage ({FRESH_TRIALS} more trials) | time to 0.1× persistence (s) | scored with frame steps |",
-             "|---|---|---|---|---|---|---|---|---|---|---|---|---|"]
-    for (rig, look), rs in sorted(groups.items()):
+        groups.setdefault((r["rig"], None if pool_looks and r["rig"] in RIGS else r["look"]), []).append(r)
+    header = (f"rig | look | {OUTCOME_HEADER} | position coverage (4 trials) | position coverage "
+              f"({FRESH_TRIALS} more trials) | scored with frame steps")
+    lines = [f"| {header} |", _divider(header)]
+    for (rig, look), rs in sorted(groups.items(), key=lambda kv: (kv[0][0], kv[0][1] or "")):
         med = partial(median_range, rs)
-        seeds = ",".join(str(x) for x in sorted({r["seed"] for r in rs}))
-        lines.append(f"| {rig} | {look} | {len(rs)} ({seeds}) | {sum(succeeded(r) for r in rs)}/{len(rs)} | "
-                     f"{med(lambda r: r['pos_model'])} | {med(lambda r: r.get('obj20_model', math.nan))} | "
-                     f"{med(lambda r: r['period_error'])} | {med(lambda r: r['mse_model'] / r['mse_background_only'])} | "
-                     f"{med(lambda r: r['mse_model'] / r['mse_persistence'])} | "
+        look = look or f"{len({r['look'] for r in rs})} looks"
+        lines.append(f"| {rig} | {look} | {_outcome_cells(rs)} | "
                      f"{med(lambda r: r.get('mean_position_coverage', math.nan))} | "
-                     f"{med(lambda r: r.get('fresh_mean_position_coverage', math.nan))} | {ttq_cell(rs)} | "
+                     f"{med(lambda r: r.get('fresh_mean_position_coverage', math.nan))} | "
                      f"{sum(r.get('scoring') == SCORING for r in rs)}/{len(rs)} |")
     return "\n".join(lines) + "\n"
 
@@ -337,18 +351,11 @@ def side_by_side_table(rows: list[dict], others: list[dict], names: tuple[str, s
     for group, rs in zip(groups, (todays_rows(rows), others)):
         for r in rs:
             group.setdefault((r["rig"], r["look"]), []).append(r)
-    lines = ["| rig | look | recipe | runs (seeds) | success | position error @60 (px) | per-object error @20 (px) | "
-             "period error | MSE / background-only | MSE / persistence | time to 0.1× persistence (s) |",
-             "|---|---|---|---|---|---|---|---|---|---|---|"]
+    header = f"rig | look | recipe | {OUTCOME_HEADER}"
+    lines = [f"| {header} |", _divider(header)]
     for key in sorted(set(groups[0]) & set(groups[1])):
         for name, rs in zip(names, (groups[0][key], groups[1][key])):
-            med = partial(median_range, rs)
-            seeds = ",".join(str(x) for x in sorted({r["seed"] for r in rs}))
-            lines.append(f"| {key[0]} | {key[1]} | {name} | {len(rs)} ({seeds}) | "
-                         f"{sum(succeeded(r) for r in rs)}/{len(rs)} | {med(lambda r: r['pos_model'])} | "
-                         f"{med(lambda r: r.get('obj20_model', math.nan))} | {med(lambda r: r['period_error'])} | "
-                         f"{med(lambda r: r['mse_model'] / r['mse_background_only'])} | "
-                         f"{med(lambda r: r['mse_model'] / r['mse_persistence'])} | {ttq_cell(rs)} |")
+            lines.append(f"| {key[0]} | {key[1]} | {name} | {_outcome_cells(rs)} |")
     return "\n".join(lines) + "\n" if len(lines) > 2 else ""
 
 

@@ -220,9 +220,14 @@ def test_recipe_bench_puts_todays_runs_beside_the_old_recipe_and_fp32():
     assert all(line.split(" | ")[-2:] == ["0.25 (0.25-0.25)", "- |"] for line in body)
     # pooled over looks: the spring's two classic runs and one dark-on-light run make one line of 3
     # runs over 2 looks, 2 of them within 2 px, median of 1.0, 3.0 and 1.5 px = 1.5
-    pooled = recipe.success_table(today + [dict(today[0], look="dark_on_light", seed=4, pos_model=1.5)],
+    # a scene drawn by bench/foreign.py is no rig's look: it keeps a line of its own
+    foreign = dict(today[0], rig="foreign", look="rod_pendulum", seed=5, pos_model=0.5)
+    pooled = recipe.success_table(today + [dict(today[0], look="dark_on_light", seed=4, pos_model=1.5), foreign],
                                   pool_looks=True)
-    assert [line.split(" | ")[1:5] for line in pooled.splitlines()[2:]] == [
-        ["2 looks", "3 (1,2,4)", "2/3", "1.50 (1.00-3.00)"]]
+    assert [line.split(" | ")[:5] for line in pooled.splitlines()[2:]] == [
+        ["| foreign", "rod_pendulum", "1 (5)", "1/1", "0.50 (0.50-0.50)"],
+        ["| spring", "2 looks", "3 (1,2,4)", "2/3", "1.50 (1.00-3.00)"]]
+    # every line of a markdown table has as many cells as its header (CommonMark tables, GFM spec)
+    assert len({line.count("|") for line in pooled.splitlines()}) == 1
     assert "bfloat16 beside float32" in recipe.page(rows) and "beside the old one" in recipe.page(rows)
     assert recipe.side_by_side_table(today, [], ("today", "old")) == ""
