@@ -1,8 +1,8 @@
 """Does the fitted spread scale and pixel noise make sampled futures cover held-out truth?
 
 ``python bench/calibration_check.py RUN TRIAL [TRIAL ...]`` copies the run folder to a temporary
-one, fits its spread scale and pixel noise again on the run's own validation trials (as ``fit``
-does after training), then scores 16 sampled futures of each held-out trial (60 frames from the
+one, fits its spread scale and pixel noise again on the run's own validation and training trials
+(as ``fit`` does after training), then scores 16 sampled futures of each held-out trial (60 frames from the
 first ``model.velocity_frames``) without and with the pixel noise, and prints the position
 coverage, the object-pixel band coverage and the all-pixel band coverage per trial (nominal 0.90).
 The run folder given is not changed.
@@ -45,8 +45,9 @@ def main(argv=None) -> int:
         model, cfg = load_run(run)
         summary = json.loads((run / SUMMARY).read_text())
         vals = [read_recording(p, cfg.data) for p in summary["validated_on"]]
-        fitted = calibrate_run(run, vals, summary["longest_window"], cfg, "cpu")
-        print(f"{args.run}: fitted on {len(vals)} validation trial(s): {fitted}")
+        trains = [read_recording(p, cfg.data) for p in summary["trained_on"]]
+        fitted = calibrate_run(run, vals, trains, summary["longest_window"], cfg, "cpu")
+        print(f"{args.run}: fitted on {len(vals)} validation and {len(trains)} training trial(s): {fitted}")
         for label in ("without pixel noise", "with pixel noise"):
             model, cfg = load_run(run)
             if label.startswith("without"):

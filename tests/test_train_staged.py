@@ -69,6 +69,12 @@ def test_positions_stage_finds_the_moving_object(rig, tmp_path):
     from kinecast.train import load_run
 
     assert saved["spread_scale"] is not None and 0.01 <= saved["spread_scale"] <= 1000
+    # our own rule (kinecast.train.loop.calibrate_run): fitted on the held-out and on the training
+    # trials, the larger scale kept and named
+    fits = saved["spread_scale_candidates"]
+    assert set(fits) == {"held-out trials", "training trials"}
+    assert saved["spread_scale_from"] == max(fits, key=fits.get)
+    assert saved["spread_scale"] == pytest.approx(max(fits.values()), rel=1e-3)
     assert float(load_run(tmp_path / "run")[0].spread_scale) == pytest.approx(saved["spread_scale"], rel=1e-6)
 
 

@@ -10,7 +10,9 @@ frames) — then refines it on what the score measures: the object positions tra
 centroids) in the decoded futures against those tracked in the true frames. The tracked positions
 include what the latents leave out (the decoder's drawing offset, a keypoint that sits off the
 object's centroid), and their spread is in pixels, not in a latent posterior that may be tiny.
-The forecast applies the scale in :meth:`LatentODE.rollout`.
+The forecast applies the scale in :meth:`LatentODE.rollout`. ``fit`` calls :func:`calibrate` on the
+held-out trials and on the training trials and keeps the larger scale
+(:func:`kinecast.train.loop.calibrate_run` says why).
 
 The drawn futures alone leave out the likelihood's observation noise: where every future draws the
 object's edge at the same place the band is a point, and a true pixel a little brighter or darker
