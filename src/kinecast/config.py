@@ -126,6 +126,9 @@ class ModelConfig:
     # True: in grey the air table's two pucks look alike and the encoder swapped them between frames;
     # same-day 5-minute bench/recipe.py pairs: air table s2 12.6 -> 7.3 px per puck @20, s3 5.8 -> 8.5
     # (no consistent gain shown); no keypoint reordered on single-object scenes (DEVELOPERS.md)
+    keypoint_trunk_low_precision: bool = _opt(False, "keypoint encoder: run its conv trunk in train.precision's "
+                                              "format too (bf16 where that is in use); its heat maps, their "
+                                              "softmax and the positions read from them stay float32")
     keypoint_tracking: bool = _opt(True, "keypoint encoder: keep each keypoint on one object from frame to frame "
                                    "(constant-velocity prediction + least-distance assignment) where the encoder "
                                    "reads alike objects in a different order; in the context frames and the "

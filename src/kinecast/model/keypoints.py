@@ -37,7 +37,7 @@ import torch.nn.functional as F
 from torch import nn
 
 from .convnets import OUT_GAIN, Activation, bounded_logvar
-from .precision import compute
+from .precision import compute, conv_layout
 
 DILATIONS = (1, 2, 4)  # dilations of the decoder's 3×3 convs: receptive field ≈ 2·(1+2·Σd) px at full size
 UPSCALE = 2  # both nets work at 1/UPSCALE of the frame size (pixel shuffle back up in the decoder)
@@ -199,15 +199,19 @@ def _half(size: int) -> int:
 class KeypointEncoder(nn.Module):
     """Frame (B, C, H, W) and background (C, H, W) → keypoint means and log-variances, each (B, 2K).
 
-    The output interleaves coordinates as ``[x1, y1, x2, y2, ...]``. It always runs in float32,
-    whatever ``train.precision`` says: with its trunk and heat maps in bfloat16 (2⁻⁸ relative
+    The output interleaves coordinates as ``[x1, y1, x2, y2, ...]``. It runs in float32 whatever
+    ``train.precision`` says unless ``low_trunk`` (``model.keypoint_trunk_low_precision``), and then
+    only its conv trunk follows it: with its trunk and heat maps in bfloat16 (2⁻⁸ relative
     rounding of the logits), 5-minute spring runs lost the mass (keypoints 3.0-3.4 px off, two of
     four paired runs failed); kept in float32 the same runs succeeded (DEVELOPERS.md, ninth session).
     """
 
+    compute_dtype: torch.dtype | None = None  # set by use_precision; the trunk only, where ``low_trunk``
+
     def __init__(self, channels: int, size: int, base: int, keypoints: int, init_std: float = INIT_STD,
-                 max_std: float = 1.0, window: int = 0):
+                 max_std: float = 1.0, window: int = 0, low_trunk: bool = False):
         super().__init__()
+        self.low_trunk = bool(low_trunk)
         # read each map within this many cells of its peak; 0, or auto (-1) not yet resolved by fit
         # (a model built directly from the defaults), reads the whole map
         self.window = max(0, int(window))
@@ -236,7 +240,10 @@ class KeypointEncoder(nn.Module):
         """Means and log-variances (B, 2K); with ``with_maps`` also the heat maps' log-probabilities
         (B, K, h, w). The means are read within ``window`` cells of each map's peak
         (:func:`window_expected_xy`), or over the whole map where ``whole_map`` or ``window`` is 0."""
-        h = self.trunk(torch.cat([x, x - background.to(x)], dim=1))
+        x = torch.cat([x, x - background.to(x)], dim=1)
+        dtype = self.compute_dtype if self.low_trunk else None
+        with compute(dtype, x.device.type):
+            h = self.trunk(conv_layout(x, dtype)).to(x.dtype)
         heat = self.heat(h)
         log_maps = heat_softmax(heat, log=True)
         points = window_expected_xy(log_maps.exp(), 0 if whole_map else self.window)

@@ -101,7 +101,8 @@ class LatentODE(nn.Module):
         if self.keypoints:
             self.pos_enc = KeypointEncoder(channels, size, model_cfg.enc_channels, model_cfg.keypoints,
                                            max_std=MAX_STD_BLOBS * model_cfg.blob_std,
-                                           window=model_cfg.keypoint_window)
+                                           window=model_cfg.keypoint_window,
+                                           low_trunk=model_cfg.keypoint_trunk_low_precision)
             self.decoder = KeypointDecoder(model_cfg.keypoints, channels, size, model_cfg.dec_channels,
                                            model_cfg.blob_std)
         else:
