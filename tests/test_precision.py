@@ -64,6 +64,29 @@ def test_bf16_conv_stacks_agree_with_fp32(encoder):
         assert rel_err(low.decode_logits(s), ref.decode_logits(s)) < 1e-3
 
 
+@needs_bf16
+def test_keypoint_trunk_in_bf16_reads_the_same_positions():
+    # model.keypoint_trunk_low_precision: the trunk's features are rounded to bfloat16 (2⁻⁸ relative,
+    # Kalamkar et al. 2019) before the float32 heat maps; positions are softmax-weighted means of the
+    # pixel grid, so a logit error of a few 2⁻⁸ moves them by a few thousandths of the frame's
+    # half-width (normalised units; bound 0.01 ≈ 0.3 px at 64 px: our allowance, not a published figure)
+    torch.manual_seed(0)
+    cfg = C.apply_overrides(C.Config(), ["model.keypoint_trunk_low_precision=true"])
+    ref, low = build_model(cfg, 1), build_model(cfg, 1)
+    bg = torch.rand(1, 64, 64) * 0.8 + 0.1
+    ref.set_background(bg)
+    low.load_state_dict(ref.state_dict())
+    assert P.use_precision(low, "bf16") == "bf16"
+    frames = bg.expand(6, -1, -1, -1).clone()
+    for i in range(6):  # a bright square at another place in each frame, so the maps have a peak
+        frames[i, :, 10 + 7 * i:18 + 7 * i, 12 + 5 * i:20 + 5 * i] = 1.0
+    with torch.no_grad():
+        got, want = low.pos_enc(frames, low.background)[0], ref.pos_enc(frames, ref.background)[0]
+    assert got.dtype == torch.float32
+    gap = float((got - want).abs().max())
+    assert 0 < gap < 0.01  # rounded (not float32 throughout), and close
+
+
 def test_explicit_bf16_without_hardware_is_refused_in_one_line(rig, tmp_path, monkeypatch):
     monkeypatch.setattr(P, "bf16_supported", lambda device="cpu": False)
     with pytest.raises(KinecastError, match="train.precision.*no native bfloat16"):
