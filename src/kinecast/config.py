@@ -126,7 +126,11 @@ class ModelConfig:
     # True: in grey the air table's two pucks look alike and the encoder swapped them between frames;
     # same-day 5-minute bench/recipe.py pairs: air table s2 12.6 -> 7.3 px per puck @20, s3 5.8 -> 8.5
     # (no consistent gain shown); no keypoint reordered on single-object scenes (DEVELOPERS.md)
-    keypoint_trunk_low_precision: bool = _opt(False, "keypoint encoder: run its conv trunk in train.precision's "
+    # on (defaults 19): the 64 px bf16 step 1.37x -> 1.70x fp32's speed; paired 5-minute runs: spring classic s8
+    # 1.87 px (off 1.84), dark on light s8 1.22 (0.97), drift + noise s8 1.15 (1.04 with defaults 17),
+    # gradient s8 2.12 (off, the same day: 2.23), s7 0.66 (0.53 with defaults 17), pendulum classic s6 0.46 (0.46), dark on light s8 0.42
+    # (0.48) (DEVELOPERS.md, twentieth session). With the heat maps in bf16 too it lost spring runs (precision)
+    keypoint_trunk_low_precision: bool = _opt(True, "keypoint encoder: run its conv trunk in train.precision's "
                                               "format too (bf16 where that is in use); its heat maps, their "
                                               "softmax and the positions read from them stay float32")
     keypoint_tracking: bool = _opt(True, "keypoint encoder: keep each keypoint on one object from frame to frame "
@@ -293,14 +297,14 @@ class TrainConfig:
     threads: int = _opt(0, "torch threads; 0 = the core count", lo=0)
     device: str = _opt("auto", "compute device", choices=("auto", "cpu", "cuda"))
     # auto: bf16 conv nets made the joint stage ~1.9x faster (measured with the keypoint encoder in bf16 too;
-    # it now stays float32, and the 4-minute demo fit made 2262 steps with defaults 12 against 2270 with
+    # its heat maps now stay float32 (model.keypoint_trunk_low_precision), and the 4-minute demo fit made 2262 steps with defaults 12 against 2270 with
     # defaults 9 in fp32); with the rest of defaults 12 all 20 pendulum and spring runs succeeded. With the keypoint
     # encoder in bf16 too it lost two spring runs (seed 5 classic 0.95 -> 2.23 px, drift + noise
     # 1.52 -> 2.10 px; bench/results/recipe_runs.jsonl, "precision" field; DEVELOPERS.md)
     precision: str = _opt("auto", "number format of the conv nets (training, forecasts and scores): fp32; bf16 "
                           "(faster where the CPU or GPU has native bfloat16; refused where not); auto = bf16 "
                           "where native (checked at run time), fp32 otherwise. Weights and everything else "
-                          "(and the keypoint encoder) stay float32", choices=("auto", "fp32", "bf16"))
+                          "(and the keypoint encoder's heat maps) stay float32", choices=("auto", "fp32", "bf16"))
     max_faults: int = _opt(5, "non-finite losses tolerated (each rolls back) before stopping", lo=0)
 
 
@@ -468,7 +472,8 @@ def to_dict(cfg: Config) -> dict:
 # before them: a run's config.toml without the key is read with that value, not today's default.
 # (field_per_keypoint: runs from before the key had one field over all coordinates; unresolved "auto"
 # would build that too, but only by accident of LatentODE testing for "on")
-SAVED_RUN_ABSENT = {("model", "keypoint_window"): 0, ("model", "field_per_keypoint"): "off"}
+SAVED_RUN_ABSENT = {("model", "keypoint_window"): 0, ("model", "field_per_keypoint"): "off",
+                    ("model", "keypoint_trunk_low_precision"): False}
 
 
 def saved_run_base() -> Config:
