@@ -76,6 +76,7 @@ class Profile:
     eval_trials: int                      # held-out trials every method is scored on
     coverage_trials: int                  # held-out trials the sampled futures' coverage is judged on
     val_every: int                        # steps between validations (and checkpoints)
+    gain_rounds: int                      # interleaved fp32 / bf16 rounds for the speed-up rows
 
 
 PROFILES = {
@@ -84,20 +85,23 @@ PROFILES = {
                     memory_frames=(1000, 10000), memory_size=64, memory_steps=5,
                     video_frames=1000, video_upscale=4, video_size=64,
                     rigs=("pendulum", "spring", "airtable"), quality_size=64, budget="5m", window=20,
-                    train_trials=12, train_frames=120, eval_trials=4, coverage_trials=12, val_every=25),
+                    train_trials=12, train_frames=120, eval_trials=4, coverage_trials=12, val_every=25,
+                    gain_rounds=8),
     "quick": Profile("quick", repeats=3, train_sizes=(32, 64), efficiency_size=64, step_window=20,
                      rollout_size=64, rollout_frames=100, rollout_samples=(1, 10),
                      memory_frames=(1000, 10000), memory_size=64, memory_steps=3,
                      video_frames=500, video_upscale=4, video_size=64,
                      rigs=("pendulum",), quality_size=32, budget="45s", window=20,
-                     train_trials=8, train_frames=100, eval_trials=3, coverage_trials=6, val_every=15),
+                     train_trials=8, train_frames=100, eval_trials=3, coverage_trials=6, val_every=15,
+                     gain_rounds=4),
     # Toy sizes for development and the smoke test: the goals do not apply to these numbers.
     "smoke": Profile("smoke", repeats=2, train_sizes=(16,), efficiency_size=16, step_window=6,
                      rollout_size=16, rollout_frames=10, rollout_samples=(1, 2),
                      memory_frames=(60, 120), memory_size=16, memory_steps=2,
                      video_frames=30, video_upscale=4, video_size=16,
                      rigs=("pendulum",), quality_size=16, budget="4s", window=6,
-                     train_trials=4, train_frames=30, eval_trials=2, coverage_trials=2, val_every=5),
+                     train_trials=4, train_frames=30, eval_trials=2, coverage_trials=2, val_every=5,
+                     gain_rounds=2),
 }
 
 

@@ -23,9 +23,10 @@ def peak_rows(peaks: dict[str, dict]) -> list[Row]:
     return rows
 
 
-def train_rows(peaks: dict[str, dict], train: list[dict], p: Profile) -> list[Row]:
+def train_rows(peaks: dict[str, dict], train: list[dict], p: Profile, gains: list[dict] = ()) -> list[Row]:
     """Per-size step throughput and achieved FLOP/s, the efficiency ratios against the peak of the
-    format each step ran in, and the speed-up of bfloat16 over float32 where both ran."""
+    format each step ran in, the ratio of the two formats' best step times where both ran, and the
+    speed-up of bfloat16 over float32 measured interleaved (``gains``: ``throughput.precision_gain``)."""
     rows = []
     for r in train:
         rows.append(Row("train", f"training step {r['size']} px {r['precision']}, batch {r['batch']} × "
@@ -43,9 +44,12 @@ def train_rows(peaks: dict[str, dict], train: list[dict], p: Profile) -> list[Ro
     by = {(r["size"], r["precision"]): r["step_s"] for r in train}
     for size in sorted({r["size"] for r in train}):
         if (size, "fp32") in by and (size, "bf16") in by:
-            gain = by[size, "fp32"] / by[size, "bf16"]
-            rows.append(goal_row("train", f"bf16 step speed-up over fp32 ({size} px, side by side)", gain,
-                                 f"{gain:.2f}×", BF16_GAIN_GOAL, f"≥ {BF16_GAIN_GOAL}×"))
+            ratio = by[size, "fp32"] / by[size, "bf16"]
+            rows.append(Row("train", f"fp32 / bf16 best step time ({size} px, timed minutes apart)", f"{ratio:.2f}×"))
+    for g in gains:
+        rows.append(goal_row("train", f"bf16 step speed-up over fp32 ({g['size']} px, median of {g['rounds']} "
+                             "interleaved rounds)", g["gain"], f"{g['gain']:.2f}× (rounds {g['gain_lo']:.2f}-"
+                             f"{g['gain_hi']:.2f}×)", BF16_GAIN_GOAL, f"≥ {BF16_GAIN_GOAL}×"))
     return rows
 
 

@@ -75,7 +75,13 @@ def run(args: argparse.Namespace) -> C.Report:
                     _say(f"training step at {size} px, {precision}")
                     raw["train"].append(throughput.train_step_rate(size, profile.step_window, profile.repeats,
                                                                    device, precision))
-            report.rows += train_rows(raw["peak"], raw["train"], profile)
+            raw["gain"] = []
+            if "bf16" in raw["peak"]:
+                for size in profile.train_sizes:
+                    _say(f"bf16 against fp32 at {size} px, {profile.gain_rounds} interleaved rounds")
+                    raw["gain"].append(throughput.precision_gain(size, profile.step_window, profile.gain_rounds,
+                                                                 device))
+            report.rows += train_rows(raw["peak"], raw["train"], profile, raw["gain"])
             raw["profile"] = {}
             for precision in raw["peak"]:
                 _say(f"profile of the {profile.efficiency_size} px step, {precision}")

@@ -13,6 +13,7 @@ initial states, as ``kinecast forecast --samples S`` does): ``S × frames / time
 from __future__ import annotations
 
 import math
+import time
 
 import numpy as np
 import torch
@@ -95,6 +96,39 @@ def train_step_rate(size: int, window: int, repeats: int, device: torch.device, 
     seconds = best_time(step, repeats, device)
     return {**info, "step_s": seconds, "frames_per_s": info["batch"] * window / seconds,
             "flops_per_step": flops, "flops_per_s": flops / seconds}
+
+
+def precision_gain(size: int, window: int, rounds: int, device: torch.device, steps: int = 3) -> dict:
+    """Speed-up of the bfloat16 training step over the float32 one at ``size`` px, interleaved.
+
+    Both steps are built once; each of ``rounds`` rounds times ``steps`` float32 steps, then
+    ``steps`` bfloat16 steps (after one untimed step of each). The gain is the median over the
+    rounds of the float32 time over the bfloat16 time: a shared machine whose speed drifts slows
+    both halves of a round alike, where two separate best-of timings minutes apart can catch it
+    fast for one format and slow for the other (on 2026-12-04 the best-of-5 ratio read 1.41× at
+    64 px in the full bench, and 8 interleaved rounds 1.70× the same hour).
+
+    Returns ``size``, ``rounds``, ``gain`` (median), ``gain_lo`` / ``gain_hi`` (min / max over the
+    rounds) and ``fp32_s`` / ``bf16_s`` (median seconds per step).
+    """
+    timed = {}
+    for precision in ("fp32", "bf16"):
+        _, step, _ = _training_step(size, window, device, precision)
+        step()
+        timed[precision] = step
+    per = {precision: [] for precision in timed}
+    for _ in range(max(1, rounds)):
+        for precision, step in timed.items():
+            sync(device)
+            t0 = time.perf_counter()
+            for _ in range(steps):
+                step()
+            sync(device)
+            per[precision].append((time.perf_counter() - t0) / steps)
+    ratios = np.array(per["fp32"]) / np.array(per["bf16"])
+    return {"size": size, "rounds": len(ratios), "gain": float(np.median(ratios)),
+            "gain_lo": float(ratios.min()), "gain_hi": float(ratios.max()),
+            "fp32_s": float(np.median(per["fp32"])), "bf16_s": float(np.median(per["bf16"]))}
 
 
 def step_profile(size: int, window: int, device: torch.device, precision: str = "auto", steps: int = 3,

@@ -75,6 +75,23 @@ def test_training_step_rate_is_consistent_and_below_peak():
     assert [r.measure.split(" (")[0] for r in rows if r.measure.startswith("efficiency")] == ["efficiency"]
 
 
+
+def test_interleaved_speed_up_is_the_median_of_its_rounds():
+    # bench/throughput.precision_gain: the median of per-round fp32 / bf16 time ratios lies within
+    # the rounds' range (definition of the median); each format's step is timed on the standard
+    # library's clock, so its median step time is below the call's wall time
+    from kinecast.model.precision import bf16_supported
+
+    if not bf16_supported("cpu"):
+        pytest.skip("no native bfloat16 on this CPU: the bench leaves the speed-up row out")
+    t0 = time.perf_counter()
+    g = throughput.precision_gain(16, 4, 3, CPU, steps=1)
+    wall = time.perf_counter() - t0
+    assert g["rounds"] == 3 and 0 < g["gain_lo"] <= g["gain"] <= g["gain_hi"]
+    assert 0 < g["fp32_s"] + g["bf16_s"] < wall
+    rows = train_rows({}, [], common.PROFILES["smoke"], [g])
+    assert [r.measure for r in rows] == ["bf16 step speed-up over fp32 (16 px, median of 3 interleaved rounds)"]
+
 def test_child_peak_rss_sees_a_known_allocation():
     # 2**25 float64 values written by np.ones are 2**25 × 8 bytes = 256 MiB resident (numpy's itemsize
     # for float64 is 8 bytes); the child's reported peak must exceed a bare child's by about that.
