@@ -37,16 +37,22 @@ def rel_err(a: torch.Tensor, b: torch.Tensor) -> float:
     return float((a - b).abs().max() / b.abs().max().clamp_min(1e-12))
 
 
-@needs_bf16
-@pytest.mark.parametrize("encoder", ["keypoints", "dense"])
-def test_bf16_conv_stacks_agree_with_fp32(encoder):
+def twin_models(setting: str):
+    """Two default 64 px models with ``setting`` and the same weights and background: float32, and
+    the same in bf16; and that background."""
     torch.manual_seed(0)
-    cfg = C.apply_overrides(C.Config(), [f"model.encoder={encoder}"])
+    cfg = C.apply_overrides(C.Config(), [setting])
     ref, low = build_model(cfg, 1), build_model(cfg, 1)
     bg = torch.rand(1, 64, 64) * 0.8 + 0.1
     ref.set_background(bg)
     low.load_state_dict(ref.state_dict())
     assert P.use_precision(low, "bf16") == "bf16"
+    return ref, low, bg
+
+@needs_bf16
+@pytest.mark.parametrize("encoder", ["keypoints", "dense"])
+def test_bf16_conv_stacks_agree_with_fp32(encoder):
+    ref, low, _ = twin_models(f"model.encoder={encoder}")
     frames = torch.rand(6, 1, 64, 64)
     s = torch.rand(6, ref.q) * 1.6 - 0.8
     with torch.no_grad():
@@ -72,13 +78,7 @@ def test_keypoint_trunk_in_bf16_reads_the_same_positions(low_trunk):
     # thousandths of the frame's half-width (normalised units; bound 0.01 ≈ 0.3 px at 64 px: our
     # allowance, not a published figure). Off, the encoder stays float32 (only its weights' layout
     # changes): coordinates in [-1, 1] agree to float32 rounding (eps 1.2e-7), far below 2⁻⁸.
-    torch.manual_seed(0)
-    cfg = C.apply_overrides(C.Config(), [f"model.keypoint_trunk_low_precision={str(low_trunk).lower()}"])
-    ref, low = build_model(cfg, 1), build_model(cfg, 1)
-    bg = torch.rand(1, 64, 64) * 0.8 + 0.1
-    ref.set_background(bg)
-    low.load_state_dict(ref.state_dict())
-    assert P.use_precision(low, "bf16") == "bf16"
+    ref, low, bg = twin_models(f"model.keypoint_trunk_low_precision={str(low_trunk).lower()}")
     frames = bg.expand(6, -1, -1, -1).clone()
     for i in range(6):  # a bright square at another place in each frame, so the maps have a peak
         frames[i, :, 10 + 7 * i:18 + 7 * i, 12 + 5 * i:20 + 5 * i] = 1.0
