@@ -126,10 +126,11 @@ class ModelConfig:
     # True: in grey the air table's two pucks look alike and the encoder swapped them between frames;
     # same-day 5-minute bench/recipe.py pairs: air table s2 12.6 -> 7.3 px per puck @20, s3 5.8 -> 8.5
     # (no consistent gain shown); no keypoint reordered on single-object scenes (DEVELOPERS.md)
-    # on (defaults 19): the 64 px bf16 step 1.37x -> 1.70x fp32's speed; paired 5-minute runs: spring classic s8
-    # 1.87 px (off 1.84), dark on light s8 1.22 (0.97), drift + noise s8 1.15 (1.04 with defaults 17),
-    # gradient s8 2.12 (off, the same day: 2.23), s7 0.66 (0.53 with defaults 17), pendulum classic s6 0.46 (0.46), dark on light s8 0.42
-    # (0.48) (DEVELOPERS.md, twentieth session). With the heat maps in bf16 too it lost spring runs (precision)
+    # on (defaults 19): the 64 px bf16 step 1.37x -> 1.70x fp32's speed; paired 5-minute runs: spring
+    # classic s8 1.87 px (off 1.84), dark on light s8 1.22 (0.97), drift + noise s8 1.15 (1.04 with
+    # defaults 17), gradient s8 2.12 (off, the same day: 2.23), s7 0.66 (0.53 with defaults 17);
+    # pendulum classic s6 0.46 (0.46), dark on light s8 0.42 (0.48) (DEVELOPERS.md, twentieth
+    # session). With the heat maps in bf16 too it lost spring runs (see train.precision)
     keypoint_trunk_low_precision: bool = _opt(True, "keypoint encoder: run its conv trunk in train.precision's "
                                               "format too (bf16 where that is in use); its heat maps, their "
                                               "softmax and the positions read from them stay float32")
@@ -297,8 +298,8 @@ class TrainConfig:
     threads: int = _opt(0, "torch threads; 0 = the core count", lo=0)
     device: str = _opt("auto", "compute device", choices=("auto", "cpu", "cuda"))
     # auto: bf16 conv nets made the joint stage ~1.9x faster (measured with the keypoint encoder in bf16 too;
-    # its heat maps now stay float32 (model.keypoint_trunk_low_precision), and the 4-minute demo fit made 2262 steps with defaults 12 against 2270 with
-    # defaults 9 in fp32); with the rest of defaults 12 all 20 pendulum and spring runs succeeded. With the keypoint
+    # its heat maps now stay float32 (model.keypoint_trunk_low_precision), and the 4-minute demo fit
+    # made 2262 steps with defaults 12 against 2270 with defaults 9 in fp32); with the rest of defaults 12 all 20 pendulum and spring runs succeeded. With the keypoint
     # encoder in bf16 too it lost two spring runs (seed 5 classic 0.95 -> 2.23 px, drift + noise
     # 1.52 -> 2.10 px; bench/results/recipe_runs.jsonl, "precision" field; DEVELOPERS.md)
     precision: str = _opt("auto", "number format of the conv nets (training, forecasts and scores): fp32; bf16 "

@@ -67,10 +67,11 @@ def run(args, cfg) -> int:
             print(f"verdict on the held-out frames ({level}): {verdict['text']}")
         if summary.get("spread_scale"):
             where = summary.get("spread_scale_from") or "held-out trials"
-            print(f"sampled futures: spread scaled by {summary['spread_scale']:.3g} (fitted on the {where}, "
-                  f"the larger of the held-out and training trials' fits, so that {100 * cfg.score.band:.0f} % of "
-                  "their true object positions (tracked in the frames) fall inside the futures' central region; "
-                  "applies to forecast/score with --samples > 1)")
+            both = len(summary.get("spread_scale_candidates") or {}) > 1
+            print(f"sampled futures: spread scaled by {summary['spread_scale']:.3g} (fitted on the {where}"
+                  + (", the larger of the held-out and training trials' fits" if both else "")
+                  + f", so that {100 * cfg.score.band:.0f} % of their true object positions (tracked in the "
+                  "frames) fall inside the futures' central region; applies to forecast/score with --samples > 1)")
             if summary.get("pixel_noise"):
                 print(f"sampled futures: pixel noise of std {summary['pixel_noise']:.3g} (intensity 0-1) belongs "
                       "to their predictive distribution (fitted likewise on the object's pixels; used by the "
