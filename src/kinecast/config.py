@@ -299,7 +299,8 @@ class TrainConfig:
     device: str = _opt("auto", "compute device", choices=("auto", "cpu", "cuda"))
     # auto: bf16 conv nets made the joint stage ~1.9x faster (measured with the keypoint encoder in bf16 too;
     # its heat maps now stay float32 (model.keypoint_trunk_low_precision), and the 4-minute demo fit
-    # made 2262 steps with defaults 12 against 2270 with defaults 9 in fp32); with the rest of defaults 12 all 20 pendulum and spring runs succeeded. With the keypoint
+    # made 2262 steps with defaults 12 against 2270 with defaults 9 in fp32); with the rest of
+    # defaults 12 all 20 pendulum and spring runs succeeded. With the keypoint
     # encoder in bf16 too it lost two spring runs (seed 5 classic 0.95 -> 2.23 px, drift + noise
     # 1.52 -> 2.10 px; bench/results/recipe_runs.jsonl, "precision" field; DEVELOPERS.md)
     precision: str = _opt("auto", "number format of the conv nets (training, forecasts and scores): fp32; bf16 "
