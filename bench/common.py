@@ -16,6 +16,7 @@ from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Callable
 
+import numpy as np
 import torch
 
 from kinecast.fileio import write_text
@@ -31,6 +32,32 @@ RSS_GOAL_BYTES = 1.5e9        # peak RSS while training, 64 px (1.5 GB, decimal)
 READ_RATIO_GOAL = 0.8         # kinecast read throughput over a raw ffmpeg decode of the same file
 COVERAGE_SAMPLES = 16         # futures drawn per trial for the coverage figures (seeded: forecast.seed)
 COVERAGE_KEYS = ("mean_position_coverage", "mean_object_band_coverage")
+# Central share of the interval quoted beside a mean over trials (bootstrap over the trials)
+INTERVAL_LEVEL = 0.90
+
+
+def mean_interval(values, level: float = INTERVAL_LEVEL, seed: int = 0) -> tuple[float, float]:
+    """Percentile-bootstrap ``level`` interval of the mean of per-trial ``values`` (trials resampled
+    with replacement; non-finite entries left out; NaN, NaN when fewer than two remain).
+
+    A mean over a dozen trials carries the trials' own spread: the coverage of one pendulum run
+    ranged 0.4-1.0 from trial to trial, so a perfectly calibrated model's mean over 12 trials can
+    land outside 0.85-0.95 by chance. The interval says how far.
+
+    References
+    ----------
+    B. Efron and R. J. Tibshirani (1993). An Introduction to the Bootstrap, ch. 13 (percentile
+    interval); computed with :func:`scipy.stats.bootstrap`.
+    """
+    from scipy.stats import bootstrap
+
+    x = np.asarray(values, dtype=float)
+    x = x[np.isfinite(x)]
+    if len(x) < 2 or np.ptp(x) == 0:
+        return (float(x[0]), float(x[0])) if len(x) >= 2 else (math.nan, math.nan)
+    res = bootstrap((x,), np.mean, confidence_level=level, method="percentile", n_resamples=2000,
+                    random_state=np.random.default_rng(seed))
+    return float(res.confidence_interval.low), float(res.confidence_interval.high)
 
 
 def trial_coverage(model, cfg, rec, n: int, device="cpu") -> dict[str, float]:
@@ -185,11 +212,30 @@ def use_all_cores() -> int:
     return n
 
 
+# CPU flags that decide how fast bfloat16 runs (x86: AVX-512 BF16 instructions, AMX tiles)
+BF16_FLAGS = ("avx512_bf16", "amx_bf16", "amx_tile")
+
+
+def cpu_facts(cpuinfo: str | None = None) -> dict:
+    """The CPU's model name and which of :data:`BF16_FLAGS` it has, from Linux's /proc/cpuinfo
+    (``cpuinfo``: its text, read when None; {} where there is none). The workplace lends machines
+    of more than one kind: the bf16 peak measured 792 GFLOP/s on one and 408 on another."""
+    if cpuinfo is None:
+        try:
+            cpuinfo = Path("/proc/cpuinfo").read_text()
+        except OSError:
+            return {}
+    fields = dict(line.split(":", 1) for line in cpuinfo.splitlines()[:64] if ":" in line)
+    fields = {k.strip(): v.strip() for k, v in fields.items()}
+    flags = set(fields.get("flags", "").split())
+    return {"cpu_model": fields.get("model name", "?"), "bf16_flags": [f for f in BF16_FLAGS if f in flags]}
+
+
 def machine_info(device: torch.device) -> dict:
     """Facts about where the numbers were measured."""
     info = {"platform": platform.platform(), "python": platform.python_version(),
             "torch": torch.__version__, "cpu_count": os.cpu_count(), "device": str(device),
-            "torch_threads": torch.get_num_threads()}
+            "torch_threads": torch.get_num_threads(), **cpu_facts()}
     if device.type == "cuda":
         info["gpu"] = torch.cuda.get_device_name(device)
     return info
@@ -201,6 +247,13 @@ def load_average() -> list[float] | None:
         return [round(x, 2) for x in os.getloadavg()]
     except (AttributeError, OSError):
         return None
+
+
+def _cpu_words(machine: dict) -> str:
+    flags = machine.get("bf16_flags")
+    if flags is None:
+        return "CPU model not recorded"
+    return f"{machine.get('cpu_model', '?')}, bf16 flags: {', '.join(flags) or 'none'}"
 
 
 @dataclass
@@ -216,7 +269,8 @@ class Report:
         m = self.meta
         head = [f"# kinecast bench — profile `{self.profile}`", "",
                 f"Measured {m.get('finished', '')} on {m.get('machine', {}).get('cpu_count')} cores "
-                f"({m.get('machine', {}).get('device')}); load average at start {m.get('load_start')}, "
+                f"({m.get('machine', {}).get('device')}; {_cpu_words(m.get('machine', {}))}); "
+                f"load average at start {m.get('load_start')}, "
                 f"at end {m.get('load_end')}; run took {m.get('elapsed_s')} s.", ""]
         if self.profile == "smoke":
             head += ["Smoke profile: toy sizes to keep the scripts working; the goals do not apply.", ""]

@@ -34,7 +34,7 @@ from kinecast.score.evaluate import evaluate
 from kinecast.train import fit, load_run
 from kinecast import runfolder as rf
 
-from .common import BEAT_FACTOR, NOMINAL_FPS, Profile, pick_device, trial_coverage
+from .common import BEAT_FACTOR, NOMINAL_FPS, Profile, mean_interval, pick_device, trial_coverage
 
 TRAIN_SEED, EVAL_SEED = 1, 2
 LEARNED = ("second_order", "first_order")
@@ -170,13 +170,16 @@ def coverages(model, cfg: Config, recs: list, window: int, device) -> dict:
     """Mean position and object-pixel band coverage of :data:`bench.common.COVERAGE_SAMPLES` sampled futures per
     evaluation trial over the first 3·W forecast frames (``score.band``, nominal 0.90). Judged on the
     profile's ``coverage_trials`` (12 in the full run): on 4 trials one run's coverage ranged 0.4-1.0
-    per trial, so 4 say little about calibration."""
+    per trial, so 4 say little about calibration. Per coverage: ``mean``, ``interval`` (the
+    bootstrap interval of that mean over the trials, :func:`bench.common.mean_interval`) and the
+    per-trial values."""
     got = {"position": [], "object band": []}
     for rec in recs:
         m = trial_coverage(model, cfg, rec, max(HORIZONS) * window, device)
         got["position"].append(m["mean_position_coverage"])
         got["object band"].append(m["mean_object_band_coverage"])
-    return {name: _nanmean(np.asarray(v, dtype=float)) for name, v in got.items()}
+    return {name: {"mean": _nanmean(np.asarray(v, dtype=float)), "interval": mean_interval(v), "trials": v}
+            for name, v in got.items()}
 
 
 def _nanmean(x: np.ndarray) -> float:

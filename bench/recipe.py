@@ -116,7 +116,8 @@ TABLE_FILE = "recipe.md"
 
 def score_run(run: Path, trials: list[Path], fresh: list[Path] = ()) -> dict:
     """Mean scores of the run's best weights over the held-out ``trials``; coverage also over the
-    ``fresh`` trials (keys ``fresh_mean_position_coverage``, ``fresh_mean_object_band_coverage``)."""
+    ``fresh`` trials (keys ``fresh_mean_position_coverage``, ``fresh_mean_object_band_coverage``),
+    and every coverage per trial (``coverage_per_trial``)."""
     model, cfg = load_run(run)
     k = cfg.model.velocity_frames
     acc: dict[str, list] = {}
@@ -143,6 +144,8 @@ def score_run(run: Path, trials: list[Path], fresh: list[Path] = ()) -> dict:
         for key, value in trial_coverage(model, cfg, read_recording(trial, cfg.data), HORIZON).items():
             acc.setdefault(f"fresh_{key}", []).append(value)
     out = {key: float(np.nanmean(v)) if np.isfinite(v).any() else math.nan for key, v in acc.items()}
+    # per trial too: a mean over a dozen trials moves by ± a few hundredths from the trials' spread alone
+    out["coverage_per_trial"] = {key: [round(float(x), 4) for x in v] for key, v in acc.items() if "coverage" in key}
     p_t, p_m = np.array(acc["period_truth"]), np.array(acc["period_model"])
     ok = np.isfinite(p_t)
     out["period_error"] = float(np.nanmean(np.abs(p_m[ok] - p_t[ok]) / p_t[ok])) if ok.any() else math.nan

@@ -4,8 +4,8 @@ from __future__ import annotations
 
 import math
 
-from .common import (BEAT_FACTOR, BF16_GAIN_GOAL, COVERAGE_SAMPLES, EFFICIENCY_GOAL, FLAT_RSS_RATIO, READ_RATIO_GOAL, ROLLOUT_GOAL_FPS,
-                     RSS_GOAL_BYTES, Profile, Row, fmt_si, goal_row)
+from .common import (BEAT_FACTOR, BF16_GAIN_GOAL, COVERAGE_SAMPLES, EFFICIENCY_GOAL, FLAT_RSS_RATIO, INTERVAL_LEVEL,
+                     READ_RATIO_GOAL, ROLLOUT_GOAL_FPS, RSS_GOAL_BYTES, Profile, Row, fmt_si, goal_row)
 from .quality import (BASELINES, COVERAGE_GOAL, EVAL_SEED, HORIZONS, LEARNED, TRAIN_SEED, TTQ_GOAL_OTHER_S,
                       TTQ_GOAL_S)
 
@@ -101,17 +101,26 @@ def _method_value(s: dict, persistence_mse: float, is_persistence: bool) -> str:
 
 
 def coverage_rows(rig: str, cover: dict, trials: int | None = None) -> list[Row]:
-    """One row per learned method and coverage ({method: {"position": x, "object band": y}}) over
-    ``trials`` held-out trials (not named when unknown: results written before it was stored), judged
-    against :data:`bench.quality.COVERAGE_GOAL`; NaN (nothing could be judged) is unjudged."""
+    """One row per learned method and coverage ({method: {"position": c, "object band": c}}, each
+    ``c`` :func:`bench.quality.coverages`'s {"mean", "interval", "trials"} or, in results written
+    before the interval was stored, the mean alone) over ``trials`` held-out trials (not named when
+    unknown), judged by the mean against :data:`bench.quality.COVERAGE_GOAL`; NaN (nothing could be
+    judged) is unjudged. The interval of the mean over the trials is shown beside it: the goal's
+    band is narrow next to the trial-to-trial spread of a dozen trials."""
     lo, hi = COVERAGE_GOAL
     held = f"{trials} held-out trials, " if trials else ""
     rows = []
     for method, cov in cover.items():
-        for name, value in cov.items():
+        for name, got in cov.items():
+            got = got if isinstance(got, dict) else {"mean": got}
+            value = got["mean"]
             ok = None if value != value else lo <= value <= hi
+            text = f"{value:.2f}"
+            a, b = got.get("interval", (math.nan, math.nan))
+            if a == a and b == b:
+                text += f" ({100 * INTERVAL_LEVEL:.0f}% interval of the mean over the trials {a:.2f}-{b:.2f})"
             rows.append(Row("coverage", f"{rig}: {method} {name} coverage ({COVERAGE_SAMPLES} futures, "
-                            f"{held}nominal 0.90)", f"{value:.2f}", f"{lo:g}-{hi:g}", ok))
+                            f"{held}nominal 0.90)", text, f"{lo:g}-{hi:g}", ok))
     return rows
 
 

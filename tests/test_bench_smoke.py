@@ -167,6 +167,30 @@ def test_coverage_rows_judge_against_the_issue_goal():
     # the number of held-out trials the coverage was judged on is part of the measure's name
     assert all("12 held-out trials" in r.measure for r in coverage_rows("spring", {"x": {"position": 0.9}}, 12))
     assert all("held-out" not in r.measure for r in rows)
+    # the form bench.quality.coverages stores: judged by the mean, the interval shown beside it
+    (row,) = coverage_rows("spring", {"x": {"position": {"mean": 0.83, "interval": (0.78, 0.88),
+                                                         "trials": [0.8, 0.86]}}}, 12)
+    assert row.met is False and "0.83" in row.value and "0.78-0.88" in row.value
+
+
+def test_mean_interval_matches_the_normal_theory_interval():
+    # For many trials the bootstrap percentile interval of a mean approaches the normal-theory one,
+    # mean ± z(0.95) · s / √n with z(0.95) = 1.6449 (central limit theorem; Efron & Tibshirani 1993,
+    # ch. 13; the quantile from scipy.stats.norm). Independent numpy draws stand in for per-trial coverages.
+    from scipy.stats import norm
+
+    from bench.common import mean_interval
+
+    x = np.random.default_rng(3).normal(0.9, 0.1, size=400)
+    lo, hi = mean_interval(x, 0.9)
+    half = norm.ppf(0.95) * x.std(ddof=1) / np.sqrt(len(x))
+    assert abs((hi - lo) / 2 - half) < 0.15 * half
+    assert abs((hi + lo) / 2 - x.mean()) < 0.2 * half
+    # twice the trials: the interval narrows by about √2
+    lo2, hi2 = mean_interval(np.concatenate([x, x + 1e-9]), 0.9)
+    assert 1.2 < (hi - lo) / (hi2 - lo2) < 1.65
+    # NaN trials are left out; fewer than two finite values give no interval
+    assert np.isnan(mean_interval([0.9, math.nan])).all()
 
 
 def test_time_to_quality_rows_judge_each_rig_against_the_issue_goal():
@@ -248,3 +272,18 @@ def test_recipe_bench_puts_todays_runs_beside_the_old_recipe_and_fp32():
     assert len({line.count("|") for line in pooled.splitlines()}) == 1
     assert "bfloat16 beside float32" in recipe.page(rows) and "beside the old one" in recipe.page(rows)
     assert recipe.side_by_side_table(today, [], ("today", "old")) == ""
+
+
+def test_cpu_facts_read_the_model_and_bf16_flags():
+    # /proc/cpuinfo's "key<TAB>: value" lines as the Linux kernel writes them (Documentation/
+    # filesystems/proc.rst; "flags" lists the CPU features by their kernel names, e.g. avx512_bf16
+    # and amx_tile on x86, arch/x86/include/asm/cpufeatures.h)
+    from bench.common import _cpu_words, cpu_facts
+
+    text = ("processor\t: 0\nvendor_id\t: AuthenticAMD\nmodel name\t: AMD EPYC 9R14\n"
+            "flags\t\t: fpu sse2 avx512f avx512_bf16 avx512_vnni\n\nprocessor\t: 1\n")
+    facts = cpu_facts(text)
+    assert facts == {"cpu_model": "AMD EPYC 9R14", "bf16_flags": ["avx512_bf16"]}
+    assert _cpu_words(facts) == "AMD EPYC 9R14, bf16 flags: avx512_bf16"
+    assert cpu_facts("model name\t: X\nflags\t: sse2\n")["bf16_flags"] == []
+    assert _cpu_words({}) == "CPU model not recorded"
