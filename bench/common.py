@@ -225,7 +225,8 @@ def cpu_facts(cpuinfo: str | None = None) -> dict:
             cpuinfo = Path("/proc/cpuinfo").read_text()
         except OSError:
             return {}
-    fields = dict(line.split(":", 1) for line in cpuinfo.splitlines()[:64] if ":" in line)
+    first = cpuinfo.split("\n\n", 1)[0]  # the first processor's block: every core reports the same
+    fields = dict(line.split(":", 1) for line in first.splitlines() if ":" in line)
     fields = {k.strip(): v.strip() for k, v in fields.items()}
     flags = set(fields.get("flags", "").split())
     return {"cpu_model": fields.get("model name", "?"), "bf16_flags": [f for f in BF16_FLAGS if f in flags]}

@@ -189,8 +189,10 @@ def test_mean_interval_matches_the_normal_theory_interval():
     # twice the trials: the interval narrows by about √2
     lo2, hi2 = mean_interval(np.concatenate([x, x + 1e-9]), 0.9)
     assert 1.2 < (hi - lo) / (hi2 - lo2) < 1.65
-    # NaN trials are left out; fewer than two finite values give no interval
+    # NaN trials are left out; fewer than two finite values give no interval; trials that all agree
+    # (every trial covered, as on the ball) give a point: every resample has the same mean
     assert np.isnan(mean_interval([0.9, math.nan])).all()
+    assert mean_interval([1.0, 1.0, math.nan, 1.0]) == (1.0, 1.0)
 
 
 def test_time_to_quality_rows_judge_each_rig_against_the_issue_goal():
