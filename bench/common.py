@@ -206,10 +206,21 @@ def best_time(fn: Callable[[], object], repeats: int, device: torch.device, warm
 
 
 def use_all_cores() -> int:
-    """Set torch's intra-op threads to the core count (as the trainer does by default)."""
+    """Set torch's intra-op threads to the core count and keep large freed blocks in the process
+    where ``train.keep_heap`` is on by default (both as the trainer does by default)."""
+    from kinecast.heap import keep_large_blocks
+
     n = os.cpu_count() or 1
     torch.set_num_threads(n)
+    if _keep_heap():
+        keep_large_blocks()
     return n
+
+
+def _keep_heap() -> bool:
+    from kinecast.config import Config
+
+    return Config().train.keep_heap
 
 
 # CPU flags that decide how fast bfloat16 runs (x86: AVX-512 BF16 instructions, AMX tiles)
@@ -236,7 +247,7 @@ def machine_info(device: torch.device) -> dict:
     """Facts about where the numbers were measured."""
     info = {"platform": platform.platform(), "python": platform.python_version(),
             "torch": torch.__version__, "cpu_count": os.cpu_count(), "device": str(device),
-            "torch_threads": torch.get_num_threads(), **cpu_facts()}
+            "torch_threads": torch.get_num_threads(), "keep_heap": _keep_heap(), **cpu_facts()}
     if device.type == "cuda":
         info["gpu"] = torch.cuda.get_device_name(device)
     return info
@@ -254,7 +265,9 @@ def _cpu_words(machine: dict) -> str:
     flags = machine.get("bf16_flags")
     if flags is None:
         return "CPU model not recorded"
-    return f"{machine.get('cpu_model', '?')}, bf16 flags: {', '.join(flags) or 'none'}"
+    heap = {True: "; large freed blocks kept (train.keep_heap)", False: "; train.keep_heap off"}
+    return f"{machine.get('cpu_model', '?')}, bf16 flags: {', '.join(flags) or 'none'}" + heap.get(
+        machine.get("keep_heap"), "")
 
 
 @dataclass

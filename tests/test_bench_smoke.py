@@ -287,5 +287,6 @@ def test_cpu_facts_read_the_model_and_bf16_flags():
     facts = cpu_facts(text)
     assert facts == {"cpu_model": "AMD EPYC 9R14", "bf16_flags": ["avx512_bf16"]}
     assert _cpu_words(facts) == "AMD EPYC 9R14, bf16 flags: avx512_bf16"
+    assert _cpu_words({**facts, "keep_heap": True}).endswith("; large freed blocks kept (train.keep_heap)")
     assert cpu_facts("model name\t: X\nflags\t: sse2\n")["bf16_flags"] == []
     assert _cpu_words({}) == "CPU model not recorded"

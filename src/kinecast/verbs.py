@@ -37,6 +37,7 @@ def open_run(args, cfg, path: str | Path | None = None):
     from . import config as cfgmod
     from .forecast import core
     from .frames import read_recording
+    from .heap import keep_large_blocks
     from .model.precision import use_precision
     from .runfolder import load_run
     from .train.distributed import pick_device
@@ -54,6 +55,8 @@ def open_run(args, cfg, path: str | Path | None = None):
     for section in ("forecast", "score"):  # per-use settings come from this command
         setattr(run_cfg, section, getattr(cfg, section))
     use_precision(model, run_cfg.train.precision, device)
+    if run_cfg.train.keep_heap:
+        keep_large_blocks()
     rec = read_recording(args.path if path is None else path, run_cfg.data)
     core.check_compatible(rec, run_cfg)
     return model, run_cfg, rec, device

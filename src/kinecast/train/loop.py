@@ -23,6 +23,7 @@ import torch
 from .. import config as cfgmod
 from ..errors import KinecastError
 from ..fileio import check_can_create, write_with
+from ..heap import keep_large_blocks
 from ..model import build_model, time_scale_from_times, to_model_time
 from ..model.keypoints import AUTO_WINDOW_CELLS
 from ..model.precision import in_use as precision_in_use, resolve as resolve_precision, use_precision
@@ -398,6 +399,8 @@ class _Trainer:
             if resume:
                 rf.remove_stale_temporaries(run)  # left by a kill mid-checkpoint
         torch.set_num_threads(cfg.train.threads or os.cpu_count() or 1)
+        if cfg.train.keep_heap:
+            keep_large_blocks()
         torch.manual_seed(cfg.train.seed + ctx.rank)
 
         data = _Data.load(paths, cfg, ctx.rank)
