@@ -112,7 +112,7 @@ PROFILES = {
                     memory_frames=(1000, 10000), memory_size=64, memory_steps=5,
                     video_frames=1000, video_upscale=4, video_size=64,
                     rigs=("pendulum", "spring", "airtable"), quality_size=64, budget="5m", window=20,
-                    train_trials=12, train_frames=120, eval_trials=4, coverage_trials=12, val_every=25,
+                    train_trials=12, train_frames=120, eval_trials=4, coverage_trials=32, val_every=25,
                     gain_rounds=8),
     "quick": Profile("quick", repeats=3, train_sizes=(32, 64), efficiency_size=64, step_window=20,
                      rollout_size=64, rollout_frames=100, rollout_samples=(1, 10),

@@ -87,6 +87,9 @@ class CheckpointWatcher:
         self._thread = threading.Thread(target=self._loop, daemon=True)
 
     def __enter__(self):
+        # a file left by an earlier run in this folder (the bench reuses its work folders) is not one
+        # of this run's checkpoints: before this, a rerun's first "snapshot" was the old run's weights
+        self._last = self._key()
         self._thread.start()
         return self
 
@@ -99,12 +102,18 @@ class CheckpointWatcher:
         while not self._stop.wait(POLL_S):
             self.grab()
 
-    def grab(self) -> None:
+    def _key(self) -> tuple[int, int] | None:
         try:
             st = self.src.stat()
-            key = (st.st_mtime_ns, st.st_size)
-            if key == self._last:
-                return
+        except FileNotFoundError:
+            return None
+        return st.st_mtime_ns, st.st_size
+
+    def grab(self) -> None:
+        key = self._key()
+        if key is None or key == self._last:
+            return
+        try:
             data = self.src.read_bytes()
         except FileNotFoundError:
             return
@@ -169,8 +178,9 @@ def score_models(models: dict, recs: list, window: int, device) -> dict:
 def coverages(model, cfg: Config, recs: list, window: int, device) -> dict:
     """Mean position and object-pixel band coverage of :data:`bench.common.COVERAGE_SAMPLES` sampled futures per
     evaluation trial over the first 3·W forecast frames (``score.band``, nominal 0.90). Judged on the
-    profile's ``coverage_trials`` (12 in the full run): on 4 trials one run's coverage ranged 0.4-1.0
-    per trial, so 4 say little about calibration. Per coverage: ``mean``, ``interval`` (the
+    profile's ``coverage_trials`` (32 in the full run; 12 in runs before the evening of 2026-12-04):
+    on 4 trials one run's coverage ranged 0.4-1.0 per trial, so 4 say little about calibration; a mean
+    over 12 still moved by up to ±0.1 (its 90 % interval). Per coverage: ``mean``, ``interval`` (the
     bootstrap interval of that mean over the trials, :func:`bench.common.mean_interval`) and the
     per-trial values."""
     got = {"position": [], "object band": []}

@@ -290,3 +290,23 @@ def test_cpu_facts_read_the_model_and_bf16_flags():
     assert _cpu_words({**facts, "keep_heap": True}).endswith("; large freed blocks kept (train.keep_heap)")
     assert cpu_facts("model name\t: X\nflags\t: sse2\n")["bf16_flags"] == []
     assert _cpu_words({}) == "CPU model not recorded"
+
+
+def test_checkpoint_watcher_copies_only_this_runs_weights(tmp_path):
+    """A weights file left in the run folder by an earlier run is not a checkpoint of this one (the
+    bench reuses its work folders); one written during the run is copied. Plain file bookkeeping."""
+    import os
+
+    from bench.quality import CheckpointWatcher
+    from kinecast import runfolder as rf
+
+    run = tmp_path / "run"
+    run.mkdir()
+    (run / rf.WEIGHTS).write_bytes(b"old run")
+    with CheckpointWatcher(run, tmp_path / "snaps") as watch:
+        pass
+    assert watch.copies == []
+    with CheckpointWatcher(run, tmp_path / "snaps2") as watch:
+        (run / rf.WEIGHTS).write_bytes(b"this run's best")
+        os.utime(run / rf.WEIGHTS, ns=(1, 1))  # a different modification time, whatever the clock's grain
+    assert [(c / rf.WEIGHTS).read_bytes() for c in watch.copies] == [b"this run's best"]
