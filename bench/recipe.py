@@ -85,8 +85,7 @@ SCORING = "frame steps"
 # held still, train.still_keypoint_px 1; "6": as 5, keypoint posteriors start at 0.5 px, an encoder that
 # loses the object goes back to deterministic steps, early stop only below 0.8x the background;
 # "7" ... "16", and the "15c" / "15g" tries: see DEVELOPERS.md)
-DEFAULTS = ("20: as 19, with train.keep_heap on (glibc keeps large freed blocks for the next step: "
-            "the same arithmetic, faster steps). 19: as 18, with the keypoint encoder's conv trunk in train.precision's number format (bf16 where "
+DEFAULTS = ("19: as 18, with the keypoint encoder's conv trunk in train.precision's number format (bf16 where "
             "the CPU has it; its heat maps stay float32). 18: as 17 (one acceleration field shared by the keypoints where the training frames show several "
             "alike separate objects; 20-frame dynamics windows when no period is found; for those alike "
             "objects keypoints read within 3 heat-map cells of each map's peak), and validation, which "
@@ -101,17 +100,15 @@ DEFAULTS = ("20: as 19, with train.keep_heap on (glibc keeps large freed blocks 
 # the d17 rows once its own runs showed no change beyond one seed's spread (DEVELOPERS.md, eighteenth session).
 # d19 computes the keypoint encoder's trunk in bf16: the same algorithm in another number format,
 # pooled with d18 (and d18 rows run with that setting) after six paired runs showed no change beyond
-# one seed's spread (DEVELOPERS.md, twentieth session). d20 keeps glibc's large freed blocks
-# (train.keep_heap): the same arithmetic with faster steps, so more steps in a budget; pooled with d19
-# (and d19 rows run with that setting) after eight paired runs showed no change beyond one seed's
-# spread (DEVELOPERS.md, twenty-second session).
+# one seed's spread (DEVELOPERS.md, twentieth session). d19 rows run with train.keep_heap=true (the
+# same arithmetic with faster steps, so more steps in a budget, and an earlier early stop) are not
+# pooled: it is not a default (DEVELOPERS.md, twenty-second session).
 _ONE = [frozenset(), frozenset({"model.keypoint_window=0"}), frozenset({"model.field_per_keypoint=off"})]
 _LOW_TRUNK = frozenset({"model.keypoint_trunk_low_precision=true"})
-_KEEP_HEAP = frozenset({"train.keep_heap=true"})
-SAME_ALGORITHM = {"one object": {(label, sets) for label in ("14", "15", "16", "17", "18", "19", "20") for sets in _ONE}
-                  | {("18", _LOW_TRUNK), ("19", _KEEP_HEAP)},
-                  "alike objects": {("20", frozenset()), ("19", frozenset()), ("19", _KEEP_HEAP), ("18", frozenset()),
-                                    ("18", _LOW_TRUNK), ("17", frozenset()), ("16", frozenset({"model.keypoint_window=3"}))}}
+SAME_ALGORITHM = {"one object": {(label, sets) for label in ("14", "15", "16", "17", "18", "19") for sets in _ONE}
+                  | {("18", _LOW_TRUNK)},
+                  "alike objects": {("19", frozenset()), ("18", frozenset()), ("18", _LOW_TRUNK), ("17", frozenset()),
+                                    ("16", frozenset({"model.keypoint_window=3"}))}}
 START_FRAMES = 3          # forecast frames over which the drawing offset is measured
 TRIALS, TRAIN_TRIALS, FRAMES, HORIZON, SIZE = 12, 8, 90, 60, 64
 FRESH_TRIALS = 12  # more held-out trials of the same scene, for the coverage figures

@@ -12,7 +12,7 @@ from pathlib import Path
 SRC = Path(__file__).resolve().parents[1] / "src" / "kinecast"
 # lowest first; a module may import from its own layer and those below
 LAYERS = [
-    {"errors", "fileio", "config"},
+    {"errors", "fileio", "config", "heap"},
     {"frames", "render", "plots"},
     {"rigs", "model", "runfolder"},
     {"train"},
