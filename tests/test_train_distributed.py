@@ -32,3 +32,28 @@ def test_two_processes_agree_and_only_rank_0_writes(tmp_path):
     assert sorted(p.name for p in run.iterdir()) == sorted(
         ["config.toml", "weights.safetensors", "resume.safetensors", "log.csv", "summary.json",
          "background.png", "loss.png"])
+
+
+LEAVE = """
+import atexit, sys
+from kinecast.train.distributed import leave_helper
+atexit.register(lambda: print("interpreter shutdown ran"))
+print("output before leaving", end="")  # unflushed: leave_helper must flush it
+leave_helper(3)
+sys.exit(0)
+"""
+
+
+def test_a_helper_rank_leaves_without_interpreter_shutdown():
+    """Rank > 0 of a torchrun launch ends at once with its exit code, output flushed, and no
+    interpreter shutdown (Python docs: ``os._exit`` exits "without calling cleanup handlers, flushing
+    stdio buffers, etc."; ``atexit`` handlers run only at a normal shutdown); rank 0 carries on."""
+    import os
+
+    def run(rank: str):
+        env = {**os.environ, "WORLD_SIZE": "2", "RANK": rank}
+        return subprocess.run([sys.executable, "-c", LEAVE], capture_output=True, text=True, env=env, timeout=120)
+
+    helper, main = run("1"), run("0")
+    assert helper.returncode == 3 and helper.stdout == "output before leaving"
+    assert main.returncode == 0 and main.stdout == "output before leavinginterpreter shutdown ran\n"

@@ -120,7 +120,7 @@ def leave_helper(code: int) -> None:
     Gloo's worker threads release a finished collective's tensors on their own schedule: the final
     barrier keeps the collectives still in flight when it was posted, and a worker freeing them after
     the interpreter began shutting down needs the GIL, cannot get it, and aborts the process
-    ("terminate called without an active exception"; seen in 3 of about 110 two-process fits on a
+    ("terminate called without an active exception"; seen in 3 of about 125 two-process fits on a
     loaded 2-core machine; the core dump showed ``ProcessGroupGloo::runLoop`` freeing a barrier's
     earlier all-reduce during ``Py_FinalizeEx``). A helper has written nothing and holds nothing to
     clean up (only rank 0 writes the run), so it flushes its output and leaves without that shutdown.
