@@ -8,7 +8,9 @@ threshold fixed at its largest value and the heap kept up to :data:`TRIM_THRESHO
 same blocks are reused. Measured on the bench's 64 px training step (2-core AMD EPYC, two fresh
 processes each, DEVELOPERS.md): float32 176-192 ms per step against 216-285 ms; bfloat16 130-134
 against 129-163; 60-second fits took 9-18 % more steps; peak resident memory +0.02-0.07 GB. The
-arithmetic is unchanged (a fixed number of steps gives the same weights, tested).
+arithmetic is unchanged (a fixed number of steps gives the same weights, tested). Off by default: with
+it, 5-minute fits stopped sooner (early stop counts validations) and forecast no better
+(``train.keep_heap``; DEVELOPERS.md, twenty-second session).
 
 The thresholds and their meaning: glibc manual, "Malloc Tunable Parameters" (``M_MMAP_THRESHOLD``,
 ``M_TRIM_THRESHOLD``) and ``mallopt(3)``; the parameter numbers are those of glibc's ``<malloc.h>``.
@@ -25,11 +27,12 @@ from __future__ import annotations
 import ctypes
 import platform
 
-__all__ = ["MMAP_THRESHOLD", "TRIM_THRESHOLD", "keep_large_blocks"]
+__all__ = ["MMAP_THRESHOLD", "TRIM_THRESHOLD", "keep_large_blocks", "kept"]
 
 MMAP_THRESHOLD = 32 * 1024 * 1024  # glibc's largest allowed value on 64-bit (HEAP_MAX_SIZE / 2)
 TRIM_THRESHOLD = 1024 * 1024 * 1024  # free memory kept at the heap's top before giving it back
 _M_TRIM_THRESHOLD, _M_MMAP_THRESHOLD = -1, -3  # glibc <malloc.h>
+_kept = False  # the settings are the process's: once made they last until it ends
 
 
 def _mallopt():
@@ -48,7 +51,15 @@ def keep_large_blocks() -> bool:
     """Fix glibc's mmap threshold at :data:`MMAP_THRESHOLD` and its trim threshold at
     :data:`TRIM_THRESHOLD` for this process; True when both were accepted, False elsewhere (another
     C library, or glibc refusing a value)."""
+    global _kept
     mallopt = _mallopt()
     if mallopt is None:
         return False
-    return bool(mallopt(_M_MMAP_THRESHOLD, MMAP_THRESHOLD)) and bool(mallopt(_M_TRIM_THRESHOLD, TRIM_THRESHOLD))
+    ok = bool(mallopt(_M_MMAP_THRESHOLD, MMAP_THRESHOLD)) and bool(mallopt(_M_TRIM_THRESHOLD, TRIM_THRESHOLD))
+    _kept = _kept or ok
+    return ok
+
+
+def kept() -> bool:
+    """Whether :func:`keep_large_blocks` has taken effect in this process."""
+    return _kept

@@ -23,7 +23,7 @@ import torch
 from .. import config as cfgmod
 from ..errors import KinecastError
 from ..fileio import check_can_create, write_with
-from ..heap import keep_large_blocks
+from ..heap import keep_large_blocks, kept as heap_kept
 from ..model import build_model, time_scale_from_times, to_model_time
 from ..model.keypoints import AUTO_WINDOW_CELLS
 from ..model.precision import in_use as precision_in_use, resolve as resolve_precision, use_precision
@@ -676,7 +676,7 @@ class _Trainer:
                 "validated_on": [data.where.get(id(r), r.source) for r in data.val],
                 "time_scale": cfg.solver.time_scale, "world_size": self.ctx.world, "replica_spread": spread,
                 "device": str(self.ctx.device), "threads": torch.get_num_threads(), "recipe": cfg.train.recipe,
-                "precision": precision_in_use(self.model),
+                "precision": precision_in_use(self.model), "heap_kept": heap_kept(),
                 "positions_found": stages.escaped if cfg.train.recipe == "staged" else None,
                 "positions_found_step": stages.escaped_step, "positions_restarts": stages.restarts,
                 "positions_relapses": stages.relapses, "dynamics_window": data.dyn_longest,
