@@ -85,7 +85,8 @@ SCORING = "frame steps"
 # held still, train.still_keypoint_px 1; "6": as 5, keypoint posteriors start at 0.5 px, an encoder that
 # loses the object goes back to deterministic steps, early stop only below 0.8x the background;
 # "7" ... "16", and the "15c" / "15g" tries: see DEVELOPERS.md)
-DEFAULTS = ("19: as 18, with the keypoint encoder's conv trunk in train.precision's number format (bf16 where "
+DEFAULTS = ("20: as 19, with early stop allowed only from train.early_stop_from = 0.7 of the budget (before: "
+            "whenever validation had stalled patience times at the longest window). 19: as 18, with the keypoint encoder's conv trunk in train.precision's number format (bf16 where "
             "the CPU has it; its heat maps stay float32). 18: as 17 (one acceleration field shared by the keypoints where the training frames show several "
             "alike separate objects; 20-frame dynamics windows when no period is found; for those alike "
             "objects keypoints read within 3 heat-map cells of each map's peak), and validation, which "

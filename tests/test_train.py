@@ -17,7 +17,8 @@ from kinecast.errors import KinecastError
 from kinecast.rigs import write_rig
 from kinecast.train import fit, load_run
 from kinecast import runfolder as rf
-from kinecast.train.schedule import Curriculum, kl_weight, learning_rate
+from kinecast.train import schedule as sched_mod
+from kinecast.train.schedule import Curriculum, kl_weight, learning_rate, may_stop_early
 
 
 def small_cfg(**train):
@@ -134,6 +135,8 @@ def test_schedules():
     assert keep.stalls == 0 and not keep.done and keep.best == 0.5
     keep.update(0.8), keep.update(0.8)
     assert keep.done  # two stalls at the longest window (patience 2)
+    # a later improvement ends the stall: the run is no longer done
+    assert keep.update(0.6) is False and not keep.done and keep.stalls == 0
     # scheduled floor: geometric growth 8 -> 32 reaches 16 at half of the schedule, 32 at its end
     sched = Curriculum(window=8, longest=32, growth=1.5, patience=2)
     sched.follow(8, 0.3, 0.6)
@@ -158,3 +161,28 @@ def test_bad_input_exit_2_and_nothing_overwritten(rig, tmp_path, capsys):
     assert len(err) == 5 and all(line.startswith("kinecast: error:") for line in err)
     assert "already exists" in err[0] and "not a complete run folder" in err[1] and "train.budget" in err[2]
     assert "inside the input" in err[4]
+
+
+def test_early_stop_waits_for_its_share_of_the_budget():
+    tc = C.TrainConfig(early_stop_from=0.7)
+    # the 0.8 floor against the bare background is the verdict's (kinecast.config.FLOOR_MARGIN)
+    assert may_stop_early(0.5, 1.0, 0.7, tc) and not may_stop_early(0.5, 1.0, 0.69, tc)
+    assert not may_stop_early(0.85, 1.0, 0.9, tc)  # does not clearly beat drawing the background
+    assert not may_stop_early(0.5, math.nan, 0.9, tc)  # no background to compare with
+
+
+@pytest.mark.parametrize("share, stops_early", [(0.0, True), (1.0, False)])
+def test_a_stall_ends_the_run_only_from_its_share(rig, tmp_path, monkeypatch, share, stops_early):
+    # every score after the first is a stall (patience 1, one-window curriculum); the background floor
+    # is lifted so that only the share decides (end-to-end: every validation counts stalls)
+    monkeypatch.setattr(sched_mod, "FLOOR_MARGIN", math.inf)
+    def stalled(self, val, stalls=True):
+        self.best, self.done = min(self.best, val), True
+        return False
+
+    monkeypatch.setattr(Curriculum, "update", stalled)
+    cfg = small_cfg(steps=20, val_every=2, patience=1, window_start=24, window_max=24, early_stop_from=share,
+                    recipe="end_to_end")
+    summary = fit([rig], tmp_path / "run", cfg, show_progress=False)
+    assert (summary["steps"] < 20) is stops_early
+    assert summary["stop_reason"].startswith("early stop") is stops_early

@@ -35,7 +35,7 @@ from . import distributed as D
 from .progress import Progress, duration, untrained_reason
 from .lock import RunLock
 from .data import WindowSampler, expand_paths, load_recordings, median_background, split_train_val
-from .schedule import Curriculum, kl_weight, learning_rate, progress
+from .schedule import Curriculum, kl_weight, learning_rate, may_stop_early, progress
 
 VAL_WINDOWS = 8  # validation windows (evenly spaced over the held-out frames)
 LOG_EVERY = 10  # steps between log rows
@@ -460,14 +460,15 @@ class _Trainer:
         cfg, st = self.cfg, self.state
         elapsed = self.elapsed()
         prog = progress(st.step, elapsed, cfg.train.steps, self.budget_s)
-        stop = (cfg.train.steps and st.step >= cfg.train.steps) or (self.budget_s and elapsed >= self.budget_s) \
-            or (st.cur.done and cfg.train.early_stop)
+        spent = (cfg.train.steps and st.step >= cfg.train.steps) or (self.budget_s and elapsed >= self.budget_s)
+        early = not spent and st.cur.done and cfg.train.early_stop \
+            and may_stop_early(st.cur.best, self.bg_val, prog, cfg.train)
+        stop = spent or early
         stage, local = S.stage_at(prog, cfg.train)
         if stage == S.JOINT:
             st.cur.follow(min(cfg.train.window_start, self.data.longest), prog, cfg.train.window_schedule)
         stop, st.cur.window = D.sync_decision(self.ctx, bool(stop), st.cur.window)
         if stop:
-            early = st.cur.done and cfg.train.early_stop
             self.stop_reason = "early stop: validation stalled at the longest window" if early else "budget"
             return False
         if stage != self.stage:
@@ -628,14 +629,8 @@ class _Trainer:
         """At a validation step: validate in the dynamics and joint stages, and remember the state to
         roll back to. Validating from the dynamics stage on keeps a forecasting model as soon as there
         is one (the positions stage's weights forecast nothing: the field is untrained)."""
-        cur = self.state.cur
         if self.ctx.main and self.stage in (S.DYNAMICS, S.JOINT):
             self._validate(elapsed, window)
-        if self.ctx.main and self.stage == S.JOINT:
-            # never stop a run that does not clearly beat drawing the bare background (the verdict's
-            # floor): one that draws the mean frame scores just under it (0.99x, measured)
-            if cur.done and not cur.best < cfgmod.FLOOR_MARGIN * self.bg_val:
-                cur.done = False
         self.good = (copy.deepcopy(self.model.state_dict()), copy.deepcopy(self.opt.state_dict()))
 
     # --- finish ---------------------------------------------------------------------------

@@ -9,7 +9,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 
-from ..config import TrainConfig
+from ..config import FLOOR_MARGIN, TrainConfig
 
 
 def progress(step: int, elapsed: float, steps: int, budget_s: float) -> float:
@@ -19,6 +19,17 @@ def progress(step: int, elapsed: float, steps: int, budget_s: float) -> float:
     if budget_s:
         parts.append(elapsed / budget_s)
     return min(1.0, max(parts)) if parts else 0.0
+
+
+def may_stop_early(best: float, background: float, prog: float, cfg: TrainConfig) -> bool:
+    """Whether a stall at the longest window may end the run.
+
+    Not before ``early_stop_from`` of the budget (so the stop does not follow the machine's speed: a
+    faster step reaches the same count of stalled validations sooner), and never while the best score
+    does not clearly beat drawing the bare background (``FLOOR_MARGIN``, the verdict's floor: a model
+    that draws the mean frame scores just under the background, 0.99x measured).
+    """
+    return prog >= cfg.early_stop_from and best < FLOOR_MARGIN * background
 
 
 def learning_rate(cfg: TrainConfig, step: int, prog: float, scale: float = 1.0) -> float:
@@ -42,7 +53,8 @@ def kl_weight(cfg: TrainConfig, prog: float) -> float:
 
 @dataclass
 class Curriculum:
-    """Grow the window when validation stalls; stop when it stalls at the longest window.
+    """Grow the window when validation stalls; mark the run ``done`` when it stalls at the longest
+    window (until a later score improves; :func:`may_stop_early` says whether it may end yet).
 
     Validation always scores the same long forecast horizon, so scores stay comparable as the
     training window grows and the best one marks the checkpoint to keep.
@@ -82,7 +94,7 @@ class Curriculum:
         if not stalls:
             return improved
         if val < self.trend_best * (1 - 1e-3):
-            self.trend_best, self.stalls = val, 0
+            self.trend_best, self.stalls, self.done = val, 0, False
             return improved
         self.stalls += 1
         if self.stalls >= self.patience:
