@@ -86,7 +86,8 @@ SCORING = "frame steps"
 # loses the object goes back to deterministic steps, early stop only below 0.8x the background;
 # "7" ... "16", and the "15c" / "15g" tries: see DEVELOPERS.md)
 DEFAULTS = ("20: as 19, with early stop allowed only from train.early_stop_from = 0.7 of the budget (before: "
-            "whenever validation had stalled patience times at the longest window). 19: as 18, with the keypoint encoder's conv trunk in train.precision's number format (bf16 where "
+            "whenever validation had stalled patience times at the longest window) and train.keep_heap on (the "
+            "same arithmetic, faster steps). 19: as 18, with the keypoint encoder's conv trunk in train.precision's number format (bf16 where "
             "the CPU has it; its heat maps stay float32). 18: as 17 (one acceleration field shared by the keypoints where the training frames show several "
             "alike separate objects; 20-frame dynamics windows when no period is found; for those alike "
             "objects keypoints read within 3 heat-map cells of each map's peak), and validation, which "
@@ -103,12 +104,15 @@ DEFAULTS = ("20: as 19, with early stop allowed only from train.early_stop_from 
 # pooled with d18 (and d18 rows run with that setting) after six paired runs showed no change beyond
 # one seed's spread (DEVELOPERS.md, twentieth session). d19 rows run with train.keep_heap=true (the
 # same arithmetic with faster steps, so more steps in a budget, and an earlier early stop) are not
-# pooled: it is not a default (DEVELOPERS.md, twenty-second session).
+# pooled: it ran without d20's early-stop floor (DEVELOPERS.md, twenty-second session). d20 (that floor,
+# and keep_heap on; its first rows set keep_heap by hand) is pooled with d14-d19 after nine paired runs
+# showed no change beyond one seed's spread (DEVELOPERS.md, twenty-third session).
+_D20 = [("20", frozenset()), ("20", frozenset({"train.keep_heap=true"}))]
 _ONE = [frozenset(), frozenset({"model.keypoint_window=0"}), frozenset({"model.field_per_keypoint=off"})]
 _LOW_TRUNK = frozenset({"model.keypoint_trunk_low_precision=true"})
 SAME_ALGORITHM = {"one object": {(label, sets) for label in ("14", "15", "16", "17", "18", "19") for sets in _ONE}
-                  | {("18", _LOW_TRUNK)},
-                  "alike objects": {("19", frozenset()), ("18", frozenset()), ("18", _LOW_TRUNK), ("17", frozenset()),
+                  | {("18", _LOW_TRUNK)} | set(_D20),
+                  "alike objects": {*_D20, ("19", frozenset()), ("18", frozenset()), ("18", _LOW_TRUNK), ("17", frozenset()),
                                     ("16", frozenset({"model.keypoint_window=3"}))}}
 START_FRAMES = 3          # forecast frames over which the drawing offset is measured
 TRIALS, TRAIN_TRIALS, FRAMES, HORIZON, SIZE = 12, 8, 90, 60, 64

@@ -314,12 +314,12 @@ class TrainConfig:
                           "(faster where the CPU or GPU has native bfloat16; refused where not); auto = bf16 "
                           "where native (checked at run time), fp32 otherwise. Weights and everything else "
                           "(and the keypoint encoder's heat maps) stay float32", choices=("auto", "fp32", "bf16"))
-    # False until judged further: 8 paired 5-minute recipe-bench runs (every rig kind, five looks, a scene
-    # drawn by other code): joint-stage steps per second 1.05-1.45x (median 1.16x), but position errors
-    # leaning worse (6 of 8, median +0.15 px) and the full bench's pendulum / spring 0.21x / 0.35x
-    # persistence against 0.07-0.18x / 0.20-0.22x: early stop counts validations, so faster steps stop
-    # sooner in wall-clock time (DEVELOPERS.md, twenty-second session)
-    keep_heap: bool = _opt(False, "keep large freed memory blocks in the process for the next step (glibc's "
+    # True since the twenty-third session, with early stop from train.early_stop_from: 9 paired 5-minute
+    # recipe-bench runs (every rig kind, five looks, both scenes drawn by other code) against the
+    # twenty-first session's d19 runs: successes 5 -> 6 of 9, position error better on 5 and worse on 4
+    # (median -0.01 px), joint-stage steps per second 5.1-7.9 -> 6.4-7.4. Without the floor (twenty-second
+    # session) the faster steps stopped some fits at 180-230 s and the forecasts leaned worse
+    keep_heap: bool = _opt(True, "keep large freed memory blocks in the process for the next step (glibc's "
                            "malloc; no effect elsewhere) instead of fresh pages from the system every step: "
                            "faster steps, the same arithmetic (kinecast.heap)")
     max_faults: int = _opt(5, "non-finite losses tolerated (each rolls back) before stopping", lo=0)
