@@ -176,6 +176,7 @@ def test_a_stall_ends_the_run_only_from_its_share(rig, tmp_path, monkeypatch, sh
     # every score after the first is a stall (patience 1, one-window curriculum); the background floor
     # is lifted so that only the share decides (end-to-end: every validation counts stalls)
     monkeypatch.setattr(sched_mod, "FLOOR_MARGIN", math.inf)
+
     def stalled(self, val, stalls=True):
         self.best, self.done = min(self.best, val), True
         return False

@@ -300,7 +300,8 @@ class TrainConfig:
     # forecast worse (0.35x persistence against 0.20-0.22x). Counting patience in validations ties the
     # stop to the machine's speed; a share of the budget does not (DEVELOPERS.md, twenty-third session)
     early_stop_from: float = _opt(0.7, "share of the budget that must have passed before early stop may end the "
-                                  "run (a stall before it only grows the window)", lo=0.0, hi=1.0)
+                                  "run (a stall before it does not end the run; a later improvement clears it)",
+                                  lo=0.0, hi=1.0)
     checkpoint_every: int = _opt(100, "steps between checkpoints", lo=1)
     threads: int = _opt(0, "torch threads; 0 = the core count", lo=0)
     device: str = _opt("auto", "compute device", choices=("auto", "cpu", "cuda"))

@@ -8,9 +8,11 @@ threshold fixed at its largest value and the heap kept up to :data:`TRIM_THRESHO
 same blocks are reused. Measured on the bench's 64 px training step (2-core AMD EPYC, two fresh
 processes each, DEVELOPERS.md): float32 176-192 ms per step against 216-285 ms; bfloat16 130-134
 against 129-163; 60-second fits took 9-18 % more steps; peak resident memory +0.02-0.07 GB. The
-arithmetic is unchanged (a fixed number of steps gives the same weights, tested). Off by default: with
-it, 5-minute fits stopped sooner (early stop counts validations) and forecast no better
-(``train.keep_heap``; DEVELOPERS.md, twenty-second session).
+arithmetic is unchanged (a fixed number of steps gives the same weights, tested). On by default
+(``train.keep_heap``) since early stop may end a fit only from a share of its budget
+(``train.early_stop_from``): before that, the faster steps reached early stop's count of stalled
+validations sooner and some 5-minute fits stopped at 180-230 s (DEVELOPERS.md, twenty-second and
+twenty-third sessions).
 
 The thresholds and their meaning: glibc manual, "Malloc Tunable Parameters" (``M_MMAP_THRESHOLD``,
 ``M_TRIM_THRESHOLD``) and ``mallopt(3)``; the parameter numbers are those of glibc's ``<malloc.h>``.
