@@ -319,7 +319,7 @@ class TrainConfig:
     # recipe-bench runs (every rig kind, five looks, both scenes drawn by other code) against the
     # twenty-first session's d19 runs: successes 5 -> 6 of 9, position error better on 5 and worse on 4
     # (median -0.01 px), joint-stage steps per second 5.1-7.9 -> 6.4-7.4. Without the floor (twenty-second
-    # session) the faster steps stopped some fits at 180-230 s and the forecasts leaned worse
+    # session) the faster steps stopped fits as early as 180 s of 300 and the forecasts leaned worse
     keep_heap: bool = _opt(True, "keep large freed memory blocks in the process for the next step (glibc's "
                            "malloc; no effect elsewhere) instead of fresh pages from the system every step: "
                            "faster steps, the same arithmetic (kinecast.heap)")

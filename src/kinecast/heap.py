@@ -11,7 +11,7 @@ against 129-163; 60-second fits took 9-18 % more steps; peak resident memory +0.
 arithmetic is unchanged (a fixed number of steps gives the same weights, tested). On by default
 (``train.keep_heap``) since early stop may end a fit only from a share of its budget
 (``train.early_stop_from``): before that, the faster steps reached early stop's count of stalled
-validations sooner and some 5-minute fits stopped at 180-230 s (DEVELOPERS.md, twenty-second and
+validations sooner and 5-minute fits stopped as early as 180 s (DEVELOPERS.md, twenty-second and
 twenty-third sessions).
 
 The thresholds and their meaning: glibc manual, "Malloc Tunable Parameters" (``M_MMAP_THRESHOLD``,
