@@ -20,6 +20,8 @@ from kinecast.score.verdict import judge_run
 from kinecast.train import fit
 from kinecast import runfolder as rf
 from kinecast.train import stages as S
+from kinecast.frames import read_recording
+from kinecast.train.loop import FLOOR_SOURCE, calibrate_run
 
 
 from test_train import small_cfg
@@ -70,12 +72,54 @@ def test_positions_stage_finds_the_moving_object(rig, tmp_path):
 
     assert saved["spread_scale"] is not None and 0.01 <= saved["spread_scale"] <= 1000
     # our own rule (kinecast.train.loop.calibrate_run): fitted on the held-out and on the training
-    # trials, the larger scale kept and named
+    # trials, the larger scale kept and named, but never below train.spread_floor (1 by default)
     fits = saved["spread_scale_candidates"]
     assert set(fits) == {"held-out trials", "training trials"}
-    assert saved["spread_scale_from"] == max(fits, key=fits.get)
-    assert saved["spread_scale"] == pytest.approx(max(fits.values()), rel=1e-3)
+    floored = max(fits.values()) < 1.0
+    assert saved["spread_scale_from"] == (FLOOR_SOURCE if floored else max(fits, key=fits.get))
+    assert saved["spread_scale"] == pytest.approx(max(1.0, max(fits.values())), rel=1e-3)
     assert float(load_run(tmp_path / "run")[0].spread_scale) == pytest.approx(saved["spread_scale"], rel=1e-6)
+    # refitted on the same run with no floor: the same fits (seeded draws), the larger kept
+    again = _refit(tmp_path / "run", saved, 0.0)
+    assert again["spread_scale_candidates"] == pytest.approx(fits, rel=1e-3)
+    assert again["spread_scale"] == pytest.approx(max(fits.values()), rel=1e-3)
+    assert again["spread_scale_from"] == max(fits, key=fits.get)
+
+
+def test_spread_floor_is_kept_when_both_fits_would_narrow_the_spread(rig, tmp_path, monkeypatch):
+    # our own rule (kinecast.train.loop.calibrate_run): fits of 0.5 (held-out) and 0.7 (training)
+    # under a floor of 1 keep 1, named as the floor, with the pixel noise fitted on the held-out trials
+    import kinecast.model.calibration as cal
+
+    fit([rig], tmp_path / "run", staged_cfg(12), show_progress=False)
+    saved = json.loads((tmp_path / "run" / rf.SUMMARY).read_text())
+    calls = iter([(0.5, 0.01), (0.7, 0.02)])  # (fit, pixel noise) on the held-out, then the training trials
+
+    def fake(model, clips, band, samples, generator, floor=0.0):
+        fitted, noise = next(calls)
+        return max(fitted, floor), noise, fitted
+
+    monkeypatch.setattr(cal, "calibrate", fake)
+    got = _refit(tmp_path / "run", saved, 1.0)
+    assert got["spread_scale"] == 1.0 and got["spread_scale_from"] == FLOOR_SOURCE
+    assert got["pixel_noise"] == pytest.approx(0.01)
+    assert got["spread_scale_candidates"] == {"held-out trials": 0.5, "training trials": 0.7}
+    from kinecast.train import load_run
+
+    model = load_run(tmp_path / "run")[0]
+    assert float(model.spread_scale) == 1.0 and float(model.pixel_noise) == pytest.approx(0.01)
+    # fit's line says the floor set it, and what the fits said
+    from kinecast.train.cli import _spread_line
+
+    line = _spread_line(got, 0.9)
+    assert "train.spread_floor" in line and "0.5 on the held-out trials, 0.7 on the training trials" in line
+
+
+def _refit(run, saved, floor):
+    """calibrate_run again on ``run``'s own trials, with ``train.spread_floor`` = ``floor``."""
+    cfg = C.apply_overrides(C.load(run / rf.CONFIG, C.saved_run_base()), [f"train.spread_floor={floor}"])
+    recs = {key: [read_recording(p, cfg.data) for p in saved[key]] for key in ("validated_on", "trained_on")}
+    return calibrate_run(run, recs["validated_on"], recs["trained_on"], saved["longest_window"], cfg, "cpu")
 
 
 def test_a_scene_where_nothing_moves_is_not_claimed_found(rig, tmp_path, capsys):

@@ -237,6 +237,15 @@ class TrainConfig:
     calibration_samples: int = _opt(16, "futures drawn on each validation trial after training to fit the "
                                     "spread scale of sampled futures (the truth inside their central "
                                     "score.band region as often as the band says); 0 = no scale", lo=0, hi=1000)
+    # 1: the model's own posterior spread is the least trusted. Of 69 pendulum and spring runs of the
+    # recipe bench (d14-d20) scored on 12 unseen trials, the 9 whose fit shrank the spread (scale
+    # 0.39-0.97) covered a median 0.85 of positions, 6 of them below 0.85; the 60 whose fit widened
+    # it, a median 0.90 (40 within 0.85-0.95). The one full bench run below band (pendulum 0.84,
+    # 2026-12-04) had fitted 0.80 on its held-out trials: a small sample of easy trials says less
+    # than the posterior itself
+    spread_floor: float = _opt(1.0, "smallest spread scale kept after training: the fit on the validation "
+                               "trials may widen the sampled futures' own spread but not shrink it "
+                               "below this; 0 = keep what the fit says", lo=0.0, hi=1000.0)
     still_keypoint_px: float = _opt(1.0, "staged, keypoint encoder: a keypoint whose encoded position moves by "
                                     "less than this (rms over the training frames, model pixels) when the "
                                     "dynamics stage starts is held still by the field (e.g. one parked on a "

@@ -80,7 +80,8 @@ def coverage_scale(points: torch.Tensor, truth: torch.Tensor, band: float, min_r
 
 
 @torch.no_grad()
-def calibrate(model, clips, band: float, samples: int, generator: torch.Generator) -> tuple[float, float]:
+def calibrate(model, clips, band: float, samples: int, generator: torch.Generator,
+              floor: float = 0.0) -> tuple[float, float, float]:
     """The spread scale and then the pixel noise of the sampled futures, from one set of drawn futures.
 
     The spread scale puts the true object positions inside the central ``band`` region of the
@@ -104,16 +105,21 @@ def calibrate(model, clips, band: float, samples: int, generator: torch.Generato
         Central share (``score.band``).
     samples : int
         Futures drawn per clip.
+    floor : float
+        Smallest scale kept (``train.spread_floor``): a fit below it is raised to it before the
+        pixel noise is fitted.
 
     Returns
     -------
-    (float, float)
-        The spread scale (1.0 for a model without positions that move) and the pixel noise's
-        standard deviation (intensities in [0, 1]; 0.0 when no frame can be judged).
+    (float, float, float)
+        The spread scale kept (1.0 for a model without positions that move), the pixel noise's
+        standard deviation at that scale (intensities in [0, 1]; 0.0 when no frame can be judged)
+        and the scale the clips alone gave, before ``floor``.
     """
     draws = _draw(model, clips, samples, generator)
-    scale = _spread_scale(model, draws, band)
-    return scale, _pixel_noise(model, draws, band, scale)
+    fitted = _spread_scale(model, draws, band)
+    scale = max(fitted, floor)
+    return scale, _pixel_noise(model, draws, band, scale), fitted
 
 
 def _draw(model, clips, samples: int, generator) -> list[tuple[torch.Tensor, torch.Tensor]]:

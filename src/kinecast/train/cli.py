@@ -66,12 +66,7 @@ def run(args, cfg) -> int:
             level = {"failed": "FAILED", "weak": "weak"}.get(verdict["level"], verdict["level"])
             print(f"verdict on the held-out frames ({level}): {verdict['text']}")
         if summary.get("spread_scale"):
-            where = summary.get("spread_scale_from") or "held-out trials"
-            both = len(summary.get("spread_scale_candidates") or {}) > 1
-            print(f"sampled futures: spread scaled by {summary['spread_scale']:.3g} (fitted on the {where}"
-                  + (", the larger of the held-out and training trials' fits" if both else "")
-                  + f", so that {100 * cfg.score.band:.0f} % of their true object positions (tracked in the "
-                  "frames) fall inside the futures' central region; applies to forecast/score with --samples > 1)")
+            print(_spread_line(summary, cfg.score.band))
             if summary.get("pixel_noise"):
                 print(f"sampled futures: pixel noise of std {summary['pixel_noise']:.3g} (intensity 0-1) belongs "
                       "to their predictive distribution (fitted likewise on the object's pixels; used by the "
@@ -80,3 +75,18 @@ def run(args, cfg) -> int:
             print(f"kinecast: warning: the model is untrained: {summary['untrained']}. Its forecasts mean "
                   f"nothing yet; train longer (kinecast fit --resume {out} --budget 5m adds 5 minutes).")
     return 0
+
+
+def _spread_line(summary: dict, band: float) -> str:
+    """The line ``fit`` prints about the spread scale of sampled futures (see ``calibrate_run``)."""
+    fits = summary.get("spread_scale_candidates") or {}
+    where = summary.get("spread_scale_from") or "held-out trials"
+    applies = "applies to forecast/score with --samples > 1"
+    if where not in fits:  # the floor, not a fit, set it
+        said = ", ".join(f"{value:.3g} on the {name}" for name, value in fits.items())
+        return (f"sampled futures: spread scaled by {summary['spread_scale']:.3g}, the {where}; the fits "
+                f"({said}) would have narrowed it, and a fit on a few trials may only widen it; {applies}")
+    both = ", the larger of the held-out and training trials' fits" if len(fits) > 1 else ""
+    return (f"sampled futures: spread scaled by {summary['spread_scale']:.3g} (fitted on the {where}{both}, "
+            f"so that {100 * band:.0f} % of their true object positions (tracked in the frames) fall inside "
+            f"the futures' central region; {applies})")
