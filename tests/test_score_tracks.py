@@ -56,6 +56,21 @@ def test_centroid_of_antialiased_disc_is_its_centre(channels):
     assert np.abs(track - centres).max() < 0.1
 
 
+def test_centroid_track_of_a_long_recording_is_tracked_block_by_block(monkeypatch):
+    # Geometry, as above: the centroid of an anti-aliased disc is its centre. A recording longer
+    # than tracks.TRACK_BLOCK frames is tracked in blocks (bounded memory); every frame is tracked
+    # on its own, so the blocks give the same track as one piece, and the median background (None)
+    # is still taken over all frames.
+    n = 2 * tracks.TRACK_BLOCK + 37
+    angle = np.linspace(0.0, 6 * np.pi, n)
+    centres = np.stack([32 + 18 * np.cos(angle), 32 + 18 * np.sin(angle)], axis=1)
+    frames = np.concatenate([render_disc(centres[i:i + 100]) for i in range(0, n, 100)])
+    blocked = centroid_track(frames)
+    assert np.abs(blocked - centres).max() < 0.1
+    monkeypatch.setattr(tracks, "TRACK_BLOCK", 10 * n)
+    assert np.array_equal(blocked, centroid_track(frames))
+
+
 def test_centroid_of_drawn_disc_with_median_background_and_noise():
     # skimage.draw.disk at an integer centre gives a pixel set symmetric about the centre, so its
     # centroid is the centre exactly (symmetry). The background defaults to the per-pixel median over

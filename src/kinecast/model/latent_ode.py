@@ -32,7 +32,12 @@ from .solver import solve
 
 BG_EPS = 1e-4  # background intensities are clamped into [BG_EPS, 1 - BG_EPS] before the logit
 INIT_NOISE_STD = 0.1  # starting pixel noise std of the Gaussian likelihood (intensities in [0, 1])
-DECODE_CHUNK = 1024  # frames decoded at once by decode() (bounds the decoder's working memory)
+# Frames decoded at once by decode(): bounds the decoder's working memory. fit's spread calibration
+# decodes 16 futures × 60 frames per clip, one piece at 1024, which set a 64 px fit's peak memory.
+# Peak RSS of a 5-step default fit on the bench's 1,000 / 10,000-frame recordings: 1.35 / 1.57 GB
+# at 1024; 1.08 / 1.22 GB at 256 with frame tracking in blocks (tracks.TRACK_BLOCK). 10 futures ×
+# 100 frames decode 2 % slower at 256 (6690 against 6800 frames/s; DEVELOPERS.md, 24th session)
+DECODE_CHUNK = 256
 
 
 def _reparam(mean: torch.Tensor, logvar: torch.Tensor, generator: torch.Generator | None = None):

@@ -66,9 +66,13 @@ def split_train_val(recs: list[Recording], cfg: Config, min_len: int) -> tuple[l
 
 def median_background(recs: list[Recording]) -> np.ndarray:
     """Per-pixel median of the present frames of all recordings: a fixed camera's static scene."""
-    present = np.concatenate([r.frames[~r.missing] for r in recs], axis=0)
-    stride = max(1, len(present) // 512)  # a median over ≤ 512 frames is plenty and bounds memory
-    return tracks.median_background(present[::stride])
+    present = [np.flatnonzero(~r.missing) for r in recs]
+    stride = max(1, sum(map(len, present)) // 512)  # a median over ≤ 512 frames is plenty and bounds memory
+    picked, before = [], 0  # every stride-th present frame of all recordings in a row; only those copied
+    for r, idx in zip(recs, present):
+        picked.append(r.frames[idx[(-before) % stride::stride]])
+        before += len(idx)
+    return tracks.median_background(np.concatenate(picked, axis=0))
 
 
 @dataclass

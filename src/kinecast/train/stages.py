@@ -222,7 +222,8 @@ def alike_objects(recs, background) -> bool:
     and coil, a ball and its shadow) does not."""
     counts, ratios = [], []
     for r in recs:
-        for _, weight in tracks.find_objects(r.frames[~r.missing][::OBJECT_COUNT_STRIDE], background,
+        picked = r.frames[np.flatnonzero(~r.missing)[::OBJECT_COUNT_STRIDE]]  # copies only those frames
+        for _, weight in tracks.find_objects(picked, background,
                                              with_weights=True):
             counts.append(len(weight))
             if len(weight) >= 2:
@@ -239,7 +240,8 @@ def dynamics_window(recs, background, cfg, longest: int) -> tuple[int, float]:
     for r in recs:
         ok = ~r.missing
         if ok.sum() >= 8:
-            periods.append(tracks.track_period(tracks.centroid_track(r.frames[ok], background), r.times[ok]))
+            present = r.frames if ok.all() else r.frames[ok]  # no copy of a recording with no gap
+            periods.append(tracks.track_period(tracks.centroid_track(present, background), r.times[ok]))
     period = float(np.nanmedian(periods)) if np.isfinite(periods).any() else math.nan
     want = DYNAMICS_NO_PERIOD_WINDOW
     if math.isfinite(period):
