@@ -237,7 +237,7 @@ class TrainConfig:
     calibration_samples: int = _opt(16, "futures drawn on each validation trial after training to fit the "
                                     "spread scale of sampled futures (the truth inside their central "
                                     "score.band region as often as the band says); 0 = no scale", lo=0, hi=1000)
-    # 1: the model's own posterior spread is the least trusted. Of 69 pendulum and spring runs of the
+    # 1: never narrower than the model's own posterior spread. Of 69 pendulum and spring runs of the
     # recipe bench (d14-d20) scored on 12 unseen trials, the 9 whose fit shrank the spread (scale
     # 0.39-0.97) covered a median 0.85 of positions, 6 of them below 0.85; the 60 whose fit widened
     # it, a median 0.90 (40 within 0.85-0.95). The one full bench run below band (pendulum 0.84,

@@ -69,8 +69,9 @@ SPECTRUM_BLOCK_VALUES = 1 << 20
 # changes by less than this relative amount, at most TREND_REFITS times.
 TREND_REFITS = 12
 # Frames tracked at a time by centroid_track: each frame is tracked on its own, and a block bounds
-# the float64 weights held at once (256 × 64 × 64 × 8 bytes = 8 MiB; a 10,000-frame recording in one
-# piece held about 1 GB of them and set the peak memory of a fit, bench "memory" rows)
+# the float64 weights held at once (256 × 64 × 64 × 8 bytes = 8 MiB). A 64 px 10,000-frame recording
+# tracked in one piece raised a fit's resident memory from 0.95 to 1.51 GB (sampled; DEVELOPERS.md,
+# twenty-fourth session)
 TRACK_BLOCK = 256
 REFIT_TOLERANCE = 1e-5
 
