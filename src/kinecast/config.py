@@ -238,7 +238,7 @@ class TrainConfig:
                                     "spread scale of sampled futures (the truth inside their central "
                                     "score.band region as often as the band says); 0 = no scale", lo=0, hi=1000)
     # 1: never narrower than the model's own posterior spread. Of 69 pendulum and spring runs of the
-    # recipe bench (d14-d20) scored on 12 unseen trials, the 9 whose fit shrank the spread (scale
+    # recipe bench (defaults 17-20) scored on 12 unseen trials, the 9 whose fit shrank the spread (scale
     # 0.39-0.97) covered a median 0.85 of positions, 6 of them below 0.85; the 60 whose fit widened
     # it, a median 0.90 (40 within 0.85-0.95). The one full bench run below band (pendulum 0.84,
     # 2026-12-04) had fitted 0.80 on its held-out trials: a small sample of easy trials says less
