@@ -19,7 +19,7 @@ import numpy as np
 
 from ..config import ScoreConfig
 from ..errors import KinecastError
-from ..model.calibration import band_inside
+from ..model.calibration import band_inside, disc_radius
 from ..frames.tracks import FOREGROUND_FRACTION, centroid_track, foreground, median_background, object_region
 
 # Frames are intensities in [0, 1] (project convention), so the peak signal (MAX, the data range) is 1.
@@ -273,9 +273,9 @@ def leading_run(good, times, origin: float | None = None) -> tuple[int, float]:
 def band_coverage(samples, truth, band: float = _DEFAULTS.band, region=None, noise: float = 0.0) -> np.ndarray:
     """Share of true pixel values inside the central ``band`` interval of sampled futures, per frame.
 
-    The interval at each pixel runs from the ``(1 - band) / 2`` to the ``(1 + band) / 2`` empirical
-    quantile of the samples (linear interpolation between order statistics, numpy's default), or,
-    with ``noise`` > 0, of the samples blurred by Gaussian pixel noise of that std (the run's fitted
+    The interval at each pixel is the samples' central interval that holds a new draw of their law
+    with probability ``band`` (empirical quantiles, widened for the number of samples by
+    :func:`kinecast.model.calibration.sample_level`), or, with ``noise`` > 0, of the samples blurred by Gaussian pixel noise of that std (the run's fitted
     ``pixel_noise``; see :func:`kinecast.model.calibration.band_inside`). For calibrated samples the
     share is close to ``band``; well below means over-confident forecasts.
 
@@ -322,9 +322,11 @@ def position_coverage(samples, truth, background, band: float = _DEFAULTS.band) 
 
     Positions are the foreground centroids of :func:`~kinecast.frames.tracks.centroid_track`
     (model pixels). The central region of a frame is the disc around the samples' mean position
-    whose radius is the ``band`` quantile of the samples' distances from that mean (numpy's
-    default interpolation), so that it holds that share of the samples; averaged over frames the
-    result is the share of frames whose truth the samples cover, ``band`` for calibrated samples.
+    that holds a new draw of the samples' law with probability ``band``
+    (:func:`kinecast.model.calibration.disc_radius`: a quantile of the samples' distances from
+    that mean, corrected for their number); averaged over frames the result is the share of frames
+    whose truth the samples cover, ``band`` for calibrated samples whatever their number (9 or more
+    at 0.9).
 
     Parameters
     ----------
@@ -350,6 +352,6 @@ def position_coverage(samples, truth, background, band: float = _DEFAULTS.band) 
         if len(pts) < 2 or not np.isfinite(true_xy[i]).all():
             continue
         centre = pts.mean(axis=0)
-        radius = np.quantile(np.hypot(*(pts - centre).T), band)
+        radius = disc_radius(np.hypot(*(pts - centre).T), band)
         out[i] = float(np.hypot(*(true_xy[i] - centre)) <= radius)
     return out

@@ -85,7 +85,8 @@ def _spread_line(summary: dict, band: float) -> str:
     if where not in fits:  # the floor, not a fit, set it
         said = ", ".join(f"{value:.3g} on the {name}" for name, value in fits.items())
         return (f"sampled futures: spread scaled by {summary['spread_scale']:.3g}, the {where}; the fits "
-                f"({said}) would have narrowed it, and a fit on a few trials may only widen it; {applies}")
+                f"({said}) would have narrowed it further, more than a fit on a few trials is trusted to; "
+                f"{applies}")
     both = ", the larger of the held-out and training trials' fits" if len(fits) > 1 else ""
     return (f"sampled futures: spread scaled by {summary['spread_scale']:.3g} (fitted on the {where}{both}, "
             f"so that {100 * band:.0f} % of their true object positions (tracked in the frames) fall inside "

@@ -149,7 +149,7 @@ def calibration_starts(starts: np.ndarray, n_frames: int, k: int, horizon: int) 
 # only set a floor under the spread scale (see calibrate_run), and each costs a validation clip's time
 TRAINING_CALIBRATION_CLIPS = 12
 # What the summary's spread_scale_from says when train.spread_floor, not a fit, set the scale
-FLOOR_SOURCE = "model's own spread (train.spread_floor)"
+FLOOR_SOURCE = "floor (train.spread_floor)"
 
 
 def _calibration_clips(recs, window: int, run_cfg, device, most: int | None = None) -> list:
@@ -182,11 +182,12 @@ def calibrate_run(run: Path, val_recs, train_recs, window: int, cfg, device) -> 
     12 unseen trials: position coverage within 0.85-0.95 in 26 of 30 runs, against 21 of 30 with
     the held-out trials alone (DEVELOPERS.md, twentieth session).
 
-    Neither fit may shrink the model's own spread below ``train.spread_floor`` (1 by default): when
-    both come out below it the floor is kept, with the pixel noise fitted at it on the held-out
-    trials. The fits that shrank it came from small samples that happened to be easy: the 9 of 69
-    recipe-bench runs whose scale came out below 1 covered a median 0.85 of unseen positions, 6 of
-    them below 0.85 (DEVELOPERS.md, twenty-fourth session).
+    Neither fit may shrink the model's own spread below ``train.spread_floor`` (0.8 by default):
+    when both come out below it the floor is kept, with the pixel noise fitted at it on the held-out
+    trials. The fits that shrank it that far came from small samples that happened to be easy: the
+    9 of 69 recipe-bench runs whose scale came out below the floor (then 1, under a region 1.23x
+    narrower per unit scale) covered a median 0.85 of unseen positions, 6 of them below 0.85
+    (DEVELOPERS.md, twenty-fourth and twenty-fifth sessions).
 
     Returns ``{"spread_scale", "pixel_noise", "spread_scale_from", "spread_scale_candidates"}``;
     the candidates are the fits before the floor.
@@ -208,7 +209,7 @@ def calibrate_run(run: Path, val_recs, train_recs, window: int, cfg, device) -> 
         candidates["training trials"] = fitted_on(training)
     chosen = max(candidates, key=lambda name: candidates[name][2])
     scale, noise, fitted = candidates[chosen]
-    if fitted < scale:  # both fits would shrink the model's own spread: keep the floor, noise from held-out
+    if fitted < scale:  # both fits are below the floor: keep it, noise from the held-out trials
         chosen, noise = FLOOR_SOURCE, candidates["held-out trials"][1]
     best.spread_scale.fill_(scale)
     best.pixel_noise.fill_(noise)
