@@ -92,3 +92,23 @@ def test_calibration_clips_cover_several_phases_of_each_held_out_trial(n_frames,
     assert starts == expected
     assert all(a + k + horizon <= n_frames for a in starts[1:])
     assert all(not gone[a:a + k].any() for a in starts)
+
+
+@pytest.mark.parametrize("s_count", [4, 8])
+def test_too_few_futures_cannot_reach_the_band_and_the_score_says_so(s_count):
+    # A new draw's rank among S samples is uniform over S + 1 places (order statistics, David &
+    # Nagaraja, from memory): no region built from S samples holds it more often than S / (S + 1),
+    # below 0.9 for S < 9. Measured on 2-D normal draws (20000 cases, binomial tolerance 4 sd), and
+    # the score's coverage sentence says the futures are too few.
+    from kinecast.model.calibration import disc_radius
+    from kinecast.score.evaluate import coverage_text
+
+    rng = np.random.default_rng(5)
+    pts, new = rng.normal(size=(20000, s_count, 2)), rng.normal(size=(20000, 2))
+    centre = pts.mean(axis=1)
+    inside = np.linalg.norm(new - centre, axis=-1) <= disc_radius(np.linalg.norm(pts - centre[:, None], axis=-1), 0.9)
+    cap = s_count / (s_count + 1)
+    assert abs(inside.mean() - cap) < 4 * math.sqrt(cap * (1 - cap) / 20000) + 0.01
+    summary = {"mean_position_coverage": inside.mean(), "mean_object_band_coverage": 0.9}
+    assert "too few" in coverage_text(summary, 0.9, s_count)
+    assert "too few" not in coverage_text(summary, 0.9, 16)

@@ -28,6 +28,7 @@ from .keypoints import MAX_STD_BLOBS, KeypointDecoder, KeypointEncoder
 from .gauss import bernoulli_nll, gaussian_nll, kl_std_normal
 from .identities import follow
 from .refine import refine_positions
+from . import fused_rk4
 from .solver import solve
 
 BG_EPS = 1e-4  # background intensities are clamped into [BG_EPS, 1 - BG_EPS] before the logit
@@ -253,6 +254,8 @@ class LatentODE(nn.Module):
         Coordinates the field holds still (``field.moving`` = 0) start with zero velocity."""
         if self.field.second_order:
             state0 = torch.cat([state0[:, :self.q], state0[:, self.q:] * self.field.moving], dim=1)
+        if fused_rk4.applies(self.field, t, self.solver_cfg, weights):
+            return fused_rk4.solve_rk4(self.field, state0, t, self.solver_cfg, weights)
         field = self.field if weights is None else (lambda tt, y: self.field(tt, y, weights))
         return solve(field, state0, t, self.solver_cfg, adjoint_params=self.field.tensors(weights))
 

@@ -221,7 +221,7 @@ def _run_model(args, cfg, out: Path) -> int:
               f"{counted(scale, 'pixel', '.3g')} of the recording, so the model's {err:.2f} px "
               f"is {err * scale:.3g} recording pixels")
     if samples > 1:
-        print(coverage_text(result["summary"]["model"], run_cfg.score.band))
+        print(coverage_text(result["summary"]["model"], run_cfg.score.band, samples))
     p = result["periods"]
     print(f"dominant period: truth {p['truth_track_s']:.3f} s, model track {p['model_track_s']:.3f} s, "
           f"model latent {p['model_latent_s']:.3f} s")

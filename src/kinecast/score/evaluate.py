@@ -35,8 +35,10 @@ COVERAGE_SUMMARY = {"coverage": "mean_band_coverage", "object_coverage": "mean_o
 COVERAGE_FLAG = (0.8, 0.97)
 
 
-def coverage_text(summary: dict, band: float) -> str:
-    """One plain sentence on how often the sampled futures covered the truth, flagged when off."""
+def coverage_text(summary: dict, band: float, samples: int | None = None) -> str:
+    """One plain sentence on how often the sampled futures covered the truth, flagged when off;
+    it says so when ``samples`` futures are too few for their region to reach ``band`` (fewer than
+    band / (1 - band): see :func:`kinecast.model.calibration.sample_level`)."""
     pos, obj, pix = (summary.get(k) for k in ("mean_position_coverage", "mean_object_band_coverage",
                                               "mean_band_coverage"))
     pct = lambda v: "–" if v is None or not np.isfinite(v) else f"{100 * v:.0f} %"  # noqa: E731
@@ -53,6 +55,9 @@ def coverage_text(summary: dict, band: float) -> str:
                  "treat their spread as a lower bound on the real uncertainty")
     elif any(v > hi for v in shown):
         text += "; the figure marked ABOVE means the futures spread wider than the errors they make"
+    if samples and samples / (samples + 1) < band:
+        text += (f"; {samples} futures are too few for a {100 * band:.0f} % region (it holds one more "
+                 f"future at most {samples}/{samples + 1} of the time): draw 16 or more to read coverage")
     return text
 
 
