@@ -142,9 +142,18 @@ class DynamicsField(nn.Module):
         s, v = x[:, :self.q].reshape(n, -1, g), x[:, self.q:].reshape(n, -1, g)
         return torch.cat([s, v], dim=2)
 
-    def mlp(self, x: torch.Tensor, weights: Weights | None = None) -> torch.Tensor:
+    def _from_objects(self, g: torch.Tensor, n: int) -> torch.Tensor:
+        """The transpose of :meth:`_objects`: a gradient (n, G, MLP input) on its rows → (n, 2q)."""
+        if not self.group:
+            return g[:, 0]
+        k = self.group
+        return torch.cat([g[..., :k].reshape(n, -1), g[..., k:].reshape(n, -1)], dim=1)
+
+    def mlp(self, x: torch.Tensor, weights: Weights | None = None, keep: list | None = None) -> torch.Tensor:
         """The MLP on a batch ``x`` of shape (n, 2q) with ``weights`` (from :meth:`sample`; None: the
-        posterior means), per object if grouped."""
+        posterior means), per object if grouped. With drawn weights and a list ``keep``, appends
+        the list of every layer's input (the rows, then each hidden layer's output) to it, for a
+        hand-written backward (:mod:`kinecast.model.fused_rk4`)."""
         n_layers = len(self.w_mu)
         n = x.shape[0]
         x = self._objects(x)
@@ -157,16 +166,21 @@ class DynamicsField(nn.Module):
         if n != weights[0][0].shape[0]:
             raise ValueError(f"DynamicsField: state batch {n} but weights drawn for "
                              f"{weights[0][0].shape[0]} sequences")
+        inputs = []
         for i, (w, b) in enumerate(weights):
+            inputs.append(x)
             x = torch.baddbmm(b, x, w)
             if i < n_layers - 1:
                 x = self.act(x)
+        if keep is not None:
+            keep.append(inputs)
         return x.reshape(n, -1)
 
-    def forward(self, t: torch.Tensor, y: torch.Tensor, weights: Weights | None = None) -> torch.Tensor:
+    def forward(self, t: torch.Tensor, y: torch.Tensor, weights: Weights | None = None,
+                keep: list | None = None) -> torch.Tensor:
         """dy/dt at state ``y`` (n, 2q) with ``weights`` (None: the posterior means); autonomous, so
-        ``t`` is unused."""
-        out = self.mlp(y, weights)
+        ``t`` is unused. ``keep``: see :meth:`mlp`."""
+        out = self.mlp(y, weights, keep)
         if self.second_order:
             return torch.cat([y[:, self.q:], out * self.moving], dim=1)
         return out
