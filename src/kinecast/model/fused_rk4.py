@@ -31,7 +31,7 @@ from .solver import step_grid
 
 __all__ = ["applies", "solve_rk4"]
 
-_ONE_THIRD, _TWO_THIRDS = 1 / 3, 2 / 3  # the constants torchdiffeq's rk4 step uses
+_ONE_THIRD = 1 / 3  # the constant torchdiffeq's rk4 step uses
 
 
 def applies(field, t: torch.Tensor, solver_cfg, weights) -> bool:
