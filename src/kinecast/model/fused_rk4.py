@@ -93,7 +93,8 @@ class _Solve(torch.autograd.Function):
     def forward(ctx, field, grid, t, state0, *flat):
         tape = []  # per evaluation: the inputs of its layers
         weights = list(zip(flat[0::2], flat[1::2]))
-        states, ctx.dts, ctx.ends = _steps(field, grid, t, state0, weights, tape)
+        states, dts, ctx.ends = _steps(field, grid, t, state0, weights, tape)
+        ctx.dts = [float(dt) for dt in dts]  # plain numbers: the backward's fused adds take them
         ctx.field, ctx.tape, ctx.n = field, tape, state0.shape[0]
         ctx.save_for_backward(*flat)
         return states
@@ -103,8 +104,10 @@ class _Solve(torch.autograd.Function):
         field, tape, n = ctx.field, ctx.tape, ctx.n
         flat = ctx.saved_tensors
         ws = list(flat[0::2])
+        wts = [w.transpose(1, 2).contiguous() for w in ws]  # once: bmm on a transposed view is slower
         q, last = field.q, len(ws) - 1
         deriv = _DERIVATIVE[field.act]
+        moving = None if bool((field.moving == 1).all()) else field.moving
         rows = [[] for _ in ws]    # per layer: its input rows, one block per evaluation
         grads = [[] for _ in ws]   # per layer: the gradient on its output (pre-activation), alike
 
@@ -112,14 +115,16 @@ class _Solve(torch.autograd.Function):
             """Gradient on the state of evaluation ``e`` from the gradient ``g`` on its output."""
             hs = tape[e]
             if field.second_order:
-                ga, gy_extra = g[:, q:] * field.moving, g[:, :q]
+                ga, gy_extra = g[:, q:], g[:, :q]
+                if moving is not None:
+                    ga = ga * moving
             else:
                 ga, gy_extra = g, None
             gz = ga.reshape(n, hs[0].shape[1], -1)
             for i in range(last, -1, -1):
                 rows[i].append(hs[i])
                 grads[i].append(gz)
-                gh = torch.bmm(gz, ws[i].transpose(1, 2))
+                gh = torch.bmm(gz, wts[i])
                 gz = deriv(gh, hs[i]) if i > 0 else gh
             gy = field._from_objects(gz, n)   # a fresh tensor (or a view of one): safe to add into
             if gy_extra is not None:
@@ -129,26 +134,22 @@ class _Solve(torch.autograd.Function):
         idx = len(grad_states) - 1
         gy = grad_states[idx].clone()
         for s in range(len(ctx.dts) - 1, -1, -1):
+            # The step y1 = y0 + dt/8 (k1 + 3 k2 + 3 k3 + k4), with k2 = f(y0 + dt k1/3),
+            # k3 = f(y0 + dt (k2 - k1/3)), k4 = f(y0 + dt (k1 - k2 + k3)), in reverse: gk* are the
+            # gradients on the stages k*, ga* those on the states each stage was evaluated at.
             dt = ctx.dts[s]
-            # the states this step ended on were output; their gradient is already in gy (below)
-            c = dt * 0.125
-            gk1, gk4 = gy * c, gy * c
-            gk2 = gy * (3 * c)
-            gk3 = gk2
+            gk4 = gy * (dt * 0.125)
+            gk23 = gy * (dt * 0.375)
             e = 4 * s
             ga4 = f_back(e + 3, gk4)
-            gy = gy + ga4
-            gk1 = gk1 + dt * ga4
-            gk2 = gk2 - dt * ga4
-            gk3 = gk3 + dt * ga4
-            ga3 = f_back(e + 2, gk3)
-            gy = gy + ga3
-            gk2 = gk2 + dt * ga3
-            gk1 = gk1 - dt * ga3 * _ONE_THIRD
+            gk1 = torch.add(gk4, ga4, alpha=dt)
+            gk2 = torch.sub(gk23, ga4, alpha=dt)
+            ga3 = f_back(e + 2, torch.add(gk23, ga4, alpha=dt))
+            gk2.add_(ga3, alpha=dt)
+            gk1.sub_(ga3, alpha=dt * _ONE_THIRD)
             ga2 = f_back(e + 1, gk2)
-            gy = gy + ga2
-            gk1 = gk1 + dt * ga2 * _ONE_THIRD
-            gy = gy + f_back(e, gk1)
+            gk1.add_(ga2, alpha=dt * _ONE_THIRD)
+            gy = gy + ga4 + ga3 + ga2 + f_back(e, gk1)
             # entering step s from its start: add the gradient of outputs taken at that start
             for _ in range(ctx.ends[s - 1] if s > 0 else 0):
                 idx -= 1
