@@ -310,3 +310,19 @@ def test_checkpoint_watcher_copies_only_this_runs_weights(tmp_path):
         (run / rf.WEIGHTS).write_bytes(b"this run's best")
         os.utime(run / rf.WEIGHTS, ns=(1, 1))  # a different modification time, whatever the clock's grain
     assert [(c / rf.WEIGHTS).read_bytes() for c in watch.copies] == [b"this run's best"]
+
+
+def test_calibration_split_reads_the_scale_off_a_known_coverage_curve():
+    # A 2-D standard normal lies within radius r with probability 1 - exp(-r^2 / 2) (the Rayleigh
+    # law, closed form). With a region of radius s * r1 at scale s, the scale that covers 0.90 is
+    # sqrt(2 ln 10) / r1; the study's reading of its coverage curves must find it, and read the
+    # curve back at any scale inside the grid.
+    from bench.calibration_split import asked_for, at_scale
+
+    r1 = 0.8
+    scales = list(np.geomspace(0.3, 6.0, 40))
+    cover = np.array([[1 - math.exp(-(s * r1) ** 2 / 2)] * 3 for s in scales])  # three alike trials
+    want = math.sqrt(2 * math.log(10)) / r1
+    assert asked_for(scales, cover, 0.9) == pytest.approx(want, rel=1e-2)
+    assert at_scale(scales, cover, want) == pytest.approx(0.9, abs=2e-3)
+    assert math.isnan(asked_for(scales[:5], cover[:5], 0.9))  # the grid never reaches 0.90

@@ -72,12 +72,12 @@ def test_positions_stage_finds_the_moving_object(rig, tmp_path):
 
     assert saved["spread_scale"] is not None and 0.01 <= saved["spread_scale"] <= 1000
     # our own rule (kinecast.train.loop.calibrate_run): fitted on the held-out and on the training
-    # trials, the larger scale kept and named, but never below train.spread_floor (1 by default)
-    fits = saved["spread_scale_candidates"]
+    # trials, the larger scale kept and named, but never below train.spread_floor
+    fits, floor = saved["spread_scale_candidates"], C.Config().train.spread_floor
     assert set(fits) == {"held-out trials", "training trials"}
-    floored = max(fits.values()) < 1.0
+    floored = max(fits.values()) < floor
     assert saved["spread_scale_from"] == (FLOOR_SOURCE if floored else max(fits, key=fits.get))
-    assert saved["spread_scale"] == pytest.approx(max(1.0, max(fits.values())), rel=1e-3)
+    assert saved["spread_scale"] == pytest.approx(max(floor, max(fits.values())), rel=1e-3)
     assert float(load_run(tmp_path / "run")[0].spread_scale) == pytest.approx(saved["spread_scale"], rel=1e-6)
     # refitted on the same run with no floor: the same fits (seeded draws), the larger kept
     again = _refit(tmp_path / "run", saved, 0.0)

@@ -175,3 +175,33 @@ def test_untrained_reason_needs_a_reason():
     assert "never found" in P.untrained_reason("staged", 500, False, 0.001, bg)
     assert "bare background" in P.untrained_reason("staged", 500, found, 0.004, bg)  # equal: not better
     assert P.untrained_reason("end_to_end", 500, False, 0.001, bg) is None
+
+
+def test_a_spread_fitted_on_few_held_out_trials_is_called_rough():
+    # our own rule (kinecast.train.cli.FEW_CALIBRATION_TRIALS; DEVELOPERS.md, twenty-sixth session:
+    # fits on two held-out trials came within ±20 % of what twelve new trials ask for about half
+    # the time): fit's spread line says so at two held-out trials or fewer, not above
+    from kinecast.train.cli import FEW_CALIBRATION_TRIALS, _spread_line
+
+    def line(held, **more):
+        summary = {"spread_scale": 1.7, "spread_scale_from": "held-out trials", "val_recordings": held,
+                   "spread_scale_candidates": {"held-out trials": 1.7, "training trials": 1.2},
+                   "trained_on": ["a", "b"], "validated_on": [f"v{i}" for i in range(held)], **more}
+        return _spread_line(summary, 0.9)
+
+    assert "2 held-out trials the scale is rough" in line(2) and "train.val_fraction" in line(2)
+    assert "one held-out trial the scale is rough" in line(1)
+    assert "rough" not in line(FEW_CALIBRATION_TRIALS + 1)
+    tail = line(1, trained_on=["rec.tif"], validated_on=["rec.tif"])  # one recording, its tail held out
+    assert "the held-out tail of one recording the scale is rough" in tail
+    floored = line(2, spread_scale=0.8, spread_scale_from="floor (train.spread_floor)")
+    assert "train.spread_floor" in floored and "rough" in floored
+
+
+def test_a_progress_line_says_when_validation_starts():
+    # our own rule: the staged recipe validates from stage 2 (dynamics) on
+    # (kinecast.train.loop._validate_and_save), and the line before it says so; later it does not
+    report = P.Progress(100, 0.0, 0, 0.0, "staged", enabled=False)
+    assert "no validation yet (it starts in stage 2)" in report.line(5, 1.0, "positions", 8, float("nan"))
+    later = report.line(60, 9.0, "dynamics", 8, float("nan"))
+    assert "no validation yet" in later and "starts in stage" not in later

@@ -109,7 +109,8 @@ class Progress:
             bg = f" (bare background {bg_val:.3g})" if math.isfinite(bg_val) and not short else ""
             score = [f"validation error {val:.3g}{bg}"]
         else:
-            later = " (it starts in stage 3)" if self.recipe == "staged" and stage != S.JOINT and not short else ""
+            # the staged recipe validates from the dynamics stage on (loop._validate_and_save)
+            later = " (it starts in stage 2)" if self.recipe == "staged" and stage == S.POSITIONS and not short else ""
             score = ["no validation yet" + later]
         if short:
             return ", ".join(total + where[:1] + counts + score + where[1:])
