@@ -15,7 +15,7 @@ its scene (12 or more: e.g. trials 12-23 that ``bench/recipe.py`` renders for co
    fits, never below ``train.spread_floor``) and the mean position coverage of the *other* trials
    at that scale (read off the curves of step 1).
 
-The run folder is not changed (scales are set on a copy of the model in memory). ``--out FILE``
+The run folder is not changed (the scales are set on the model loaded in memory). ``--out FILE``
 appends one JSON line with every number. Scores are statistical extrapolations on recordings, not
 measurements; not for safety-critical control.
 """
@@ -42,9 +42,10 @@ from kinecast.runfolder import SUMMARY, load_run  # noqa: E402
 from kinecast.train.loop import TRAINING_CALIBRATION_CLIPS, _calibration_clips  # noqa: E402
 
 HORIZON = 60
-# Scales scored, as multiples of the run's own: wide enough that every fit of the study so far
-# (0.4-2.3x the run's scale) falls inside, so coverage at a fit is read off the curve, not guessed
-GRID = (0.3, 0.45, 0.6, 0.75, 0.9, 1.05, 1.25, 1.5, 1.8, 2.2, 2.7, 3.3)
+# Scales scored, as multiples of the run's own: wide enough that every fit of the twenty-sixth
+# session's study (0.20-1.73x the run's scale, floor included) falls inside, so coverage at a fit is
+# read off the curve, not guessed
+GRID = (0.2, 0.3, 0.45, 0.6, 0.75, 0.9, 1.05, 1.25, 1.5, 1.8, 2.2, 2.7, 3.3)
 FUTURES = (16, 64)
 
 
@@ -86,7 +87,6 @@ def main(argv=None) -> int:
     recs = [read_recording(p, cfg.data) for p in args.trials]
     if len(recs) < 2 * args.pairs + 2:
         parser.error(f"{len(recs)} trials: {args.pairs} pairs need at least {2 * args.pairs + 2}")
-    torch.set_num_threads(max(1, torch.get_num_threads()))
     scales = [float(saved["spread_scale"]) * m for m in GRID]
     cov = coverage_curves(model, cfg, recs, scales)
     band, floor, window = cfg.score.band, cfg.train.spread_floor, saved["longest_window"]

@@ -182,6 +182,7 @@ def test_a_spread_fitted_on_few_held_out_trials_is_called_rough():
     # fits on two held-out trials came within ±20 % of what twelve new trials ask for about half
     # the time): fit's spread line says so at two held-out trials or fewer, not above
     from kinecast.train.cli import FEW_CALIBRATION_TRIALS, _spread_line
+    from kinecast.train.loop import FLOOR_SOURCE
 
     def line(held, **more):
         summary = {"spread_scale": 1.7, "spread_scale_from": "held-out trials", "val_recordings": held,
@@ -194,7 +195,7 @@ def test_a_spread_fitted_on_few_held_out_trials_is_called_rough():
     assert "rough" not in line(FEW_CALIBRATION_TRIALS + 1)
     tail = line(1, trained_on=["rec.tif"], validated_on=["rec.tif"])  # one recording, its tail held out
     assert "the held-out tail of one recording the scale is rough" in tail
-    floored = line(2, spread_scale=0.8, spread_scale_from="floor (train.spread_floor)")
+    floored = line(2, spread_scale=0.8, spread_scale_from=FLOOR_SOURCE)
     assert "train.spread_floor" in floored and "rough" in floored
 
 
