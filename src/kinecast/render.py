@@ -395,7 +395,7 @@ def _blank_unrecorded(out: np.ndarray, boxes: list[tuple[int, int, int, int]], t
 def _scale_bar(img: np.ndarray, box: tuple[int, int, int, int], vmax: float, cmap: str) -> None:
     """'0 ▮▮▮ vmax' under a heat-map panel: the fixed scale of its colours."""
     y0, x0, y1, x1 = box
-    lo, hi = "0", f"{vmax:g}"
+    lo, hi = "0", f"{vmax:.3g}"  # three digits: the bar is read, not measured
     (wl, _), _ = cv2.getTextSize(lo, FONT, TEXT_SCALE, TEXT_THICKNESS)
     (wh, _), _ = cv2.getTextSize(hi, FONT, TEXT_SCALE, TEXT_THICKNESS)
     bx0, bx1 = x0 + wl + 2 * PAD, x1 - wh - 2 * PAD
