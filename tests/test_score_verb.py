@@ -108,6 +108,11 @@ def test_report_is_one_self_contained_page(setup, tmp_path):
     for raw in ("world_size", "replica_spread", "threads"):
         assert technical < page.index(f"<td>{raw}</td>"), raw
     assert "replica spread" not in page and "world size" not in page  # no half-translated keys
+    # fit's spread line is on the page too, with its caution: this run held out one trial
+    # (our own rule, kinecast.train.progress.FEW_CALIBRATION_TRIALS)
+    saved = json.loads((setup / "run" / "summary.json").read_text())
+    assert saved["spread_scale"] and saved["val_recordings"] == 1
+    assert "<td>spread of the sampled futures</td>" in page and "the scale is rough" in page
 
 
 def test_per_frame_tracks_are_in_the_recording_pixels(setup, tmp_path):

@@ -109,9 +109,9 @@ def test_spread_floor_is_kept_when_both_fits_would_narrow_the_spread(rig, tmp_pa
     model = load_run(tmp_path / "run")[0]
     assert float(model.spread_scale) == 1.0 and float(model.pixel_noise) == pytest.approx(0.01)
     # fit's line says the floor set it, and what the fits said
-    from kinecast.train.cli import _spread_line
+    from kinecast.train.progress import spread_line
 
-    line = _spread_line(got, 0.9)
+    line = spread_line(got, 0.9)
     assert "train.spread_floor" in line and "0.5 on the held-out trials, 0.7 on the training trials" in line
 
 

@@ -178,17 +178,17 @@ def test_untrained_reason_needs_a_reason():
 
 
 def test_a_spread_fitted_on_few_held_out_trials_is_called_rough():
-    # our own rule (kinecast.train.cli.FEW_CALIBRATION_TRIALS; DEVELOPERS.md, twenty-sixth session:
+    # our own rule (kinecast.train.progress.FEW_CALIBRATION_TRIALS; DEVELOPERS.md, twenty-sixth session:
     # fits on two held-out trials came within ±20 % of what twelve new trials ask for about half
     # the time): fit's spread line says so at two held-out trials or fewer, not above
-    from kinecast.train.cli import FEW_CALIBRATION_TRIALS, _spread_line
+    from kinecast.train.progress import FEW_CALIBRATION_TRIALS, spread_line
     from kinecast.train.loop import FLOOR_SOURCE
 
     def line(held, **more):
         summary = {"spread_scale": 1.7, "spread_scale_from": "held-out trials", "val_recordings": held,
                    "spread_scale_candidates": {"held-out trials": 1.7, "training trials": 1.2},
                    "trained_on": ["a", "b"], "validated_on": [f"v{i}" for i in range(held)], **more}
-        return _spread_line(summary, 0.9)
+        return spread_line(summary, 0.9)
 
     assert "2 held-out trials the scale is rough" in line(2) and "train.val_fraction" in line(2)
     assert "one held-out trial the scale is rough" in line(1)

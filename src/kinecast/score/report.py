@@ -17,6 +17,7 @@ import html
 import json
 from pathlib import Path
 
+from .. import config as cfgmod
 from ..errors import KinecastError
 from ..fileio import check_can_create, write_text
 from ..plots import method_label
@@ -267,9 +268,14 @@ def _scores_section(folder: Path, run: Path, digest: str) -> tuple[str, str]:
     return "\n".join(p for p in parts if p), _technical(f"scores folder {folder}", rest)
 
 
-def _training_section(summary: dict) -> tuple[str, str]:
-    """The training facts in words with units, and the remaining keys as technical details."""
+def _training_section(summary: dict, band: float) -> tuple[str, str]:
+    """The training facts in words with units, and the remaining keys as technical details;
+    ``band`` is the run's ``score.band`` (for the spread of the sampled futures)."""
+    from ..train.progress import spread_line
+
     rows = [(words, _fmt(summary[k], unit)) for k, (words, unit) in TRAINING_FACTS.items() if k in summary]
+    if summary.get("spread_scale"):  # the line fit printed, with its caution on few held-out trials
+        rows.append(("spread of the sampled futures", html.escape(spread_line(summary, band))))
     verdict = summary.get("verdict")
     if isinstance(verdict, dict) and "level" in verdict:
         rows.insert(0, ("verdict on the held-out recordings", html.escape(str(verdict["level"]))
@@ -286,7 +292,8 @@ def build_report(run: str | Path, scores: list = (), clips: list = ()) -> str:
     rf.check_run_folder(run)
     summary = json.loads((run / rf.SUMMARY).read_text()) if (run / rf.SUMMARY).is_file() else {}
     config_text = (run / rf.CONFIG).read_text()
-    training, technical = _training_section(summary)
+    band = cfgmod.load(run / rf.CONFIG, cfgmod.saved_run_base()).score.band
+    training, technical = _training_section(summary, band)
     parts = [
         "<!doctype html><html><head><meta charset='utf-8'>"
         "<meta name='viewport' content='width=device-width, initial-scale=1'>",

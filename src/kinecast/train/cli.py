@@ -31,6 +31,7 @@ def configure(parser) -> None:
 def run(args, cfg) -> int:
     from ..score.verdict import judge_run
     from .loop import fit
+    from .progress import spread_line
 
     if args.resume:
         if args.out and Path(args.out) != Path(args.resume):
@@ -66,7 +67,7 @@ def run(args, cfg) -> int:
             level = {"failed": "FAILED", "weak": "weak"}.get(verdict["level"], verdict["level"])
             print(f"verdict on the held-out frames ({level}): {verdict['text']}")
         if summary.get("spread_scale"):
-            print(_spread_line(summary, cfg.score.band))
+            print(spread_line(summary, cfg.score.band))
             if summary.get("pixel_noise"):
                 print(f"sampled futures: pixel noise of std {summary['pixel_noise']:.3g} (intensity 0-1) belongs "
                       "to their predictive distribution (fitted likewise on the object's pixels; used by the "
@@ -75,41 +76,3 @@ def run(args, cfg) -> int:
             print(f"kinecast: warning: the model is untrained: {summary['untrained']}. Its forecasts mean "
                   f"nothing yet; train longer (kinecast fit --resume {out} --budget 5m adds 5 minutes).")
     return 0
-
-
-# Held-out trials at or below which fit says its spread scale is a rough one. Our measurement
-# (DEVELOPERS.md, twenty-sixth session): on nine stored 5-minute runs, a fit on 2 held-out trials
-# came within ±20 % of the scale that 12 new trials of the same scene ask for in about half of the
-# cases (the scale two trials asked for spanned 0.42-3.59 on one run whose 12 trials asked for
-# 2.15); more futures per trial or more clips per trial did not narrow that.
-FEW_CALIBRATION_TRIALS = 2
-
-
-def _spread_line(summary: dict, band: float) -> str:
-    """The line ``fit`` prints about the spread scale of sampled futures (see ``calibrate_run``)."""
-    fits = summary.get("spread_scale_candidates") or {}
-    where = summary.get("spread_scale_from") or "held-out trials"
-    applies = "applies to forecast/score with --samples > 1"
-    if where not in fits:  # the floor, not a fit, set it
-        said = ", ".join(f"{value:.3g} on the {name}" for name, value in fits.items())
-        return (f"sampled futures: spread scaled by {summary['spread_scale']:.3g}, the {where}; the fits "
-                f"({said}) would have narrowed it further, more than a fit on a few trials is trusted to; "
-                f"{applies}{_few_trials(summary)}")
-    both = ", the larger of the held-out and training trials' fits" if len(fits) > 1 else ""
-    return (f"sampled futures: spread scaled by {summary['spread_scale']:.3g} (fitted on the {where}{both}, "
-            f"so that {100 * band:.0f} % of their true object positions (tracked in the frames) fall inside "
-            f"the futures' central region; {applies}){_few_trials(summary)}")
-
-
-def _few_trials(summary: dict) -> str:
-    """A caution for :func:`_spread_line` when the scale rests on few held-out trials ('' otherwise)."""
-    held = summary.get("val_recordings")
-    if not held or held > FEW_CALIBRATION_TRIALS:
-        return ""
-    if summary.get("validated_on") == summary.get("trained_on"):  # the tail of a single recording
-        what = "the held-out tail of one recording"
-    else:
-        what = "one held-out trial" if held == 1 else f"{held} held-out trials"
-    return (f". With {what} the scale is rough: on new recordings the share of true positions inside "
-            "the region may land well off the nominal one (give more trials: a quarter of them are held "
-            "out, train.val_fraction)")

@@ -190,3 +190,42 @@ def untrained_reason(recipe: str, steps: int, positions_found, best_val: float, 
         return (f"its forecasts are no better than the bare background (validation error "
                 f"{best_val:.3g} against {background_val:.3g})")
     return None
+
+
+# Held-out trials at or below which fit says its spread scale is a rough one. Our measurement
+# (DEVELOPERS.md, twenty-sixth session): on nine stored 5-minute runs, a fit on 2 held-out trials
+# came within ±20 % of the scale that 12 new trials of the same scene ask for in about half of the
+# cases (the scale two trials asked for spanned 0.42-3.59 on one run whose 12 trials asked for
+# 2.15); more futures per trial or more clips per trial did not narrow that.
+FEW_CALIBRATION_TRIALS = 2
+
+
+def spread_line(summary: dict, band: float) -> str:
+    """The line ``fit`` prints (and the report shows) about the spread scale of sampled futures,
+    from a run's ``summary`` (see :func:`kinecast.train.loop.calibrate_run`)."""
+    fits = summary.get("spread_scale_candidates") or {}
+    where = summary.get("spread_scale_from") or "held-out trials"
+    applies = "applies to forecast/score with --samples > 1"
+    if where not in fits:  # the floor, not a fit, set it
+        said = ", ".join(f"{value:.3g} on the {name}" for name, value in fits.items())
+        return (f"sampled futures: spread scaled by {summary['spread_scale']:.3g}, the {where}; the fits "
+                f"({said}) would have narrowed it further, more than a fit on a few trials is trusted to; "
+                f"{applies}{_few_trials(summary)}")
+    both = ", the larger of the held-out and training trials' fits" if len(fits) > 1 else ""
+    return (f"sampled futures: spread scaled by {summary['spread_scale']:.3g} (fitted on the {where}{both}, "
+            f"so that {100 * band:.0f} % of their true object positions (tracked in the frames) fall inside "
+            f"the futures' central region; {applies}){_few_trials(summary)}")
+
+
+def _few_trials(summary: dict) -> str:
+    """A caution for :func:`spread_line` when the scale rests on few held-out trials ('' otherwise)."""
+    held = summary.get("val_recordings")
+    if not held or held > FEW_CALIBRATION_TRIALS:
+        return ""
+    if summary.get("validated_on") == summary.get("trained_on"):  # the tail of a single recording
+        what = "the held-out tail of one recording"
+    else:
+        what = "one held-out trial" if held == 1 else f"{held} held-out trials"
+    return (f". With {what} the scale is rough: on new recordings the share of true positions inside "
+            "the region may land well off the nominal one (give more trials: a quarter of them are held "
+            "out, train.val_fraction)")
