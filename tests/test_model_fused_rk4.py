@@ -19,17 +19,20 @@ from kinecast.model.solver import solve
 TIMES = torch.tensor([0.0, 1.0, 2.0, 3.5, 4.0, 7.0])  # irregular, one gap of three frames
 
 
-def _field(group=0, second_order=True, activation="relu"):
+def _field(group=0, second_order=True, activation="relu", still=True):
     torch.manual_seed(4)
     field = DynamicsField(4, 32, 2, second_order, True, 1.0, -1.0, activation, group=group)
-    field.moving[1] = 0.0  # one coordinate held still, as the trainer may do
+    if still:
+        field.moving[1] = 0.0  # one coordinate held still, as the trainer may do
     return field
 
 
-@pytest.mark.parametrize("group, second_order, activation",
-                         [(0, True, "relu"), (2, True, "relu"), (0, False, "tanh"), (0, True, "softplus")])
-def test_fused_solve_equals_torchdiffeq_and_its_gradients(group, second_order, activation):
-    field, cfg = _field(group, second_order, activation), SolverConfig()
+@pytest.mark.parametrize("group, second_order, activation, still",
+                         [(0, True, "relu", True), (0, True, "relu", False), (2, True, "relu", True),
+                          (0, False, "tanh", True), (0, True, "softplus", True)])
+def test_fused_solve_equals_torchdiffeq_and_its_gradients(group, second_order, activation, still):
+    # still=False: every coordinate moves, the backward's shortcut that skips the mask
+    field, cfg = _field(group, second_order, activation, still), SolverConfig()
     s0 = torch.randn(5, 8, requires_grad=True)
     weights = field.sample(5, generator=torch.Generator().manual_seed(1))
     params = [s0] + list(field.parameters())

@@ -166,9 +166,10 @@ class DynamicsField(nn.Module):
         if n != weights[0][0].shape[0]:
             raise ValueError(f"DynamicsField: state batch {n} but weights drawn for "
                              f"{weights[0][0].shape[0]} sequences")
-        inputs = []
+        inputs = [] if keep is not None else None  # nothing kept on a rollout or torchdiffeq's path
         for i, (w, b) in enumerate(weights):
-            inputs.append(x)
+            if inputs is not None:
+                inputs.append(x)
             x = torch.baddbmm(b, x, w)
             if i < n_layers - 1:
                 x = self.act(x)
