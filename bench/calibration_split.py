@@ -1,17 +1,19 @@
-"""How far does a spread scale fitted on two held-out trials land from the one many trials ask for?
+"""How far does a spread scale fitted on a few held-out trials land from the one many trials ask for?
 
-``python bench/calibration_split.py RUN TRIAL [TRIAL ...]`` takes a finished run and unseen trials of
-its scene (12 or more: e.g. trials 12-23 that ``bench/recipe.py`` renders for coverage). It
+``python bench/calibration_split.py RUN TRIAL [TRIAL ...] [--group K]`` takes a finished run and
+unseen trials of its scene (12 or more: e.g. trials 12-23 that ``bench/recipe.py`` renders for
+coverage). It
 
 1. scores 16 sampled futures of every trial (60 frames from the first ``model.velocity_frames``)
    at a grid of spread scales around the run's own, giving each trial's position coverage as a
    function of the scale, and the scale at which the mean over all the trials is the nominal 0.90
    (the scale "the trials ask for");
-2. splits the trials into disjoint pairs (seeded) and fits the scale on each pair as ``fit`` fits it
-   on its two held-out trials (:func:`kinecast.model.calibration.calibrate` on the clips
+2. splits the trials into disjoint groups of ``K`` (2 by default, as ``fit`` holds out two of eight
+   trials; seeded) and fits the scale on each group as ``fit`` fits it on its held-out trials
+   (:func:`kinecast.model.calibration.calibrate` on the clips
    :func:`kinecast.train.loop._calibration_clips` picks), with 16 futures per clip (``fit``'s
    default) and with 64; the training trials' fit is made once, as ``fit`` makes it;
-3. prints, per pair, the fits, ``fit``'s rule (the larger of the pair's and the training trials'
+3. prints, per group, the fits, ``fit``'s rule (the larger of the group's and the training trials'
    fits, never below ``train.spread_floor``) and the mean position coverage of the *other* trials
    at that scale (read off the curves of step 1).
 
@@ -77,16 +79,18 @@ def main(argv=None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     parser.add_argument("run", help="a run folder written by kinecast fit")
     parser.add_argument("trials", nargs="+", help="unseen recordings of the same scene (12 or more)")
-    parser.add_argument("--pairs", type=int, default=6, help="disjoint pairs of trials to fit on")
-    parser.add_argument("--seed", type=int, default=0, help="seed of the split into pairs")
+    parser.add_argument("--group", type=int, default=2, help="held-out trials per fit (K)")
+    parser.add_argument("--groups", type=int, default=6, help="disjoint groups of K trials to fit on")
+    parser.add_argument("--seed", type=int, default=0, help="seed of the split into groups")
     parser.add_argument("--out", help="append the numbers as one JSON line to this file")
     args = parser.parse_args(argv)
+    size, count = args.group, args.groups
+    if size < 1 or count < 1 or len(args.trials) < size * count + 2:  # checked before anything is read
+        parser.error(f"{len(args.trials)} trials: {count} groups of {size} need at least {size * count + 2}")
     run = Path(args.run)
     saved = json.loads((run / SUMMARY).read_text())
     model, cfg = load_run(run)
     recs = [read_recording(p, cfg.data) for p in args.trials]
-    if len(recs) < 2 * args.pairs + 2:
-        parser.error(f"{len(recs)} trials: {args.pairs} pairs need at least {2 * args.pairs + 2}")
     scales = [float(saved["spread_scale"]) * m for m in GRID]
     cov = coverage_curves(model, cfg, recs, scales)
     band, floor, window = cfg.score.band, cfg.train.spread_floor, saved["longest_window"]
@@ -100,26 +104,26 @@ def main(argv=None) -> int:
     training = {n: fitted(train_clips, n) for n in FUTURES}
     order = np.random.default_rng(args.seed).permutation(len(recs))
     rows = []
-    for p in range(args.pairs):
-        pair = [int(i) for i in order[2 * p:2 * p + 2]]
-        rest = [j for j in range(len(recs)) if j not in pair]
-        clips = _calibration_clips([recs[i] for i in pair], window, cfg, "cpu")
+    for g in range(count):
+        group = [int(i) for i in order[size * g:size * (g + 1)]]
+        rest = [j for j in range(len(recs)) if j not in group]
+        clips = _calibration_clips([recs[i] for i in group], window, cfg, "cpu")
         fits = {n: fitted(clips, n) for n in FUTURES}
         rule = max(fits[FUTURES[0]], training[FUTURES[0]], floor)
-        rows.append({"pair": pair, "fits": fits, "rule": rule,
+        rows.append({"group": group, "fits": fits, "rule": rule,
                      "rest_coverage_at_rule": at_scale(scales, cov[:, rest], rule),
-                     "rest_coverage_at_pair_fit": at_scale(scales, cov[:, rest], max(fits[FUTURES[0]], floor))})
+                     "rest_coverage_at_group_fit": at_scale(scales, cov[:, rest], max(fits[FUTURES[0]], floor))})
     whole = asked_for(scales, cov, band)
     print(f"{run.name}: {len(recs)} trials ask for a scale of {whole:.3g} (run's own {saved['spread_scale']:.3g}); "
           f"training trials' fit {training[16]:.3g} (16 futures) / {training[64]:.3g} (64)")
-    print("pair      fit 16   fit 64   fit's rule   coverage of the other trials at the rule / at the pair's fit")
+    print("group     fit 16   fit 64   fit's rule   coverage of the other trials at the rule / at the group's fit")
     for r in rows:
-        print(f"{str(r['pair']):9s} {r['fits'][16]:7.3g}  {r['fits'][64]:7.3g}  {r['rule']:9.3g}    "
-              f"{r['rest_coverage_at_rule']:.3f} / {r['rest_coverage_at_pair_fit']:.3f}")
+        print(f"{str(r['group']):9s} {r['fits'][16]:7.3g}  {r['fits'][64]:7.3g}  {r['rule']:9.3g}    "
+              f"{r['rest_coverage_at_rule']:.3f} / {r['rest_coverage_at_group_fit']:.3f}")
     if args.out:
         with open(args.out, "a") as f:
             f.write(json.dumps({"run": str(run), "scales": scales, "coverage": cov.tolist(), "asked_for": whole,
-                                "training_fits": training, "pairs": rows}) + "\n")
+                                "training_fits": training, "group": size, "groups": rows}) + "\n")
     return 0
 
 

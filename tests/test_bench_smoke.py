@@ -326,3 +326,15 @@ def test_calibration_split_reads_the_scale_off_a_known_coverage_curve():
     assert asked_for(scales, cover, 0.9) == pytest.approx(want, rel=1e-2)
     assert at_scale(scales, cover, want) == pytest.approx(0.9, abs=2e-3)
     assert math.isnan(asked_for(scales[:5], cover[:5], 0.9))  # the grid never reaches 0.90
+
+
+def test_calibration_split_refuses_too_few_trials_for_its_groups(capsys):
+    # 3 groups of 4 held-out trials leave at least 2 others only with 14 trials: 13 are refused
+    # with one line and argparse's usage exit (2), before the run or any trial is read (the paths
+    # here do not exist).
+    from bench.calibration_split import main
+
+    with pytest.raises(SystemExit) as stop:
+        main(["no-such-run"] + [f"no-such-trial-{i}" for i in range(13)] + ["--group", "4", "--groups", "3"])
+    assert stop.value.code == 2
+    assert "13 trials: 3 groups of 4 need at least 14" in capsys.readouterr().err
