@@ -196,7 +196,11 @@ def untrained_reason(recipe: str, steps: int, positions_found, best_val: float, 
 # (DEVELOPERS.md, twenty-sixth session): on nine stored 5-minute runs, a fit on 2 held-out trials
 # came within ±20 % of the scale that 12 new trials of the same scene ask for in about half of the
 # cases (the scale two trials asked for spanned 0.42-3.59 on one run whose 12 trials asked for
-# 2.15); more futures per trial or more clips per trial did not narrow that.
+# 2.15); more futures per trial or more clips per trial did not narrow that. More held-out trials
+# narrow it slowly (twenty-seventh session, same runs, groups of other trials): within ±20 % in 50 /
+# 53 / 57 / 58 % of the cases with 2 / 3 / 4 / 6 trials, but the fits over 30 % too small — futures
+# more confident than they should be — fell from 15 % with 2 to 8 % with 3 (6 % with 6): the step
+# this threshold marks.
 FEW_CALIBRATION_TRIALS = 2
 
 
