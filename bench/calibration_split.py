@@ -122,7 +122,8 @@ def main(argv=None) -> int:
               f"{r['rest_coverage_at_rule']:.3f} / {r['rest_coverage_at_group_fit']:.3f}")
     if args.out:
         with open(args.out, "a") as f:
-            f.write(json.dumps({"run": str(run), "scales": scales, "coverage": cov.tolist(), "asked_for": whole,
+            f.write(json.dumps({"run": str(run), "trials": [str(p) for p in args.trials], "scales": scales,
+                                "coverage": cov.tolist(), "asked_for": whole,
                                 "training_fits": training, "group": size, "groups": rows}) + "\n")
     return 0
 

@@ -338,3 +338,16 @@ def test_calibration_split_refuses_too_few_trials_for_its_groups(capsys):
         main(["no-such-run"] + [f"no-such-trial-{i}" for i in range(13)] + ["--group", "4", "--groups", "3"])
     assert stop.value.code == 2
     assert "13 trials: 3 groups of 4 need at least 14" in capsys.readouterr().err
+
+
+def test_calibration_trials_reads_one_trials_needed_scale_off_its_curve():
+    # One trial's coverage at scale s of a 2-D standard normal region of radius s * r1 is
+    # 1 - exp(-(s r1)^2 / 2) (the Rayleigh law, closed form), so it needs sqrt(2 ln 10) / r1 for 0.90.
+    from bench.calibration_trials import needed_scale
+
+    r1 = 0.8
+    scales = np.geomspace(0.3, 6.0, 40)
+    curve = 1 - np.exp(-(scales * r1) ** 2 / 2)
+    assert needed_scale(scales, curve, 0.9) == pytest.approx(math.sqrt(2 * math.log(10)) / r1, rel=1e-2)
+    assert needed_scale(scales, np.full(40, 0.95), 0.9) == pytest.approx(0.3)        # covered everywhere
+    assert needed_scale(scales, np.full(40, 0.5), 0.9) == pytest.approx(1.5 * 6.0)   # never covered
