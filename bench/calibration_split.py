@@ -67,12 +67,18 @@ def at_scale(scales, cov: np.ndarray, scale: float) -> float:
     return float(np.interp(np.log(scale), np.log(scales), cov.mean(axis=1)))
 
 
+def crossing(scales, curve, band: float) -> float:
+    """The scale at which a coverage ``curve`` over ``scales`` reaches ``band``, interpolated in log
+    scale (NaN when the grid never crosses it)."""
+    curve = np.maximum.accumulate(np.asarray(curve, dtype=float))  # coverage grows with the scale; flatten noise
+    if not curve[0] < band < curve[-1]:
+        return float("nan")
+    return float(np.exp(np.interp(band, curve, np.log(scales))))
+
+
 def asked_for(scales, cov: np.ndarray, band: float) -> float:
     """The scale at which the trials' mean coverage is ``band`` (NaN when the grid never crosses it)."""
-    mean = np.maximum.accumulate(cov.mean(axis=1))  # coverage grows with the scale; flatten noise
-    if not mean[0] < band < mean[-1]:
-        return float("nan")
-    return float(np.exp(np.interp(band, mean, np.log(scales))))
+    return crossing(scales, cov.mean(axis=1), band)
 
 
 def main(argv=None) -> int:

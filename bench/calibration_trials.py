@@ -34,14 +34,14 @@ if __package__ in (None, ""):  # run as a script: make `kinecast` importable fro
 import torch  # noqa: E402
 from scipy.stats import spearmanr  # noqa: E402
 
+from bench.calibration_split import HORIZON, crossing  # noqa: E402
+from bench.common import COVERAGE_SAMPLES as FUTURES  # noqa: E402
 from kinecast.frames import read_recording  # noqa: E402
 from kinecast.frames.tracks import centroid_track  # noqa: E402
 from kinecast.runfolder import load_run  # noqa: E402
 from kinecast.score.evaluate import evaluate  # noqa: E402
 from kinecast.train.loop import to_model_time  # noqa: E402
 
-FUTURES = 16
-HORIZON = 60  # forecast frames, as bench/calibration_split.py scores them
 # How the futures are drawn: (mean_weights, sample_init) of LatentODE.sample_latents
 SOURCES = {"weights": (False, False), "s0 and v0": (True, True), "both": (False, True)}
 
@@ -49,12 +49,10 @@ SOURCES = {"weights": (False, False), "s0 and v0": (True, True), "both": (False,
 def needed_scale(scales, curve: np.ndarray, band: float) -> float:
     """The scale at which one trial's coverage ``curve`` (over ``scales``) crosses ``band``; the grid's
     low end when it is covered everywhere, 1.5 × its high end when never."""
-    c = np.maximum.accumulate(np.asarray(curve, dtype=float))  # coverage grows with the scale
-    if c[0] >= band:
-        return float(scales[0])
-    if c[-1] < band:
-        return 1.5 * float(scales[-1])
-    return float(np.exp(np.interp(band, c, np.log(scales))))
+    got = crossing(scales, curve, band)
+    if np.isnan(got):
+        return float(scales[0]) if np.max(curve) >= band else 1.5 * float(scales[-1])
+    return got
 
 
 def latent_spread(model, cfg, rec, mean_weights: bool, sample_init: bool) -> float:
