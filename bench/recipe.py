@@ -85,7 +85,9 @@ SCORING = "frame steps"
 # held still, train.still_keypoint_px 1; "6": as 5, keypoint posteriors start at 0.5 px, an encoder that
 # loses the object goes back to deterministic steps, early stop only below 0.8x the background;
 # "7" ... "16", and the "15c" / "15g" tries: see DEVELOPERS.md)
-DEFAULTS = ("20: as 19, with early stop allowed only from train.early_stop_from = 0.7 of the budget (before: "
+DEFAULTS = ("21: as 20, with validation, the kept weights and so every forecast from a moving average of the "
+            "weights from the dynamics stage on (train.weight_average = 0.98; the joint stage goes on from the "
+            "dynamics stage's average). 20: as 19, with early stop allowed only from train.early_stop_from = 0.7 of the budget (before: "
             "whenever validation had stalled patience times at the longest window) and train.keep_heap on (the "
             "same arithmetic, faster steps). 19: as 18, with the keypoint encoder's conv trunk in train.precision's number format (bf16 where "
             "the CPU has it; its heat maps stay float32). 18: as 17 (one acceleration field shared by the keypoints where the training frames show several "

@@ -110,6 +110,8 @@ def test_a_saved_run_without_a_newer_key_reads_as_it_was_trained(tmp_path):
     old.write_text("[model]\nkeypoints = 2\n", encoding="utf-8")
     assert cfgmod.load(old, cfgmod.saved_run_base()).model.keypoint_window == 0
     assert cfgmod.load(old, cfgmod.saved_run_base()).model.field_per_keypoint == "off"
+    # a run resumed from before train.weight_average kept its raw weights: it goes on without one
+    assert cfgmod.load(old, cfgmod.saved_run_base()).train.weight_average == 0.0
     new = tmp_path / "new.toml"
     new.write_text("[model]\nkeypoint_window = 5\n", encoding="utf-8")
     assert cfgmod.load(new, cfgmod.saved_run_base()).model.keypoint_window == 5

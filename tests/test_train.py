@@ -188,3 +188,62 @@ def test_a_stall_ends_the_run_only_from_its_share(rig, tmp_path, monkeypatch, sh
     summary = fit([rig], tmp_path / "run", cfg, show_progress=False)
     assert summary["steps"] == steps
     assert summary["stop_reason"] == ("budget" if steps == 20 else "early stop: validation stalled at the longest window")
+
+
+def test_the_weight_average_is_a_first_order_recursive_filter():
+    # Exponential smoothing y[n] = (1 - a) x[n] + a y[n-1] is the first-order IIR filter with
+    # b = [1 - a], a = [1, -a] (scipy.signal.lfilter, initial state y[-1] = the starting weight).
+    # A decay of 0.05 sits under the start-up ramp ((1 + n) / (10 + n) >= 2/11) at every update, so
+    # the filter's coefficient is constant.
+    import numpy as np
+    from scipy.signal import lfilter, lfiltic
+    from kinecast.train.average import WeightAverage
+
+    decay = 0.05
+    net = torch.nn.Linear(1, 1, bias=False)
+    with torch.no_grad():
+        net.weight.fill_(0.3)
+    avg = WeightAverage(decay)
+    avg.start(net, "dynamics")
+    xs = np.random.default_rng(0).normal(size=12)
+    for x in xs:
+        with torch.no_grad():
+            net.weight.fill_(float(x))
+        avg.update(net)
+    ref = lfilter([1 - decay], [1, -decay], xs, zi=lfiltic([1 - decay], [1, -decay], [0.3]))[0]
+    with avg.applied(net):  # float32 weights: a few units of its epsilon (1.2e-7) on values near 1
+        assert float(net.weight.detach()) == pytest.approx(ref[-1], abs=1e-6)
+    assert float(net.weight.detach()) == pytest.approx(xs[-1])  # the model's own weights again after the block
+    off = WeightAverage(0.0)
+    off.start(net, "dynamics")
+    off.update(net)
+    assert off.tensors is None and off.state() == ({}, {"updates": 0, "stage": None})
+
+
+@pytest.mark.parametrize("decay", [0.0, 0.98])
+def test_validation_scores_and_keeps_the_averaged_weights(rig, tmp_path, monkeypatch, decay):
+    # The weights validated (and so kept) are the running average; training goes on from the raw
+    # weights. The last validation (step 10) and the final resume checkpoint see the same step.
+    from kinecast.train import loop as loop_mod
+    seen = []
+    real = loop_mod._validate_and_keep
+
+    def spy(model, *args, **kwargs):
+        seen.append([p.detach().clone() for p in model.parameters()])
+        return real(model, *args, **kwargs)
+
+    monkeypatch.setattr(loop_mod, "_validate_and_keep", spy)
+    fit([rig], tmp_path / "run", small_cfg(steps=10, weight_average=decay), show_progress=False)
+    tensors, meta = rf.load_tensors(tmp_path / "run" / rf.RESUME)
+    model, _ = load_run(tmp_path / "run")
+    names = [n for n, _ in model.named_parameters()]
+    raw = [tensors[n] for n in names]
+    averaged = [tensors.get(f"average.{i}") for i in range(len(names))]
+    last = seen[-1]
+    if decay == 0:
+        assert averaged == [None] * len(names) and meta["average"]["stage"] is None
+        assert all(torch.equal(a, b) for a, b in zip(last, raw))
+    else:
+        assert meta["average"]["stage"] == "joint" and meta["average"]["updates"] > 0
+        assert all(torch.equal(a, b) for a, b in zip(last, averaged))
+        assert any(not torch.equal(a, b) for a, b in zip(last, raw))

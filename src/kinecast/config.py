@@ -299,6 +299,14 @@ class TrainConfig:
                                   "to its longest at the latest; 0 = grow only when validation stalls",
                                   lo=0.0, hi=1.0)
     val_every: int = _opt(50, "steps between validations", lo=1)
+    # 0.98 (an average over about the last 50 steps): offline, the dynamics stage alone for 75 s on
+    # the frozen encoders of six stored recipe-bench runs, the average's held-out keypoint error
+    # @60 was 2-3x below the raw weights' through the stage's first half (pendulum gradient 0.46
+    # against 1.52 px at 35 s) and no worse at its end (DEVELOPERS.md, twenty-eighth session)
+    weight_average: float = _opt(0.98, "decay per step of a moving average of the weights, kept from the "
+                                 "dynamics stage on (the whole run for end_to_end); validation, the kept "
+                                 "weights and so forecasts use the average, training goes on from the raw "
+                                 "weights; 0 = off", lo=0.0, hi=0.9999)
     val_fraction: float = _opt(0.25, "tail share of a single recording held out for validation",
                                lo=0.0, hi=0.9)
     patience: int = _opt(6, "validations without improvement before growing the window / stopping", lo=1)
@@ -502,7 +510,7 @@ def to_dict(cfg: Config) -> dict:
 # (field_per_keypoint: runs from before the key had one field over all coordinates; unresolved "auto"
 # would build that too, but only by accident of LatentODE testing for "on")
 SAVED_RUN_ABSENT = {("model", "keypoint_window"): 0, ("model", "field_per_keypoint"): "off",
-                    ("model", "keypoint_trunk_low_precision"): False}
+                    ("model", "keypoint_trunk_low_precision"): False, ("train", "weight_average"): 0.0}
 
 
 def saved_run_base() -> Config:

@@ -32,6 +32,7 @@ from .. import runfolder as rf
 from . import checkpoint as ck
 from . import stages as S
 from . import distributed as D
+from .average import PREFIX as AVERAGE_PREFIX, WeightAverage
 from .progress import Progress, duration, untrained_reason
 from .lock import RunLock
 from .data import WindowSampler, expand_paths, load_recordings, median_background, split_train_val
@@ -336,11 +337,12 @@ class _Data:
 
 class TrainState:
     """Everything a resumed run needs to take the same path as an uninterrupted one: model,
-    optimiser, window curriculum, stage state, both random states, step, seconds counted before this
-    process started, faults, learning-rate scale and the log rows. Saved and restored whole."""
+    optimiser, weight average, window curriculum, stage state, both random states, step, seconds
+    counted before this process started, faults, learning-rate scale and the log rows. Saved and
+    restored whole."""
 
-    def __init__(self, model, opt, cur: Curriculum, sampler: WindowSampler):
-        self.model, self.opt, self.cur, self.sampler = model, opt, cur, sampler
+    def __init__(self, model, opt, cur: Curriculum, sampler: WindowSampler, average: WeightAverage):
+        self.model, self.opt, self.cur, self.sampler, self.average = model, opt, cur, sampler, average
         self.stages = S.StageState()
         self.best_positions: dict | None = None  # S.snapshot_positions of the escaped encoder
         self.step, self.elapsed_before, self.faults, self.lr_scale = 0, 0.0, 0, 1.0
@@ -353,7 +355,10 @@ class TrainState:
         tensors.update(opt_tensors)
         tensors["rng.torch"] = torch.get_rng_state()
         tensors.update({S.SNAPSHOT_PREFIX + k: v for k, v in (self.best_positions or {}).items()})
+        avg_tensors, avg_meta = self.average.state()
+        tensors.update(avg_tensors)
         meta = {"step": self.step, "elapsed": elapsed, "faults": self.faults, "lr_scale": self.lr_scale,
+                "average": avg_meta,
                 "curriculum": self.cur.state(), "stages": self.stages.state(), "optimizer": opt_meta,
                 "sampler_rng": self.sampler.rng.bit_generator.state, **extra}
         return tensors, meta
@@ -362,10 +367,12 @@ class TrainState:
         """Restore from a resume checkpoint (``path`` names it in errors); ``more``: an earlier early
         stop does not end the extension asked for."""
         rf.restore_model(self.model, {k: v for k, v in tensors.items()
-                                      if not k.startswith(("opt.", "rng.", S.SNAPSHOT_PREFIX))}, meta, path)
+                                      if not k.startswith(("opt.", "rng.", S.SNAPSHOT_PREFIX, AVERAGE_PREFIX))},
+                         meta, path)
         n = len(S.SNAPSHOT_PREFIX)
         self.best_positions = {k[n:]: v for k, v in tensors.items() if k.startswith(S.SNAPSHOT_PREFIX)} or None
         ck.restore_optimizer(self.opt, tensors, meta["optimizer"])
+        self.average.load(tensors, meta.get("average"))
         torch.set_rng_state(tensors["rng.torch"])
         self.sampler.rng.bit_generator.state = meta["sampler_rng"]
         self.cur = Curriculum(**meta["curriculum"])
@@ -425,7 +432,7 @@ class _Trainer:
         opt = torch.optim.Adam(model.parameters(), lr=cfg.train.lr)
         cur = Curriculum(min(cfg.train.window_start, data.longest), data.longest, cfg.train.window_growth,
                          cfg.train.patience)
-        state = TrainState(model, opt, cur, data.sampler)
+        state = TrainState(model, opt, cur, data.sampler, WeightAverage(cfg.train.weight_average))
         if resume:
             state.load_state_dict(*resumed, run / rf.RESUME, rf.read_log(run), more)
         if ctx.main:
@@ -501,6 +508,7 @@ class _Trainer:
         terms, window, beta, relapsed = self._terms(stage, local, kl_weight(cfg.train, prog))
         if not self._update(terms["loss"], fault_hook):
             return st.faults <= cfg.train.max_faults
+        st.average.update(self.model)
         if relapsed and st.best_positions is not None:
             S.restore_positions(self.model, self.opt, st.best_positions)
             st.stages.restored()
@@ -543,6 +551,9 @@ class _Trainer:
                 and not st.stages.joint_checked):
             st.stages.joint_checked = True  # the after-dynamics weights compete for "best"
             self._validate(elapsed, st.cur.window)
+        if stage in (S.DYNAMICS, S.JOINT) and st.average.stage != stage:  # not again on resume
+            st.average.adopt(self.model)  # the joint stage goes on from the dynamics stage's average
+            st.average.start(self.model, stage)
 
     def _terms(self, stage: str, local: float, beta: float) -> tuple[dict, int, float, bool]:
         """This step's loss terms: ``(terms, window, KL weight used, relapsed)``."""
@@ -632,8 +643,9 @@ class _Trainer:
         """Validate (main process); keep the weights as the run's best when they are; log and show it.
         In the dynamics stage a score that is not the best is no stall of the joint stage's curriculum."""
         st = self.state
-        self.val = _validate_and_keep(self.model, self.data.val_sampler, self.data.val_window, self.cfg,
-                                      st.cur, self.run, st.step, stalls=self.stage != S.DYNAMICS)
+        with st.average.applied(self.model):
+            self.val = _validate_and_keep(self.model, self.data.val_sampler, self.data.val_window, self.cfg,
+                                          st.cur, self.run, st.step, stalls=self.stage != S.DYNAMICS)
         st.rows.append({"step": st.step, "time_s": round(elapsed, 3), "val_mse": self.val,
                         "window": st.cur.window, "stage": S.NUMBER[self.stage]})
         self.report.update(st.step, self.elapsed(), self.stage, window, self.val, self.bg_val, event=True)
@@ -654,8 +666,9 @@ class _Trainer:
         summary = {}
         if self.ctx.main:
             if not (run / rf.WEIGHTS).exists() or not math.isfinite(st.cur.best):
-                val = validate(self.model.eval(), data.val_sampler, data.val_window, cfg)
-                rf.save_tensors(run / rf.WEIGHTS, self.model.state_dict(), {"step": st.step, "val_mse": val})
+                with st.average.applied(self.model):
+                    val = validate(self.model.eval(), data.val_sampler, data.val_window, cfg)
+                    rf.save_tensors(run / rf.WEIGHTS, self.model.state_dict(), {"step": st.step, "val_mse": val})
                 st.cur.best = val if math.isfinite(val) else st.cur.best
             self.save_resume()
             fitted = (calibrate_run(run, data.val, data.train, data.longest, cfg, self.ctx.device)
