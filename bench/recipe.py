@@ -85,7 +85,9 @@ SCORING = "frame steps"
 # held still, train.still_keypoint_px 1; "6": as 5, keypoint posteriors start at 0.5 px, an encoder that
 # loses the object goes back to deterministic steps, early stop only below 0.8x the background;
 # "7" ... "16", and the "15c" / "15g" tries: see DEVELOPERS.md)
-DEFAULTS = ("21: as 20, with validation, the kept weights and so every forecast from a moving average of the "
+DEFAULTS = ("22: as 21, with the joint stage starting from the weights kept so far, the dynamics stage's best "
+            "validated average (train.joint_from_best; before: from the dynamics stage's last average). "
+            "21: as 20, with validation, the kept weights and so every forecast from a moving average of the "
             "weights from the dynamics stage on (train.weight_average = 0.98; the joint stage goes on from the "
             "dynamics stage's average). 20: as 19, with early stop allowed only from train.early_stop_from = 0.7 of the budget (before: "
             "whenever validation had stalled patience times at the longest window) and train.keep_heap on (the "

@@ -247,3 +247,31 @@ def test_validation_scores_and_keeps_the_averaged_weights(rig, tmp_path, monkeyp
         assert meta["average"]["stage"] == "joint" and meta["average"]["updates"] > 0
         assert all(torch.equal(a, b) for a, b in zip(last, averaged))
         assert any(not torch.equal(a, b) for a, b in zip(last, raw))
+
+
+@pytest.mark.parametrize("from_best", [True, False])
+def test_the_joint_stage_starts_from_the_kept_weights(rig, tmp_path, monkeypatch, from_best):
+    # Steps 1-2 are the positions stage, 3-4 the dynamics stage (validated at step 3's entry check and
+    # step 5's), then the joint stage: with train.joint_from_best it starts from the weights file kept
+    # so far, not from the dynamics stage's last step (with it off, from the dynamics stage's average).
+    from kinecast.train import loop as loop_mod
+    seen = {}
+    real = loop_mod._Trainer._enter
+
+    def spy(self, stage, elapsed):
+        real(self, stage, elapsed)
+        if stage == "joint":
+            seen["model"] = {k: v.clone() for k, v in self.model.state_dict().items()}
+            seen["kept"] = rf.load_tensors(self.run / rf.WEIGHTS)[0]
+            seen["average"] = [a.clone() for a in self.state.average.tensors]
+
+    monkeypatch.setattr(loop_mod._Trainer, "_enter", spy)
+    cfg = small_cfg(steps=12, val_every=2, joint_from_best=str(from_best).lower())
+    fit([rig], tmp_path / "run", cfg, show_progress=False)
+    names = list(dict(load_run(tmp_path / "run")[0].named_parameters()))
+    if from_best:
+        assert all(torch.equal(seen["model"][n], seen["kept"][n]) for n in names)
+    else:
+        assert any(not torch.equal(seen["model"][n], seen["kept"][n]) for n in names)
+    # either way the joint stage's average starts from the weights it trains on
+    assert all(torch.equal(seen["model"][n], a) for n, a in zip(names, seen["average"]))

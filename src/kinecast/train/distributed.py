@@ -66,6 +66,15 @@ def sync_decision(ctx: Context, stop: bool, window: int) -> tuple[bool, int]:
     return bool(t[0].item()), int(t[1].item())
 
 
+def broadcast_parameters(ctx: Context, model: torch.nn.Module) -> None:
+    """Rank 0's parameters on every rank (after rank 0 alone changed them, e.g. from a file)."""
+    if not ctx.active:
+        return
+    with torch.no_grad():
+        for p in model.parameters():
+            dist.broadcast(p.data, src=0)
+
+
 def any_rank(ctx: Context, flag: bool) -> bool:
     """True when ``flag`` is set on any rank (e.g. a non-finite loss)."""
     if not ctx.active:

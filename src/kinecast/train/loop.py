@@ -547,13 +547,23 @@ class _Trainer:
             if still:
                 self.report.note(f"kinecast: keypoint(s) {', '.join(map(str, still))} barely move in the "
                                  "training frames and are held still in the forecast")
-        if (stage == S.JOINT and cfg.train.recipe == "staged" and st.step > 0 and self.ctx.main
-                and not st.stages.joint_checked):
-            st.stages.joint_checked = True  # the after-dynamics weights compete for "best"
-            self._validate(elapsed, st.cur.window)
+        if stage == S.JOINT and cfg.train.recipe == "staged" and st.step > 0 and not st.stages.joint_checked:
+            st.stages.joint_checked = True  # once: not again on resume
+            if self.ctx.main:
+                self._validate(elapsed, st.cur.window)  # the after-dynamics weights compete for "best"
+            if cfg.train.joint_from_best:
+                self._continue_from_kept()
+            else:
+                st.average.adopt(self.model)
         if stage in (S.DYNAMICS, S.JOINT) and st.average.stage != stage:  # not again on resume
-            st.average.adopt(self.model)  # the joint stage goes on from the dynamics stage's average
             st.average.start(self.model, stage)
+
+    def _continue_from_kept(self) -> None:
+        """Give the model the weights kept so far (the dynamics stage's best validated ones), on every
+        process: the joint stage fine-tunes the best forecaster found, not the stage's last step."""
+        if self.ctx.main and math.isfinite(self.state.cur.best) and (self.run / rf.WEIGHTS).exists():
+            self.model.load_state_dict(rf.load_tensors(self.run / rf.WEIGHTS)[0])
+        D.broadcast_parameters(self.ctx, self.model)
 
     def _terms(self, stage: str, local: float, beta: float) -> tuple[dict, int, float, bool]:
         """This step's loss terms: ``(terms, window, KL weight used, relapsed)``."""
