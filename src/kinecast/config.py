@@ -216,10 +216,10 @@ class TrainConfig:
     positions_lr: float = _opt(1e-2, "staged: peak learning rate of the positions stage", lo=0.0)
     # 3e-4: at the full 3e-3 the joint stage undid the dynamics stage on the pendulum rig (held-out
     # forecast MSE 0.00093 after the dynamics stage, 0.0033 fifty steps into the joint stage)
-    # True since the twenty-eighth session: with train.weight_average the dynamics stage's best
-    # validated average came tens of seconds before the stage's end, and its validation got worse after
-    # it (pendulum classic s11: 4.4e-4 at 111 s, 5.9e-4 at 145 s); a joint stage started from the last
-    # step never got back below the best (DEVELOPERS.md)
+    # True since the twenty-eighth session: with train.weight_average alone, on pendulum classic s11
+    # the dynamics stage's best validated average came at 111 s (val MSE 4.4e-4) and its validation
+    # got worse after it (5.9e-4 at the stage's end, 145 s); the joint stage, started from there,
+    # never got back below the best (4.7e-4) and the weights kept were the 111 s ones (DEVELOPERS.md)
     joint_from_best: bool = _opt(True, "staged: the joint stage starts from the weights kept so far (the dynamics "
                                  "stage's best validated ones) instead of the dynamics stage's last step")
     joint_lr: float = _opt(3e-4, "staged: peak learning rate of the joint stage (fine-tuning; the dynamics "
@@ -306,9 +306,11 @@ class TrainConfig:
                                   lo=0.0, hi=1.0)
     val_every: int = _opt(50, "steps between validations", lo=1)
     # 0.98 (an average over about the last 50 steps): offline, the dynamics stage alone for 75 s on
-    # the frozen encoders of six stored recipe-bench runs, the average's held-out keypoint error
-    # @60 was 2-3x below the raw weights' through the stage's first half (pendulum gradient 0.46
-    # against 1.52 px at 35 s) and no worse at its end (DEVELOPERS.md, twenty-eighth session)
+    # the frozen encoders of eight stored recipe-bench runs, the average's held-out keypoint error
+    # @60 was up to 3x below the raw weights' through the stage's first half (pendulum gradient 0.46
+    # against 1.52 px at 35 s) and no worse at its end; in ten 5-minute recipe-bench runs (with
+    # joint_from_best) the pendulum reached 0.1x persistence in 92-103 s against 126-184 s before
+    # (DEVELOPERS.md, twenty-eighth session)
     weight_average: float = _opt(0.98, "decay per step of a moving average of the weights, kept from the "
                                  "dynamics stage on (the whole run for end_to_end); validation, the kept "
                                  "weights and so forecasts use the average, training goes on from the raw "
