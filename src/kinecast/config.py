@@ -216,14 +216,14 @@ class TrainConfig:
     positions_lr: float = _opt(1e-2, "staged: peak learning rate of the positions stage", lo=0.0)
     # 3e-4: at the full 3e-3 the joint stage undid the dynamics stage on the pendulum rig (held-out
     # forecast MSE 0.00093 after the dynamics stage, 0.0033 fifty steps into the joint stage)
+    joint_lr: float = _opt(3e-4, "staged: peak learning rate of the joint stage (fine-tuning; the dynamics "
+                           "stage and the end_to_end recipe use train.lr)", lo=0.0)
     # True since the twenty-eighth session: with train.weight_average alone, on pendulum classic s11
     # the dynamics stage's best validated average came at 111 s (val MSE 4.4e-4) and its validation
     # got worse after it (5.9e-4 at the stage's end, 145 s); the joint stage, started from there,
     # never got back below the best (4.7e-4) and the weights kept were the 111 s ones (DEVELOPERS.md)
     joint_from_best: bool = _opt(True, "staged: the joint stage starts from the weights kept so far (the dynamics "
                                  "stage's best validated ones) instead of the dynamics stage's last step")
-    joint_lr: float = _opt(3e-4, "staged: peak learning rate of the joint stage (fine-tuning; the dynamics "
-                           "stage and the end_to_end recipe use train.lr)", lo=0.0)
     keypoint_repulsion: float = _opt(0.0, "staged: weight of a term that keeps keypoints apart in the positions "
                                      "stage (for several similar objects)", lo=0.0)
     # 1.0: on the air table the two keypoints then sat one on each puck (within ~0.5 px on held-out

@@ -1,9 +1,9 @@
 """An exponential moving average of the trained weights, the weights that are validated and kept.
 
 The staged recipe's dynamics stage trains a Bayesian field whose gradient carries the noise of its
-weight draws: at the stage's learning rate its posterior means wander from step to step, and a
-forecast from the weights of any one step is several times worse than one from their average over
-the last ~50 steps (DEVELOPERS.md, twenty-eighth session). Validation, the kept checkpoint and so
+weight draws: at the stage's learning rate its posterior means wander from step to step, and in the
+stage's first half a forecast from the weights of any one step was often two to three times worse
+than one from their average over the last ~50 steps (DEVELOPERS.md, twenty-eighth session). Validation, the kept checkpoint and so
 every forecast use the average; training goes on from the raw weights.
 
 The decay ramps up as ``min(decay, (1 + n) / (10 + n))`` after ``n`` updates, so an average started
