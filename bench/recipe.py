@@ -115,7 +115,7 @@ DEFAULTS = ("22: as 21, with the joint stage starting from the weights kept so f
 # weights: pooled for success and position error after ten paired runs (every rig, three pendulum
 # looks, both spring looks run, the rod pendulum drawn by other code) showed no change in them beyond
 # one seed's spread (better in 5 of 8 smooth-motion pairs, spring classic s9 worse); its time to
-# quality is shorter (pendulum 92-103 s against 126-184 s), so the pooled time-to-quality cells mix
+# quality is shorter (pendulum 92-103 s against 119-159 s for d19/d20), so the pooled time-to-quality cells mix
 # the two (DEVELOPERS.md, twenty-eighth session). d21 (the average without the joint stage's start
 # from the kept weights) stays a group of its own.
 _SINCE_D20 = [("20", frozenset()), ("20", frozenset({"train.keep_heap=true"})), ("22", frozenset())]

@@ -309,8 +309,8 @@ class TrainConfig:
     # the frozen encoders of eight stored recipe-bench runs, the average's held-out keypoint error
     # @60 was up to 3x below the raw weights' through the stage's first half (pendulum gradient 0.46
     # against 1.52 px at 35 s) and no worse at its end; in ten 5-minute recipe-bench runs (with
-    # joint_from_best) the pendulum reached 0.1x persistence in 92-103 s against 126-184 s before
-    # (DEVELOPERS.md, twenty-eighth session)
+    # joint_from_best) the pendulum reached 0.1x persistence in 92-103 s against 119-159 s in the
+    # d19/d20 runs of the same seeds (DEVELOPERS.md, twenty-eighth session)
     weight_average: float = _opt(0.98, "decay per step of a moving average of the weights, kept from the "
                                  "dynamics stage on (the whole run for end_to_end); validation, the kept "
                                  "weights and so forecasts use the average, training goes on from the raw "
