@@ -112,6 +112,9 @@ def test_a_saved_run_without_a_newer_key_reads_as_it_was_trained(tmp_path):
     assert cfgmod.load(old, cfgmod.saved_run_base()).model.field_per_keypoint == "off"
     # a run resumed from before train.weight_average kept its raw weights: it goes on without one
     assert cfgmod.load(old, cfgmod.saved_run_base()).train.weight_average == 0.0
+    # and one from before the joint stage's warm-up resumes its joint stage as it began it
+    old_train = cfgmod.load(old, cfgmod.saved_run_base()).train
+    assert old_train.joint_warmup == 0.0 and old_train.joint_fresh_moments is False
     new = tmp_path / "new.toml"
     new.write_text("[model]\nkeypoint_window = 5\n", encoding="utf-8")
     assert cfgmod.load(new, cfgmod.saved_run_base()).model.keypoint_window == 5

@@ -18,7 +18,7 @@ from kinecast.rigs import write_rig
 from kinecast.train import fit, load_run
 from kinecast import runfolder as rf
 from kinecast.train import schedule as sched_mod
-from kinecast.train.schedule import Curriculum, kl_weight, learning_rate, may_stop_early
+from kinecast.train.schedule import Curriculum, kl_weight, learning_rate, may_stop_early, stage_learning_rate
 
 
 def small_cfg(**train):
@@ -249,23 +249,68 @@ def test_validation_scores_and_keeps_the_averaged_weights(rig, tmp_path, monkeyp
         assert any(not torch.equal(a, b) for a, b in zip(last, raw))
 
 
-@pytest.mark.parametrize("from_best", [True, False])
-def test_the_joint_stage_starts_from_the_kept_weights(rig, tmp_path, monkeypatch, from_best):
-    # Steps 1-2 are the positions stage, 3-4 the dynamics stage (validated at step 3's entry check and
-    # step 5's), then the joint stage: with train.joint_from_best it starts from the weights file kept
-    # so far, not from the dynamics stage's last step (with it off, from the dynamics stage's average).
+def test_stage_learning_rates():
+    # Linear warm-up then cosine decay (common practice: Goyal et al. 2017, "Accurate, large minibatch
+    # SGD", for the warm-up; Loshchilov & Hutter 2017, "SGDR", for the cosine), each staged stage at
+    # its own peak; the joint stage's warm-up is linear in the stage's own progress.
+    cfg = C.TrainConfig(lr=1.0, positions_lr=10.0, joint_lr=0.1, warmup_steps=0, lr_min_ratio=0.0,
+                        joint_warmup=0.2)
+    cosine = lambda x: 0.5 * (1 + math.cos(math.pi * x))  # noqa: E731
+    assert stage_learning_rate(cfg, 500, "positions", 0.5) == pytest.approx(10.0 * cosine(0.5))
+    assert stage_learning_rate(cfg, 500, "dynamics", 0.5) == pytest.approx(cosine(0.5))
+    assert stage_learning_rate(cfg, 500, "joint", 0.0) == 0.0
+    assert stage_learning_rate(cfg, 500, "joint", 0.1) == pytest.approx(0.1 * cosine(0.1) * 0.5)
+    assert stage_learning_rate(cfg, 500, "joint", 0.6) == pytest.approx(0.1 * cosine(0.6))
+    cfg.joint_warmup = 0.0
+    assert stage_learning_rate(cfg, 500, "joint", 0.0) == pytest.approx(0.1)
+    cfg.recipe = "end_to_end"  # one stage at train.lr, whatever its name
+    assert stage_learning_rate(cfg, 500, "joint", 0.5) == pytest.approx(cosine(0.5))
+
+
+def on_joint_entry(monkeypatch, look):
+    """Call ``look(trainer)`` right after the trainer has entered the joint stage."""
     from kinecast.train import loop as loop_mod
-    seen = {}
     real = loop_mod._Trainer._enter
 
     def spy(self, stage, elapsed):
         real(self, stage, elapsed)
         if stage == "joint":
-            seen["model"] = {k: v.clone() for k, v in self.model.state_dict().items()}
-            seen["kept"] = rf.load_tensors(self.run / rf.WEIGHTS)[0]
-            seen["average"] = [a.clone() for a in self.state.average.tensors]
+            look(self)
 
     monkeypatch.setattr(loop_mod._Trainer, "_enter", spy)
+
+
+@pytest.mark.parametrize("fresh", [True, False])
+def test_the_joint_stage_may_forget_the_positions_moments(rig, tmp_path, monkeypatch, fresh):
+    # Steps 1-2 positions, 3-4 dynamics, then the joint stage (as in the test below). Frozen parameters
+    # get no Adam step, so without the option the position encoder's statistics from the positions
+    # stage are still there when the joint stage starts.
+    seen = {}
+
+    def look(trainer):
+        held = {id(p) for p in trainer.opt.state}
+        seen["pos"] = [id(p) in held for p in trainer.model.pos_enc.parameters() if p.requires_grad]
+        seen["field"] = [id(p) in held for p in trainer.model.field.parameters() if p.requires_grad]
+
+    on_joint_entry(monkeypatch, look)
+    fit([rig], tmp_path / "run", small_cfg(steps=8, joint_fresh_moments=str(fresh).lower()), show_progress=False)
+    assert any(seen["field"])  # the field keeps its statistics either way
+    assert not any(seen["pos"]) if fresh else any(seen["pos"])
+
+
+@pytest.mark.parametrize("from_best", [True, False])
+def test_the_joint_stage_starts_from_the_kept_weights(rig, tmp_path, monkeypatch, from_best):
+    # Steps 1-2 are the positions stage, 3-4 the dynamics stage (validated at step 3's entry check and
+    # step 5's), then the joint stage: with train.joint_from_best it starts from the weights file kept
+    # so far, not from the dynamics stage's last step (with it off, from the dynamics stage's average).
+    seen = {}
+
+    def look(trainer):
+        seen["model"] = {k: v.clone() for k, v in trainer.model.state_dict().items()}
+        seen["kept"] = rf.load_tensors(trainer.run / rf.WEIGHTS)[0]
+        seen["average"] = [a.clone() for a in trainer.state.average.tensors]
+
+    on_joint_entry(monkeypatch, look)
     cfg = small_cfg(steps=12, val_every=2, joint_from_best=str(from_best).lower())
     fit([rig], tmp_path / "run", cfg, show_progress=False)
     names = list(dict(load_run(tmp_path / "run")[0].named_parameters()))

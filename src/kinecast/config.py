@@ -224,6 +224,15 @@ class TrainConfig:
     # never got back below the best (4.7e-4) and the weights kept were the 111 s ones (DEVELOPERS.md)
     joint_from_best: bool = _opt(True, "staged: the joint stage starts from the weights kept so far (the dynamics "
                                  "stage's best validated ones) instead of the dynamics stage's last step")
+    # 0.1 and fresh moments since the twenty-ninth session: before, the joint stage's first validation read
+    # 1.3-3x the dynamics stage's last (full bench 3.6e-4 -> 1.15e-3; pendulum classic s11 4.1e-4 ->
+    # 6.6e-4, never back); with both it read equal or better in ten runs of ten; the end results of
+    # three paired step-budget runs differed by no more than a seed's spread (DEVELOPERS.md)
+    joint_warmup: float = _opt(0.1, "staged: share of the joint stage over which its learning rate rises linearly "
+                               "from 0 to train.joint_lr; 0 = it starts at the peak", lo=0.0, hi=1.0)
+    joint_fresh_moments: bool = _opt(True, "staged: the optimiser forgets its running gradient statistics of the "
+                                     "position encoder and decoder when the joint stage starts (they date from "
+                                     "the positions stage's loss and learning rate)")
     keypoint_repulsion: float = _opt(0.0, "staged: weight of a term that keeps keypoints apart in the positions "
                                      "stage (for several similar objects)", lo=0.0)
     # 1.0: on the air table the two keypoints then sat one on each puck (within ~0.5 px on held-out
@@ -519,7 +528,8 @@ def to_dict(cfg: Config) -> dict:
 # would build that too, but only by accident of LatentODE testing for "on")
 SAVED_RUN_ABSENT = {("model", "keypoint_window"): 0, ("model", "field_per_keypoint"): "off",
                     ("model", "keypoint_trunk_low_precision"): False, ("train", "weight_average"): 0.0,
-                    ("train", "joint_from_best"): False}
+                    ("train", "joint_from_best"): False, ("train", "joint_warmup"): 0.0,
+                    ("train", "joint_fresh_moments"): False}
 
 
 def saved_run_base() -> Config:

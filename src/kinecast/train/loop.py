@@ -36,7 +36,7 @@ from .average import PREFIX as AVERAGE_PREFIX, WeightAverage
 from .progress import Progress, duration, untrained_reason
 from .lock import RunLock
 from .data import WindowSampler, expand_paths, load_recordings, median_background, split_train_val
-from .schedule import Curriculum, kl_weight, learning_rate, may_stop_early, progress
+from .schedule import Curriculum, kl_weight, may_stop_early, progress, stage_learning_rate
 
 VAL_WINDOWS = 8  # validation windows (evenly spaced over the held-out frames)
 LOG_EVERY = 10  # steps between log rows
@@ -499,10 +499,8 @@ class _Trainer:
                                 cfg.train.seed + S.RESTART_SEED_STRIDE * st.stages.restarts)
             self.report.note(f"kinecast: the position encoder had not found the moving object by step "
                              f"{st.step}: restart {st.stages.restarts} from a new seed")
-        lr = learning_rate(cfg.train, st.step, local if cfg.train.recipe == "staged" else prog, st.lr_scale)
-        if cfg.train.recipe == "staged" and stage != S.DYNAMICS:
-            peak = cfg.train.positions_lr if stage == S.POSITIONS else cfg.train.joint_lr
-            lr *= peak / cfg.train.lr if cfg.train.lr > 0 else 0.0
+        lr = stage_learning_rate(cfg.train, st.step, stage, local if cfg.train.recipe == "staged" else prog,
+                                 st.lr_scale)
         for g in self.opt.param_groups:
             g["lr"] = lr
         terms, window, beta, relapsed = self._terms(stage, local, kl_weight(cfg.train, prog))
@@ -555,6 +553,8 @@ class _Trainer:
                 self._continue_from_kept()
             else:
                 st.average.adopt(self.model)
+            if cfg.train.joint_fresh_moments:
+                S.forget_moments(self.model, self.opt)
         if stage in (S.DYNAMICS, S.JOINT) and st.average.stage != stage:  # not again on resume
             st.average.start(self.model, stage)
 

@@ -10,6 +10,7 @@ import math
 from dataclasses import dataclass
 
 from ..config import FLOOR_MARGIN, TrainConfig
+from .stages import DYNAMICS, JOINT, POSITIONS
 
 
 def progress(step: int, elapsed: float, steps: int, budget_s: float) -> float:
@@ -42,6 +43,23 @@ def learning_rate(cfg: TrainConfig, step: int, prog: float, scale: float = 1.0) 
         return peak * (step + 1) / cfg.warmup_steps
     floor = cfg.lr_min_ratio
     return peak * (floor + (1 - floor) * 0.5 * (1 + math.cos(math.pi * prog)))
+
+
+def stage_learning_rate(cfg: TrainConfig, step: int, stage: str, local: float, scale: float = 1.0) -> float:
+    """:func:`learning_rate` at progress ``local`` within ``stage``, scaled to the stage's own peak.
+
+    The staged recipe's positions stage peaks at ``positions_lr``, its joint stage at ``joint_lr``
+    (reached linearly over the first ``joint_warmup`` of the stage), its dynamics stage and the
+    ``end_to_end`` recipe (one stage, ``"joint"``, ``local`` = overall progress) at ``lr``.
+    """
+    lr = learning_rate(cfg, step, local, scale)
+    if cfg.recipe != "staged" or stage == DYNAMICS:
+        return lr
+    peak = cfg.positions_lr if stage == POSITIONS else cfg.joint_lr
+    lr *= peak / cfg.lr if cfg.lr > 0 else 0.0
+    if stage == JOINT and cfg.joint_warmup > 0:
+        lr *= min(1.0, local / cfg.joint_warmup)
+    return lr
 
 
 def kl_weight(cfg: TrainConfig, prog: float) -> float:

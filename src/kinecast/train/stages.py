@@ -185,6 +185,13 @@ POSITIONS_PARTS = ("pos_enc", "decoder")  # what the positions stage trains
 SNAPSHOT_PREFIX = "best_positions."  # their snapshot's keys in a resume checkpoint
 
 
+def forget_moments(model, opt, parts=POSITIONS_PARTS) -> None:
+    """Drop the optimiser's running statistics of ``parts`` (Adam starts them afresh at their next step)."""
+    for name in parts:
+        for p in getattr(model, name).parameters():
+            opt.state.pop(p, None)
+
+
 def snapshot_positions(model) -> dict[str, torch.Tensor]:
     """A copy of the position encoder's and decoder's weights (keys as in the model's state dict)."""
     return {k: v.detach().clone() for k, v in model.state_dict().items() if k.startswith(POSITIONS_PARTS)}
@@ -193,9 +200,7 @@ def snapshot_positions(model) -> dict[str, torch.Tensor]:
 def restore_positions(model, opt, snap: dict[str, torch.Tensor]) -> None:
     """Put a :func:`snapshot_positions` back; forget the optimiser state of those weights."""
     model.load_state_dict(snap, strict=False)
-    for name in POSITIONS_PARTS:
-        for p in getattr(model, name).parameters():
-            opt.state.pop(p, None)
+    forget_moments(model, opt)
 
 
 def restart_positions(model, opt, cfg, channels: int, seed: int) -> None:
@@ -205,10 +210,8 @@ def restart_positions(model, opt, cfg, channels: int, seed: int) -> None:
         torch.manual_seed(seed)
         fresh = build_model(cfg, channels)
     for name in POSITIONS_PARTS:
-        new, old = getattr(fresh, name), getattr(model, name)
-        old.load_state_dict(new.state_dict())
-        for p in old.parameters():
-            opt.state.pop(p, None)
+        getattr(model, name).load_state_dict(getattr(fresh, name).state_dict())
+    forget_moments(model, opt)
 
 
 def alike_objects(recs, background) -> bool:
