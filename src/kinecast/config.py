@@ -226,7 +226,7 @@ class TrainConfig:
                                  "stage's best validated ones) instead of the dynamics stage's last step")
     # 0.1 and fresh moments since the twenty-ninth session: before, the joint stage's first validation read
     # 1.3-3x the dynamics stage's last (full bench 3.6e-4 -> 1.15e-3; pendulum classic s11 4.1e-4 ->
-    # 6.6e-4, never back); with both it read equal or better in ten runs of ten; the end results of
+    # 6.6e-4, never back); with both it read equal or better in ten runs of eleven; the end results of
     # three paired step-budget runs differed by no more than a seed's spread (DEVELOPERS.md)
     joint_warmup: float = _opt(0.1, "staged: share of the joint stage over which its learning rate rises linearly "
                                "from 0 to train.joint_lr; 0 = it starts at the peak", lo=0.0, hi=1.0)
